@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 from typing import Callable, Mapping
 
 import numpy as np
+from scipy.special import expit
 
 __all__ = [
     "ParamSpec",
@@ -50,24 +51,22 @@ def softplus(z):
 
 def sigmoid(z):
     """1 / (1 + exp(-z)) without overflow for any finite z (derivative of softplus)."""
-    z = np.asarray(z, dtype=float)
-    # exp of a non-positive number only: no overflow on either side.
-    ez = np.exp(-np.abs(z))
-    return np.where(z >= 0, 1.0 / (1.0 + ez), ez / (1.0 + ez))
+    return expit(z)
 
 
 def _safe_pow(x, n):
-    """x**n for x >= 0 (x is clipped at 0 first), zero where x <= 0."""
-    x = np.maximum(x, 0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.where(x > 0.0, np.power(np.where(x > 0.0, x, 1.0), n), 0.0)
-    return out
+    """x**n with x clipped at 0 first, so no fractional power of a negative number.
+
+    Every exponent used here is >= 0 (the fitted exponents are bounded below by 1),
+    for which 0**n is 0 (or 1 for n == 0), so no NaN can arise.
+    """
+    return np.power(np.maximum(x, 0.0), n)
 
 
 def _safe_log(x):
-    """ln(x) where x > 0, 0 elsewhere (only used where it is multiplied by zero)."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(x > 0.0, np.log(np.where(x > 0.0, x, 1.0)), 0.0)
+    """ln(x) for x > 0; a large negative finite number at x <= 0, where it is only ever
+    multiplied by a current that is exactly zero."""
+    return np.log(np.maximum(x, 1e-300))
 
 
 # ---------------------------------------------------------------------------

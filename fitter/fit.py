@@ -1,0 +1,764 @@
+"""Fitting registered triode models to one unit's plate curves, robustly and honestly.
+
+The procedure for one unit and one model (``fit_curves``):
+
+1. **Clean** the points (:func:`fitter.reader.clean_curves`): sort, average repeats,
+   drop points outside the model's domain.  Each change is a note.
+2. **Weight.** Residuals are relative with a floor: r = (Ia_model - Ia) / (|Ia| + f),
+   f = ``floor`` x the unit's largest current (default 2 %).  Currents span three
+   decades on a plate-curve plot; a plain absolute residual lets the top of the
+   family dominate and ignores the bias region where the tube works.
+3. **Start** from the model's data-driven guess (:mod:`fitter.models`: a closed-form
+   linearisation of the Child-Langmuir form), plus the model's alternative starts
+   when the first run does not reach a sane minimum.
+4. **Robust fit.** lmfit's ``least_squares`` (trust-region reflective, bounded, with
+   the model's analytic parameter Jacobian) with a soft-L1 loss whose scale is set
+   from the robust scatter (1.4826 MAD) of the residuals, so that a few bad points
+   (a digitising slip, a tracer glitch) do not drag the fit.
+5. **Outliers.** Points whose residual exceeds ``outlier_sigma`` robust standard
+   deviations are listed as outliers.
+6. **Polish and uncertainties.** A plain (linear-loss) least-squares run on the
+   inliers from the robust solution gives the parameter covariance (scaled by the
+   reduced chi-square), standard errors, correlations, AIC and BIC.
+7. **Sanity.** The fit is declared failed, with the reason, when: the optimiser did
+   not converge; a free parameter ran to its bound; the model is flat (near zero)
+   where the data carry current; the robust scatter is too large for the model to
+   describe the data; or too many points were rejected.  A failed fit is never
+   reported as a result.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Callable, Iterable, Mapping
+
+import lmfit
+import numpy as np
+from scipy.optimize import leastsq
+from scipy.special import expit
+
+from .models import TriodeModel, get_model, model_names
+from .reader import CurveSet, check_for_model, clean_curves
+from .triode import FittedTriode
+
+__all__ = [
+    "FitResult",
+    "FitFailed",
+    "FitInputError",
+    "fit_curves",
+    "fit_all_models",
+    "fit_many",
+    "rank_results",
+    "FitOptions",
+]
+
+#: A fit whose robust scatter of relative residuals exceeds this did not find a model
+#: that describes the data (fitted tubes sit at 0.5-3 %).
+MAX_ROBUST_SCATTER = 0.15
+#: ...nor one that had to reject more than this fraction of the points.
+MAX_OUTLIER_FRACTION = 0.2
+
+
+class FitFailed(RuntimeError):
+    """Raised by :meth:`FitResult.raise_for_failure`; ``.reason`` says why."""
+
+    def __init__(self, label: str, model: str, reason: str):
+        self.label, self.model, self.reason = label, model, reason
+        super().__init__(f"{label}: {model} fit failed: {reason}")
+
+
+class FitInputError(ValueError):
+    """The unit cannot be fitted with the chosen model (too few points, bad option)."""
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """Options of a fit.
+
+    Attributes
+    ----------
+    fix : mapping
+        Parameters held at a given value, e.g. ``{"n": 1.5}`` or ``{"mu": 100}``.
+    expr : mapping
+        lmfit constraint expressions, e.g. ``{"kvb": "kp/2"}``.
+    bounds : mapping
+        Replacement bounds ``{name: (lower, upper)}``.
+    floor : float
+        Absolute floor of the relative weighting, as a fraction of the unit's
+        largest current.
+    robust : bool
+        Use the robust loss (default).  ``False`` gives a plain weighted fit.
+    outlier_sigma : float
+        Robust z-score beyond which a point is listed as an outlier.
+    """
+
+    fix: Mapping[str, float] = field(default_factory=dict)
+    expr: Mapping[str, str] = field(default_factory=dict)
+    bounds: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    floor: float = 0.02
+    robust: bool = True
+    outlier_sigma: float = 4.0
+    #: "fast": covariance from the analytic Jacobian at the polished solution;
+    #: "lmfit": the reported fit is an lmfit Minimizer run (used anyway with ``expr``).
+    final: str = "fast"
+
+
+@dataclass
+class FitResult:
+    """The outcome of fitting one model to one unit.
+
+    ``converged`` is False for a failed fit, ``failure`` then says why, and the
+    parameter figures are not to be used (``to_dict`` leaves them out).
+    """
+
+    unit: CurveSet
+    model: TriodeModel
+    converged: bool
+    failure: str | None = None
+    params: dict[str, float] = field(default_factory=dict)
+    stderr: dict[str, float | None] = field(default_factory=dict)
+    correlations: dict[str, dict[str, float]] = field(default_factory=dict)
+    free: tuple[str, ...] = ()
+    covariance: np.ndarray | None = None
+    residuals: np.ndarray | None = None  # model - data [A], every point of the cleaned unit
+    outliers: np.ndarray | None = None  # bool mask over the cleaned unit's points
+    rms_ma: float | None = None
+    max_abs_ma: float | None = None
+    rel_rms: float | None = None
+    robust_scatter: float | None = None
+    r2: float | None = None
+    aic: float | None = None
+    bic: float | None = None
+    nfev: int = 0
+    starts_tried: int = 0
+    message: str = ""
+    elapsed_ms: float = 0.0
+    optimizer: object | None = field(default=None, repr=False)
+
+    # -- identity ------------------------------------------------------------
+    @property
+    def tube(self) -> str:
+        return self.unit.tube
+
+    @property
+    def section(self) -> str | None:
+        return self.unit.section
+
+    @property
+    def label(self) -> str:
+        return self.unit.label
+
+    @property
+    def n_points(self) -> int:
+        return self.unit.n_points
+
+    @property
+    def n_outliers(self) -> int:
+        return int(self.outliers.sum()) if self.outliers is not None else 0
+
+    @property
+    def notes(self) -> tuple[str, ...]:
+        return self.unit.notes
+
+    @property
+    def triode(self) -> FittedTriode | None:
+        """The fitted model as a :class:`FittedTriode`; None for a failed fit."""
+        if not self.converged:
+            return None
+        return FittedTriode(self.model, self.params, self.free, self.covariance,
+                            self.unit.tube, self.unit.section, self.valid_range)
+
+    @property
+    def valid_range(self) -> dict:
+        u = self.unit
+        return {"va": (float(u.va.min()), float(u.va.max())),
+                "vg": (float(u.vg.min()), float(u.vg.max())),
+                "ia": (float(u.ia.min()), float(u.ia.max()))}
+
+    def raise_for_failure(self) -> "FitResult":
+        if not self.converged:
+            raise FitFailed(self.label, self.model.name, self.failure or "unknown reason")
+        return self
+
+    def outlier_points(self) -> list[dict]:
+        """The down-weighted points: va, vg, measured and model current [mA], line."""
+        if self.outliers is None or not self.outliers.any():
+            return []
+        u = self.unit
+        out = []
+        for i in np.flatnonzero(self.outliers):
+            out.append({
+                "va": float(u.va[i]), "vg": float(u.vg[i]), "ia_ma": float(u.ia[i] * 1e3),
+                "model_ma": float((u.ia[i] + self.residuals[i]) * 1e3),
+                "line": int(u.lines[i]) if u.lines is not None else None,
+            })
+        return out
+
+    def figures(self) -> dict:
+        """Goodness-of-fit figures (what a model card stores under "fit")."""
+        return {
+            "rms_ma": self.rms_ma, "max_abs_ma": self.max_abs_ma, "rel_rms": self.rel_rms,
+            "robust_scatter": self.robust_scatter, "r2": self.r2, "aic": self.aic, "bic": self.bic,
+            "n_points": self.n_points, "n_outliers": self.n_outliers, "nfev": self.nfev,
+        }
+
+    def to_dict(self, residuals: bool = False) -> dict:
+        def num(x):
+            return None if x is None or not math.isfinite(x) else float(x)
+
+        d = {
+            "tube": self.unit.tube,
+            "section": self.unit.section,
+            "model": self.model.name,
+            "converged": bool(self.converged),
+            "failure": self.failure,
+            "params": {k: float(v) for k, v in self.params.items()} if self.converged else {},
+            "stderr": {k: num(v) for k, v in self.stderr.items()} if self.converged else {},
+            "correlations": self.correlations if self.converged else {},
+            "rms_ma": num(self.rms_ma) if self.converged else None,
+            "max_abs_ma": num(self.max_abs_ma) if self.converged else None,
+            "rel_rms": num(self.rel_rms) if self.converged else None,
+            "r2": num(self.r2) if self.converged else None,
+            "aic": num(self.aic) if self.converged else None,
+            "bic": num(self.bic) if self.converged else None,
+            "n_points": self.n_points,
+            "n_outliers": self.n_outliers,
+            "outliers": self.outlier_points(),
+            "nfev": self.nfev,
+            "message": self.message,
+            "notes": list(self.unit.notes),
+            "source": self.unit.source,
+            "valid_range": {
+                "va_v": list(self.valid_range["va"]), "vg_v": list(self.valid_range["vg"]),
+                "ia_ma": [1e3 * x for x in self.valid_range["ia"]],
+            },
+        }
+        if self.converged:
+            d["free"] = list(self.free)
+            d["covariance"] = None if self.covariance is None else [
+                [num(x) for x in row] for row in self.covariance]
+        if residuals and self.residuals is not None:
+            d["residuals_ma"] = [float(x) for x in self.residuals * 1e3]
+        return d
+
+    def report(self) -> str:
+        """A readable text report of this fit."""
+        head = f"{self.label}  model {self.model.name}  ({self.n_points} points)"
+        if not self.converged:
+            return f"{head}\n  FAILED: {self.failure}"
+        lines = [head]
+        for name in self.model.param_names:
+            if name not in self.params:
+                continue
+            err = self.stderr.get(name)
+            tag = "" if name in self.free else "  (fixed)"
+            es = f" ± {err:.3g}" if err is not None else ""
+            lines.append(f"  {name:>6} = {self.params[name]:.6g}{es}{tag}")
+        lines.append(f"  rms {self.rms_ma:.4g} mA, max {self.max_abs_ma:.4g} mA, "
+                     f"relative rms {100 * self.rel_rms:.2f} %, R² {self.r2:.5f}")
+        lines.append(f"  AIC {self.aic:.1f}, BIC {self.bic:.1f}; {self.n_outliers} outlier(s)")
+        for p in self.outlier_points():
+            where = f"line {p['line']}: " if p["line"] else ""
+            lines.append(f"    outlier {where}va {p['va']:g} V, vg {p['vg']:g} V: "
+                         f"{p['ia_ma']:.4g} mA measured, model {p['model_ma']:.4g} mA")
+        for n in self.unit.notes:
+            lines.append(f"  note: {n}")
+        return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------
+# The fit
+# ---------------------------------------------------------------------------
+
+
+def _make_params(model: TriodeModel, start: Mapping[str, float], free: list[str], opts: FitOptions):
+    params = lmfit.Parameters()
+    for spec in model.params:
+        lo, hi = opts.bounds.get(spec.name, (spec.lower, spec.upper))
+        if spec.name in opts.fix:
+            params.add(spec.name, value=float(opts.fix[spec.name]), vary=False)
+        elif spec.name in opts.expr:
+            params.add(spec.name, expr=opts.expr[spec.name])
+        elif spec.name in free:
+            v = float(np.clip(start.get(spec.name, spec.default if spec.default is not None else lo),
+                              lo + 1e-9 * (hi - lo), hi - 1e-9 * (hi - lo)))
+            params.add(spec.name, value=v, min=lo, max=hi)
+        else:
+            params.add(spec.name, value=float(spec.default), vary=False)
+    return params
+
+
+class _Problem:
+    """Residuals and their analytic Jacobian for one unit and one model."""
+
+    def __init__(self, model: TriodeModel, unit: CurveSet, floor: float, with_grid: bool):
+        self.model = model
+        self.va, self.vg, self.ia = unit.va, unit.vg, unit.ia
+        scale = max(float(np.max(np.abs(self.ia))), 1e-9)
+        self.w = 1.0 / (np.abs(self.ia) + floor * scale)
+        self.with_grid = with_grid
+        if with_grid:
+            self.ig = unit.ig
+            gscale = max(float(np.max(np.abs(self.ig))), 1e-9)
+            self.wg = 1.0 / (np.abs(self.ig) + floor * gscale)
+        self.mask = None  # inlier mask for the polish
+        # The noise scale is judged on the points well above the floor, where the
+        # weighted residual is the relative deviation; points at cutoff (often exactly
+        # zero current) would otherwise pull the scale to nothing.
+        sel = np.abs(self.ia) >= 5 * floor * scale
+        if with_grid:
+            sel = np.concatenate([sel, np.zeros(self.ia.size, dtype=bool)])
+        self.scale_points = sel
+
+    @staticmethod
+    def values(params):
+        return {k: params[k].value for k in params}
+
+    def residual_values(self, p):
+        r = (self.model.current(self.va, self.vg, **p) - self.ia) * self.w
+        if self.with_grid:
+            rg = (self.model.grid_current(self.vg, **p) - self.ig) * self.wg
+            r = np.concatenate([r, rg])
+        if self.mask is not None:
+            r = r[self.mask]
+        return r
+
+    def jacobian_values(self, p, names):
+        g = self.model.param_gradient(self.va, self.vg, **p)
+        J = np.empty((self.va.size, len(names)))
+        for j, k in enumerate(names):
+            J[:, j] = g[k] * self.w
+        if self.with_grid:
+            # Ia = Ik - Ig, so dIg/dp = -dIa/dp for the grid parameters; the plate
+            # parameters do not enter Ig.
+            Jg = np.zeros((self.va.size, len(names)))
+            for j, k in enumerate(names):
+                if self.model.spec(k).grid:
+                    Jg[:, j] = -g[k] * self.wg
+            J = np.vstack([J, Jg])
+        if self.mask is not None:
+            J = J[self.mask]
+        return J
+
+    def residual(self, params):
+        return self.residual_values(self.values(params))
+
+    def jacobian(self, params):
+        return self.jacobian_values(self.values(params), [k for k in params if params[k].vary])
+
+
+class _FastSearch:
+    """Robust minimisation of one problem in logit coordinates with MINPACK's LM.
+
+    lmfit's Minimizer costs about a millisecond per call in bookkeeping (parameter
+    copies, statistics); the robust search needs several warm-started runs, so it
+    works on plain arrays here, and lmfit does the final, reported fit (covariance,
+    standard errors, correlations, AIC/BIC) exactly once.  The bounds are enforced by
+    the transform p = lo + (hi - lo) expit(x), so the search never leaves them.
+    """
+
+    def __init__(self, prob: _Problem, model: TriodeModel, free, fixed: dict, bounds: dict):
+        self.prob, self.model, self.free = prob, model, list(free)
+        self.fixed = dict(fixed)
+        self.lo = np.array([bounds[k][0] for k in free], float)
+        self.hi = np.array([bounds[k][1] for k in free], float)
+        self.sw = None  # sqrt of the IRLS weights
+        self.nfev = 0
+        self._cache = (None, None)
+
+    def to_internal(self, values):
+        v = np.array([values[k] for k in self.free], float)
+        span = self.hi - self.lo
+        f = np.clip((v - self.lo) / span, 1e-9, 1 - 1e-9)
+        return np.log(f / (1 - f))
+
+    def to_values(self, x):
+        p = dict(self.fixed)
+        p.update(zip(self.free, self.lo + (self.hi - self.lo) * expit(x)))
+        return p
+
+    def _fun(self, x):
+        p = self.to_values(x)
+        r = self.prob.residual_values(p)
+        self.nfev += 1
+        return r if self.sw is None else r * self.sw
+
+    def _jac(self, x):
+        p = self.to_values(x)
+        e = expit(x)
+        J = self.prob.jacobian_values(p, self.free) * ((self.hi - self.lo) * e * (1 - e))
+        return J if self.sw is None else J * self.sw[:, None]
+
+    def solve(self, x0, tol=1e-8):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            x, cov, info, msg, ier = leastsq(self._fun, x0, Dfun=self._jac, full_output=True,
+                                             ftol=tol, xtol=tol, maxfev=100 * (len(x0) + 1))
+        return x, ier in (1, 2, 3, 4), msg
+
+    def robust(self, values, robust: bool, f_scale_sigmas: float = 2.5, rounds: int = 5):
+        """Plain weighted LM from ``values``, then IRLS rounds with soft-L1 weights.
+
+        Returns (values, robust scale, success, message).
+        """
+        x, ok, msg = self.solve(self.to_internal(values))
+        scale = None
+        if robust:
+            for _ in range(rounds):
+                self.sw = None
+                raw = self._fun(x)
+                scale = max(_robust_scale(raw, self.prob.scale_points), 1e-5)
+                z = (raw / (f_scale_sigmas * scale)) ** 2
+                self.sw = (1.0 + z) ** -0.25  # sqrt of the soft-L1 weight (1 + z)^(-1/2)
+                x_new, ok, msg = self.solve(x, tol=1e-6)
+                step = np.max(np.abs(x_new - x))
+                x = x_new
+                if step < 1e-3:
+                    break
+            self.sw = None
+            scale = max(_robust_scale(self._fun(x), self.prob.scale_points), 1e-5)
+        values = self.to_values(x)
+        return values, scale, ok and bool(np.all(np.isfinite(x))), msg
+
+    def polish(self, values, mask):
+        """Plain least squares on the inliers (``mask``) from ``values``.
+
+        Returns (values, covariance of the free parameters or None, chi-square,
+        number of residuals, success, message).  The covariance is
+        inv(J^T J) chi2 / (N - k) with J the analytic Jacobian in the parameters'
+        own units, which is what lmfit reports for the same problem (a test checks
+        the two against each other).
+        """
+        self.sw = mask.astype(float)
+        x, ok, msg = self.solve(self.to_internal(values), tol=1e-10)
+        self.sw = None
+        values = self.to_values(x)
+        self.prob.mask = mask
+        try:
+            r = self.prob.residual_values(values)
+            J = self.prob.jacobian_values(values, self.free)
+        finally:
+            self.prob.mask = None
+        chisqr = float(r @ r)
+        nres = r.size
+        dof = max(nres - len(self.free), 1)
+        try:
+            cov = np.linalg.inv(J.T @ J) * (chisqr / dof)
+            if not np.all(np.isfinite(cov)) or np.any(np.diag(cov) < 0):
+                cov = None
+        except np.linalg.LinAlgError:
+            cov = None
+        return values, cov, chisqr, nres, ok, msg
+
+
+def _robust_scale(r, sel=None):
+    """1.4826 x the median absolute deviation of ``r[sel]``: a standard deviation that
+    a few bad points do not inflate."""
+    if sel is not None and sel.sum() >= 10:
+        r = r[sel]
+    if r.size == 0:
+        return float("nan")
+    med = np.median(r)
+    return 1.4826 * float(np.median(np.abs(r - med)))
+
+
+def _run(mini_problem: _Problem, params, loss: str, f_scale: float, use_jac: bool, max_nfev: int):
+    kws = dict(loss=loss, f_scale=f_scale, x_scale="jac", max_nfev=max_nfev)
+    if use_jac:
+        kws["jac"] = lambda p: mini_problem.jacobian(p)
+    mini = lmfit.Minimizer(lambda p: mini_problem.residual(p), params, nan_policy="raise")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return mini.minimize(method="least_squares", **kws)
+
+
+def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitOptions | None = None,
+               **kw) -> FitResult:
+    """Fit ``model`` to one unit's curves.
+
+    Parameters
+    ----------
+    unit : CurveSet
+        The measured points (SI units).
+    model : str or TriodeModel
+        A registered model name (see :data:`fitter.models.MODELS`).
+    options : FitOptions, optional
+        Fixed parameters, constraints, weighting and robustness options; keyword
+        arguments (``fix=``, ``expr=``, ``floor=``, ...) build one.
+
+    Returns
+    -------
+    FitResult
+        ``converged`` is False, with ``failure`` set, when no sane minimum was found.
+
+    Raises
+    ------
+    FitInputError
+        When the unit has too few points or curves for the model, or an option names
+        an unknown parameter.
+    """
+    t0 = time.perf_counter()
+    m = get_model(model) if isinstance(model, str) else model
+    opts = options or FitOptions(**kw)
+    for name in list(opts.fix) + list(opts.expr) + list(opts.bounds):
+        try:
+            m.spec(name)
+        except ValueError as e:
+            raise FitInputError(str(e)) from None
+    u = clean_curves(unit, m)
+    issue = check_for_model(u, m)
+    if issue is not None:
+        raise FitInputError(str(issue))
+
+    with_grid = bool(m.grid_param_names) and u.ig is not None and np.any(u.ig != 0)
+    if u.ig is not None and not with_grid and m.grid_param_names:
+        u = u.with_notes("grid current column is all zero; grid-current parameters not fitted")
+    elif u.ig is not None and not m.grid_param_names:
+        u = u.with_notes(f"grid current in the data is not used by the {m.name} model")
+    free = [p.name for p in m.params if (not p.grid or with_grid)
+            and p.name not in opts.fix and p.name not in opts.expr]
+    if not free:
+        raise FitInputError("every parameter is fixed: nothing to fit")
+    prob = _Problem(m, u, opts.floor, with_grid)
+    use_jac = not opts.expr
+
+    first = m.guess(u.va, u.vg, u.ia)
+    if with_grid:
+        first.update(_grid_guess(u))
+    bounds = {sp.name: tuple(opts.bounds.get(sp.name, (sp.lower, sp.upper))) for sp in m.params}
+    fixed = {sp.name: float(opts.fix.get(sp.name, sp.default if sp.default is not None else np.nan))
+             for sp in m.params if sp.name not in free and sp.name not in opts.expr}
+    # starting values of fixed parameters are the fixed values
+    first = {**first, **{k: v for k, v in fixed.items()}}
+
+    def bound_hit(values):
+        for k in free:
+            lo, hi = bounds[k]
+            span = hi - lo
+            if lo != 0.0 and values[k] - lo <= 1e-6 * span:
+                return f"parameter {k} ran to its lower bound {lo:g}"
+            if hi - values[k] <= 1e-6 * span:
+                return f"parameter {k} ran to its upper bound {hi:g}"
+        return None
+
+    if not opts.expr:
+        search = _FastSearch(prob, m, free, fixed, bounds)
+
+        def attempt(start):
+            values, scale, ok, _ = search.robust(start, opts.robust)
+            return values, scale, ok
+    else:
+        # constraint expressions: lmfit evaluates them, so the search runs through it
+        loss = "soft_l1" if opts.robust else "linear"
+
+        def attempt(start):
+            params = _make_params(m, start, free, opts)
+            r1 = _run(prob, params, loss, 0.05, False, 200 * (len(free) + 1))
+            scale = None
+            r = r1
+            if opts.robust:
+                scale = max(_robust_scale(r1.residual, prob.scale_points), 1e-5)
+                r = _run(prob, r1.params, loss, 2.5 * scale, False, 200 * (len(free) + 1))
+                scale = max(_robust_scale(r.residual, prob.scale_points), 1e-5)
+            return prob.values(r.params), scale, bool(r.success)
+
+    best = None
+    tried = 0
+    candidates = [first]
+    alt_added = False
+    while candidates:
+        start = candidates.pop(0)
+        tried += 1
+        try:
+            values, scale, ok = attempt(start)
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+            continue
+        r_try = prob.residual_values(values)
+        if not np.all(np.isfinite(r_try)):
+            continue
+        if scale is None:
+            scale = float(np.sqrt(np.mean(r_try**2)))
+        ok = ok and bound_hit(values) is None
+        if best is None or (ok and not best[2]) or (ok == best[2] and scale < best[1]):
+            best = (values, scale, ok)
+        # alternative starts only when the first did not reach a sane minimum
+        if not alt_added and (not ok or scale > 0.05) and m.alternative_starts is not None:
+            alt_added = True
+            candidates.extend({**d, **fixed} for d in m.alternative_starts(first))
+    nfev = search.nfev if not opts.expr else 0
+    elapsed = lambda: 1e3 * (time.perf_counter() - t0)  # noqa: E731
+    if best is None:
+        return FitResult(u, m, False, "optimiser raised an error at every start", starts_tried=tried,
+                         elapsed_ms=elapsed())
+    values, scale, ok = best
+    # outliers on the robust solution
+    r_all = prob.residual_values(values)[: u.n_points]
+    if opts.robust:
+        outliers = np.abs(r_all - np.median(r_all)) > opts.outlier_sigma * scale
+    else:
+        outliers = np.zeros(u.n_points, dtype=bool)
+
+    # the reported fit: plain least squares on the inliers from the robust solution,
+    # giving the covariance, standard errors, correlations and AIC/BIC
+    mask = ~outliers
+    if with_grid:
+        mask = np.concatenate([mask, np.ones(u.n_points, dtype=bool)])
+    fin = None
+    cov = None
+    if opts.expr or opts.final == "lmfit":
+        prob.mask = mask
+        try:
+            params = _make_params(m, values, free, opts)
+            kws = {} if opts.expr else {"Dfun": prob.jacobian}
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                fin = lmfit.Minimizer(prob.residual, params, nan_policy="raise").minimize(method="leastsq", **kws)
+            nfev += fin.nfev
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as e:
+            return FitResult(u, m, False, f"final least-squares step failed: {e}", nfev=nfev,
+                             starts_tried=tried, elapsed_ms=elapsed())
+        finally:
+            prob.mask = None
+        values = {k: float(fin.params[k].value) for k in fin.params}
+        free_fitted = tuple(fin.var_names)
+        success, message = bool(fin.success), str(fin.message)
+        chisqr, nres = float(fin.chisqr), int(fin.ndata)
+        if fin.covar is not None and np.all(np.isfinite(fin.covar)):
+            cov = np.array(fin.covar)
+    else:
+        values, cov, chisqr, nres, success, message = search.polish(values, mask)
+        nfev = search.nfev
+        free_fitted = tuple(free)
+    model_ia = m.current(u.va, u.vg, **values)
+    resid = model_ia - u.ia
+    inl = ~outliers
+    rms = float(np.sqrt(np.mean(resid[inl] ** 2)))
+    wres = resid[inl] * prob.w[inl]
+    ss_tot = float(np.sum((u.ia[inl] - u.ia[inl].mean()) ** 2))
+    r2 = 1.0 - float(np.sum(resid[inl] ** 2)) / ss_tot if ss_tot > 0 else float("nan")
+    k = len(free_fitted)
+    # lmfit's definitions (Minimizer.result.aic / .bic)
+    n_ln = nres * np.log(max(chisqr, 1e-300) / nres)
+    aic, bic = float(n_ln + 2 * k), float(n_ln + np.log(nres) * k)
+
+    stderr: dict[str, float | None] = {name: None for name in m.param_names}
+    corr: dict[str, dict[str, float]] = {}
+    if cov is not None:
+        d = np.sqrt(np.diag(cov))
+        for i, name in enumerate(free_fitted):
+            stderr[name] = float(d[i]) if np.isfinite(d[i]) else None
+            corr[name] = {free_fitted[j]: float(cov[i, j] / (d[i] * d[j]))
+                          for j in range(k) if j != i and d[i] > 0 and d[j] > 0}
+
+    failure = None
+    if not success:
+        failure = f"optimiser did not converge: {message}"
+    if failure is None:
+        failure = bound_hit(values)
+    if failure is None and not np.all(np.isfinite(model_ia)):
+        failure = "model currents are not finite at the solution"
+    if failure is None:
+        big = inl & (u.ia > 0.05 * np.max(u.ia))
+        flat = big & (model_ia < 0.01 * u.ia)
+        if big.any() and flat.sum() > 0.05 * big.sum():
+            failure = (f"the model is flat at zero current at {int(flat.sum())} point(s) where the "
+                       "data carry current (a spurious flat minimum)")
+    robust_scatter = _robust_scale(wres, prob.scale_points[: u.n_points][inl])
+    if failure is None and robust_scatter > MAX_ROBUST_SCATTER:
+        failure = (f"residuals too large (robust scatter {100 * robust_scatter:.1f} % of the current): "
+                   f"the {m.name} model does not describe these data")
+    if failure is None and outliers.mean() > MAX_OUTLIER_FRACTION:
+        failure = (f"{int(outliers.sum())} of {u.n_points} points rejected as outliers: "
+                   "too many for a trustworthy fit")
+    if failure is None and cov is None:
+        u = u.with_notes("parameter covariance could not be estimated (singular); errors are unknown")
+
+    return FitResult(
+        unit=u, model=m, converged=failure is None, failure=failure,
+        params=values, stderr=stderr, correlations=corr, free=free_fitted, covariance=cov,
+        residuals=resid, outliers=outliers, rms_ma=1e3 * rms,
+        max_abs_ma=1e3 * float(np.max(np.abs(resid[inl]))) if inl.any() else float("nan"),
+        rel_rms=float(np.sqrt(np.mean(wres**2))) if wres.size else float("nan"),
+        robust_scatter=robust_scatter, r2=r2, aic=aic, bic=bic,
+        nfev=nfev, starts_tried=tried, message=message, elapsed_ms=elapsed(), optimizer=fin,
+    )
+
+
+def _grid_guess(u: CurveSet) -> dict:
+    """Starting values of the Dempwolf grid-current part from the positive-grid points."""
+    pos = (u.vg > 0) & (u.ig > 0)
+    if pos.sum() >= 2:
+        x, y = u.vg[pos], u.ig[pos]
+        # ig ~ Gg vg^xi: log-log line
+        A = np.column_stack([np.log(x), np.ones(x.size)])
+        (xi, lg), *_ = np.linalg.lstsq(A, np.log(y), rcond=None)
+        return dict(Gg=float(np.clip(np.exp(lg), 1e-8, 0.5)), xi=float(np.clip(xi, 1.05, 2.9)), Cg=10.0, Ig0=0.0)
+    return dict(Gg=1e-4, xi=1.5, Cg=10.0, Ig0=0.0)
+
+
+# ---------------------------------------------------------------------------
+# Several models, several units
+# ---------------------------------------------------------------------------
+
+
+def rank_results(results: Iterable[FitResult]) -> list[FitResult]:
+    """Converged fits first, by BIC (lower is better); failed fits last."""
+    return sorted(results, key=lambda r: (not r.converged, r.bic if r.converged else 0.0))
+
+
+def fit_all_models(unit: CurveSet, options: FitOptions | None = None, models=None) -> list[FitResult]:
+    """Fit every registered model to ``unit``; ranked by BIC."""
+    out = []
+    for name in models or model_names():
+        try:
+            out.append(fit_curves(unit, name, options))
+        except FitInputError as e:
+            out.append(FitResult(clean_curves(unit), get_model(name), False, str(e)))
+    return rank_results(out)
+
+
+def _fit_job(args):
+    unit, models, options = args
+    res = []
+    for name in models:
+        try:
+            r = fit_curves(unit, name, options)
+        except FitInputError as e:
+            r = FitResult(unit, get_model(name), False, str(e))
+        r.optimizer = None  # not picklable cheaply; not needed across processes
+        res.append(r)
+    return rank_results(res) if len(models) > 1 else res
+
+
+def fit_many(units: list[CurveSet], models=("koren",), options: FitOptions | None = None,
+             processes: int | None = None, progress: Callable[[int], None] | None = None) -> list[list[FitResult]]:
+    """Fit ``models`` to every unit, on all cores.
+
+    Returns one list of results per unit (ranked by BIC when several models are
+    fitted), in the order of ``units``.  ``progress(n)`` is called as units finish.
+    """
+    models = tuple(models)
+    jobs = [(u, models, options) for u in units]
+    nproc = processes or os.cpu_count() or 1
+    if nproc <= 1 or len(units) < 8:
+        out = []
+        for j in jobs:
+            out.append(_fit_job(j))
+            if progress:
+                progress(1)
+        return out
+    import multiprocessing as mp
+
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    chunk = max(1, min(32, len(units) // (4 * nproc)))
+    out = []
+    with ctx.Pool(nproc) as pool:
+        for r in pool.imap(_fit_job, jobs, chunksize=chunk):
+            out.append(r)
+            if progress:
+                progress(1)
+    return out
