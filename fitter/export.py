@@ -315,7 +315,8 @@ def spice_subcircuit(
             es = " (held fixed in the fit)"
         else:
             es = ""
-        head.append(f"  {p.name} = {triode.params[p.name]!r} {p.unit}{es}")
+        unit = f" {p.unit}" if p.unit != "-" else ""
+        head.append(f"  {p.name} = {triode.params[p.name]!r}{unit}{es}")
     if expr.grid is None:
         head.append(
             f"grid conduction: generic path Ig = Vs*softplus(vg/Vs)/Rg, Rg = {grid_resistance:g} ohm, "
@@ -323,7 +324,8 @@ def spice_subcircuit(
         )
     else:
         head.append("grid conduction: the model's own fitted grid current")
-    head.append("valid for ngspice; expressions guarded against exp overflow and negative-base powers")
+    head.append("runs unmodified in ngspice (checked with ngspice 39); guarded against exp overflow "
+                "and fractional powers of negative numbers")
     head.append(HIGH_VOLTAGE_CAUTION)
 
     lines = ["* " + h for h in head]
