@@ -33,7 +33,7 @@ import math
 import os
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Callable, Iterable, Mapping
 
 import lmfit
@@ -378,7 +378,7 @@ class _FastSearch:
 
     def to_values(self, x):
         p = dict(self.fixed)
-        p.update(zip(self.free, self.lo + (self.hi - self.lo) * expit(x)))
+        p.update(zip(self.free, (self.lo + (self.hi - self.lo) * expit(x)).tolist()))
         return p
 
     def _fun(self, x):
@@ -412,7 +412,7 @@ class _FastSearch:
                 self.sw = None
                 raw = self._fun(x)
                 scale = max(_robust_scale(raw, self.prob.scale_points), 1e-5)
-                z = (raw / (f_scale_sigmas * scale)) ** 2
+                z = (raw / (f_scale_sigmas * _point_scales(raw, self.prob, scale))) ** 2
                 self.sw = (1.0 + z) ** -0.25  # sqrt of the soft-L1 weight (1 + z)^(-1/2)
                 x_new, ok, msg = self.solve(x, tol=1e-6)
                 step = np.max(np.abs(x_new - x))
@@ -453,6 +453,25 @@ class _FastSearch:
         except np.linalg.LinAlgError:
             cov = None
         return values, cov, chisqr, nres, ok, msg
+
+
+def _point_scales(r, prob: "_Problem", base: float, bins: int = 5):
+    """Robust scale of each residual, allowing for noise that is not a fixed fraction of
+    the current (an absolute noise floor makes small currents relatively noisier).
+
+    The plate-current points are split into up to ``bins`` groups of similar current;
+    each point gets the larger of its group's robust scale and ``base`` (the scale of
+    the points well above the floor).  Grid-current residuals get ``base``.
+    """
+    n = prob.ia.size
+    out = np.full(r.size, base)
+    order = np.argsort(np.abs(prob.ia), kind="stable")
+    k = max(1, min(bins, n // 20))
+    for chunk in np.array_split(order, k):
+        rc = r[chunk]
+        s_b = 1.4826 * float(np.median(np.abs(rc - np.median(rc))))
+        out[chunk] = max(s_b, base)
+    return out
 
 
 def _robust_scale(r, sel=None):
@@ -598,7 +617,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     # outliers on the robust solution
     r_all = prob.residual_values(values)[: u.n_points]
     if opts.robust:
-        outliers = np.abs(r_all - np.median(r_all)) > opts.outlier_sigma * scale
+        outliers = np.abs(r_all - np.median(r_all)) > opts.outlier_sigma * _point_scales(r_all, prob, scale)
     else:
         outliers = np.zeros(u.n_points, dtype=bool)
 
@@ -630,7 +649,21 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         if fin.covar is not None and np.all(np.isfinite(fin.covar)):
             cov = np.array(fin.covar)
     else:
-        values, cov, chisqr, nres, success, message = search.polish(values, mask)
+        for _ in range(3):
+            values, cov, chisqr, nres, success, message = search.polish(values, mask)
+            if not opts.robust:
+                break
+            # the polish may move to a better minimum than the robust search found; the
+            # outliers are then judged again at the new solution
+            r_new = prob.residual_values(values)[: u.n_points]
+            scale = max(_robust_scale(r_new, prob.scale_points[: u.n_points]), 1e-5)
+            new_out = np.abs(r_new - np.median(r_new)) > opts.outlier_sigma * _point_scales(r_new, prob, scale)
+            if np.array_equal(new_out, outliers):
+                break
+            outliers = new_out
+            mask = ~outliers
+            if with_grid:
+                mask = np.concatenate([mask, np.ones(u.n_points, dtype=bool)])
         nfev = search.nfev
         free_fitted = tuple(free)
     model_ia = m.current(u.va, u.vg, **values)
@@ -721,12 +754,23 @@ def fit_all_models(unit: CurveSet, options: FitOptions | None = None, models=Non
     return rank_results(out)
 
 
+def options_for_model(options: FitOptions | None, model: TriodeModel) -> FitOptions | None:
+    """Keep only the fixed values, constraints and bounds that ``model`` has a parameter for
+    (so that ``--model all --fix n=1.5`` fixes n of the power law and leaves the others)."""
+    if options is None:
+        return None
+    names = set(model.param_names)
+    return replace(options, fix={k: v for k, v in options.fix.items() if k in names},
+                   expr={k: v for k, v in options.expr.items() if k in names},
+                   bounds={k: v for k, v in options.bounds.items() if k in names})
+
+
 def _fit_job(args):
     unit, models, options = args
     res = []
     for name in models:
         try:
-            r = fit_curves(unit, name, options)
+            r = fit_curves(unit, name, options_for_model(options, get_model(name)) if len(models) > 1 else options)
         except FitInputError as e:
             r = FitResult(unit, get_model(name), False, str(e))
         r.optimizer = None  # not picklable cheaply; not needed across processes

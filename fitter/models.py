@@ -189,15 +189,22 @@ def _linearised_power_guess(va, vg, ia):
     if sel.sum() < 4:
         sel = ia > 0
     best = None
+    A = np.column_stack([va[sel], vg[sel], np.ones(sel.sum())])
     for n in (1.2, 1.35, 1.5, 1.65, 1.8, 2.0):
         y = ia[sel] ** (1.0 / n)
-        A = np.column_stack([va[sel], vg[sel], np.ones(sel.sum())])
-        coef, *_ = np.linalg.lstsq(A, y, rcond=None)
+        # relative weights, then a few Huber-type reweightings so that a bad point
+        # (a digitising slip, a tracer glitch) does not spoil the start
+        w = 1.0 / np.maximum(y, 1e-12)
+        for _ in range(4):
+            coef, *_ = np.linalg.lstsq(A * w[:, None], y * w, rcond=None)
+            rel = (A @ coef - y) / np.maximum(y, 1e-12)
+            s = 1.4826 * np.median(np.abs(rel)) + 1e-9
+            w = np.minimum(1.0, 2.0 * s / np.maximum(np.abs(rel), 1e-12)) / np.maximum(y, 1e-12)
         a, b, c = coef
         if not (a > 0 and b > 0):
             continue
-        res = A @ coef - y
-        score = float(np.sum((res / np.maximum(y, 1e-12)) ** 2))
+        res = (A @ coef - y) / np.maximum(y, 1e-12)
+        score = float(np.median(res**2))
         if best is None or score < best[0]:
             best = (score, n, a, b, c)
     if best is None:
