@@ -217,7 +217,7 @@ def _split_lines(text: str):
     return header, header_line, data, np.array(numbers, dtype=np.int64), directives
 
 
-def _columns(data, numbers, ncol, file, issues):
+def _columns(data, numbers, ncol, file, issues, names=None):
     """Split data lines into ``ncol`` columns of strings; rows of the wrong width are issues.
 
     One ``split`` over the joined text is several times faster than one per line,
@@ -226,7 +226,13 @@ def _columns(data, numbers, ncol, file, issues):
     counts = np.fromiter((line.count(",") for line in data), dtype=np.int64, count=len(data))
     ok = counts == ncol - 1
     for i in np.flatnonzero(~ok):
-        issues.append(ReadIssue(file, int(numbers[i]), None, f"expected {ncol} fields, found {int(counts[i]) + 1}"))
+        found = int(counts[i]) + 1
+        if found > ncol:
+            col, what = f"{ncol + 1}", "unexpected extra field(s)"
+        else:
+            col = f"{found + 1} ({names[found]!r})" if names else f"{found + 1}"
+            what = "missing value(s)"
+        issues.append(ReadIssue(file, int(numbers[i]), col, f"{what}: expected {ncol} fields, found {found}"))
     good = data if ok.all() else [line for line, k in zip(data, ok) if k]
     lines = numbers[ok]
     if not good:
@@ -333,7 +339,7 @@ def _read_long(names, header_line, data, numbers, file, default_tube, skip_bad):
     if issues:
         raise CurveReadError(issues)
 
-    cols, lines = _columns(data, numbers, len(names), file, issues)
+    cols, lines = _columns(data, numbers, len(names), file, issues, names)
     n = lines.size
     bad = np.zeros(n, dtype=bool)
 
@@ -464,7 +470,7 @@ def _read_wide(names, header_line, data, numbers, directives, file, default_tube
         curves.append((i - 1, v, _SCALE[unit], n))
     if issues:
         raise CurveReadError(issues)
-    cols, lines = _columns(data, numbers, len(names), file, issues)
+    cols, lines = _columns(data, numbers, len(names), file, issues, names)
     bad_rows = np.zeros(lines.size, dtype=bool)
     va = _float_cells(cols[0], lines, "va", file, issues, bad_rows)
     all_va, all_vg, all_ia, all_lines, all_bad = [], [], [], [], []
