@@ -165,3 +165,132 @@ def plate_curves(subckt: str, name: str, va_start: float, va_stop: float, va_ste
               ["v(p)", "v(g)", "i(Va)"])[0]
     # i(Va) is the current into the source's + terminal, i.e. minus the plate current
     return res["v(p)"], res["v(g)"], -res["i(Va)"]
+
+
+# Mid-band in the .ac runs: every coupling and bypass capacitor of the stage is
+# written as this value, so at MIDBAND_HZ it is a short (1 F at 1 kHz: 0.16 mOhm)
+# while .op still sees it open -- the same idealisation as the solver's mid-band.
+BIG_C = 1.0
+MIDBAND_HZ = 1000.0
+
+
+def _sub_name(subckt: str) -> str:
+    return subckt.split(".subckt ", 1)[1].split()[0]
+
+
+def _grid_input(lines, grid, bias_node, bias_v, rg, coupled=True):
+    """Signal source ``Vin`` (DC 0, AC 1) into ``grid`` through a coupling capacitor,
+    grid leak ``rg`` to ``bias_node`` held at ``bias_v`` [V]."""
+    lines.append("Vin in 0 DC 0 AC 1 SIN(0 0 1k)")
+    lines.append(f"Cin in {grid} {BIG_C!r}")
+    lines.append(f"Rg {grid} {bias_node} {float(rg)!r}")
+    if bias_v is not None:
+        lines.append(f"Vbias {bias_node} 0 DC {float(bias_v)!r}")
+
+
+def _output(lines, node, rl, probe):
+    """Load ``rl`` through a coupling capacitor (``probe="gain"``), or, for
+    ``probe="zout"``, no load and a 1 A AC test current into ``node``."""
+    if probe == "zout":
+        lines.append(f"Iprobe 0 {node} DC 0 AC 1")
+        return
+    if rl is not None:
+        lines.append(f"Cout {node} out {BIG_C!r}")
+        lines.append(f"RL out 0 {float(rl)!r}")
+
+
+def common_cathode_circuit(stage, subckt: str, probe: str = "gain", signal: str | None = None) -> str:
+    """Netlist of a :class:`fitter.stage.CommonCathode` around an exported subcircuit.
+
+    Nodes are named as the solver's ``nodes_v`` keys: ``grid``, ``cathode``, ``plate``
+    (plus ``in`` and ``out``).  ``probe="zout"`` silences the input and drives the
+    plate with an AC test current (load removed).  ``signal`` replaces the input
+    source's transient spec, e.g. ``"SIN(0 0.5 1k)"``.
+    """
+    name = _sub_name(subckt)
+    L = [subckt.rstrip(), f"VB bplus 0 DC {float(stage.b_plus)!r}",
+         f"Ra bplus plate {float(stage.ra)!r}", f"X1 plate grid cathode {name}"]
+    if stage.rk > 0:
+        L.append(f"Rk cathode 0 {float(stage.rk)!r}")
+        if stage.ck is not None:
+            L.append(f"Ck cathode 0 {BIG_C!r}")
+    else:
+        L.append("Vk cathode 0 DC 0")
+    bias = stage.vbias
+    _grid_input(L, "grid", "nbias" if bias is not None else "0", bias, stage.rg)
+    _output(L, "plate", stage.rl, probe)
+    return _finish(L, probe, signal)
+
+
+def cathode_follower_circuit(stage, subckt: str, probe: str = "gain", signal: str | None = None) -> str:
+    """Netlist of a :class:`fitter.stage.CathodeFollower` (nodes grid, cathode, plate)."""
+    name = _sub_name(subckt)
+    L = [subckt.rstrip(), f"VB bplus 0 DC {float(stage.b_plus)!r}"]
+    if stage.ra > 0:
+        L.append(f"Ra bplus plate {float(stage.ra)!r}")
+    else:
+        L.append("Vra bplus plate DC 0")
+    L.append(f"X1 plate grid cathode {name}")
+    if stage.vneg != 0:
+        L += [f"Rk cathode nneg {float(stage.rk)!r}", f"Vneg nneg 0 DC {float(stage.vneg)!r}"]
+    else:
+        L.append(f"Rk cathode 0 {float(stage.rk)!r}")
+    if stage.r_upper is not None:
+        L += [f"Rup bplus ndiv {float(stage.r_upper)!r}", f"Rlo ndiv 0 {float(stage.r_lower)!r}"]
+        _grid_input(L, "grid", "ndiv", None, stage.rg)
+    else:
+        _grid_input(L, "grid", "0", None, stage.rg)
+    _output(L, "cathode", stage.rl, probe)
+    return _finish(L, probe, signal)
+
+
+def stack_circuit(stage, bottom_subckt: str, top_subckt: str, probe: str = "gain",
+                  signal: str | None = None) -> str:
+    """Netlist of a :class:`fitter.stage.Stack` (mu follower or SRPP).
+
+    Nodes as the solver's: ``grid``, ``cathode_bottom``, ``plate_bottom``, ``mid``,
+    ``cathode_top``, ``grid_top``, ``plate_top`` (= B+).  ``r_mid = 0`` is a 0 V
+    source (an ammeter) between ``plate_bottom`` and ``mid``; a tied top grid is a
+    0 V source from ``plate_bottom`` to ``grid_top``.
+    """
+    b, t = _sub_name(bottom_subckt), _sub_name(top_subckt)
+    subs = bottom_subckt.rstrip() if b == t else bottom_subckt.rstrip() + "\n" + top_subckt.rstrip()
+    L = [subs, f"VB plate_top 0 DC {float(stage.b_plus)!r}",
+         f"X1 plate_bottom grid cathode_bottom {b}", f"X2 plate_top grid_top cathode_top {t}"]
+    if stage.rk > 0:
+        L.append(f"Rk cathode_bottom 0 {float(stage.rk)!r}")
+        if stage.ck is not None:
+            L.append(f"Ck cathode_bottom 0 {BIG_C!r}")
+    else:
+        L.append("Vk cathode_bottom 0 DC 0")
+    if stage.r_mid > 0:
+        L.append(f"Rmid plate_bottom mid {float(stage.r_mid)!r}")
+    else:
+        L.append("Vmid plate_bottom mid DC 0")
+    L.append(f"Rtop mid cathode_top {float(stage.r_top)!r}")
+    if stage.top_grid == "coupled":
+        L += [f"Ctop plate_bottom grid_top {BIG_C!r}", f"Rgtop grid_top mid {float(stage.rg_top)!r}"]
+    else:
+        L.append("Vtie plate_bottom grid_top DC 0")
+    bias = stage.vbias
+    _grid_input(L, "grid", "nbias" if bias is not None else "0", bias, stage.rg)
+    out = "cathode_top" if stage.output == "top-cathode" else "plate_bottom"
+    _output(L, out, stage.rl, probe)
+    return _finish(L, probe, signal)
+
+
+def _finish(lines, probe, signal):
+    if probe == "zout":
+        lines = [ln.replace("Vin in 0 DC 0 AC 1", "Vin in 0 DC 0 AC 0") for ln in lines]
+    if signal is not None:
+        lines = [ln.replace("SIN(0 0 1k)", signal) for ln in lines]
+    return "\n".join(lines) + "\n"
+
+
+def dc_and_midband(circuit: str, nodes: list[str], gain_nodes: list[str]) -> tuple[dict, dict]:
+    """``op`` node voltages [V] and ``.ac`` gains v(node)/v(in) at MIDBAND_HZ (complex)."""
+    op, ac = run(circuit, ["op", f"ac lin 1 {MIDBAND_HZ!r} {MIDBAND_HZ!r}"],
+                 [f"v({n})" for n in nodes])
+    dc = {n: float(op[f"v({n})"][0]) for n in nodes}
+    gain = {n: complex(ac[f"v({n})"][0]) for n in gain_nodes}
+    return dc, gain

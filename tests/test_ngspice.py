@@ -119,3 +119,67 @@ def test_ngspice_power_semantics_need_the_guard():
     # softplus(-1000) written safely is ~0; the naive ln(1+exp(1000)) saturates near 228
     assert abs(r["v(e)"][0]) < 1e-12
     assert r["v(f)"][0] == pytest.approx(np.log(1e99), rel=1e-6)
+
+
+# -- stages: netlists around exported subcircuits vs fitter.stage.solve ----------------
+
+from fitter.stage import CathodeFollower, CommonCathode, Stack, solve  # noqa: E402
+
+KO = _unit("koren", XU7["koren"])
+PW = FittedTriode("power", XU7["power"], tube="XU7", section="A")
+# a high-mu unit for the mu follower's bottom (dempwolf set above, 12AX7-like)
+DW = FittedTriode("dempwolf", XU7["dempwolf"], tube="XA7")
+
+# Invented example circuits (component values are ordinary ones, not from any design).
+STAGES = {
+    "cc-bypassed": (CommonCathode(b_plus=250.0, ra=22e3, rk=1e3, ck=100e-6, rl=220e3), (KO,)),
+    "cc-unbypassed": (CommonCathode(b_plus=250.0, ra=22e3, rk=1e3, rl=220e3), (PW,)),
+    "cc-fixed-bias": (CommonCathode(b_plus=300.0, ra=100e3, vbias=-1.5, rl=470e3), (DW,)),
+    "cathode-follower": (CathodeFollower(b_plus=300.0, rk=22e3, vneg=-50.0, r_upper=1e6,
+                                         r_lower=680e3, rl=10e3), (KO,)),
+    "srpp": (Stack.srpp(b_plus=300.0, rk=820.0, rl=47e3), (KO, PW)),
+    "mu-follower": (Stack.mu_follower(b_plus=300.0, rk=1.5e3, r_top=1.5e3, r_mid=68e3,
+                                      c_top=1e-6, ck=100e-6, rl=100e3), (DW, KO)),
+    "mu-follower-plate-out": (Stack.mu_follower(b_plus=300.0, rk=1.5e3, r_top=1.5e3, r_mid=68e3,
+                                                c_top=1e-6, rl=100e3, output="bottom-plate"), (DW, KO)),
+}
+
+
+def _circuit(stage, tubes, probe="gain", signal=None):
+    subs = [spice_subcircuit(t) for t in tubes]
+    if isinstance(stage, CommonCathode):
+        return ng.common_cathode_circuit(stage, *subs, probe=probe, signal=signal)
+    if isinstance(stage, CathodeFollower):
+        return ng.cathode_follower_circuit(stage, *subs, probe=probe, signal=signal)
+    return ng.stack_circuit(stage, *subs, probe=probe, signal=signal)
+
+
+@pytest.mark.parametrize("key", list(STAGES))
+def test_stage_matches_solver(key):
+    # Reference: ngspice .op (DC node voltages) and .ac at 1 kHz with every coupling
+    # and bypass capacitor 1 F (mid-band gain to each output; output impedance from a
+    # 1 A AC test current with the load removed), on netlists built from the same
+    # dataclass values around the exported subcircuits.  Issue tolerances: DC node
+    # voltages 0.1 %, mid-band gain 0.5 %.
+    stage, tubes = STAGES[key]
+    r = solve(stage, *tubes, errors=False).to_dict()
+    nodes = list(r["nodes_v"])
+    outs = [n for n in ("plate", "cathode", "cathode_top", "plate_bottom") if f"gain_{n}" in r]
+    dc, gain = ng.dc_and_midband(_circuit(stage, tubes), nodes, outs)
+    for n in nodes:
+        assert dc[n] == pytest.approx(r["nodes_v"][n], rel=1e-3, abs=1e-6), n
+    for n in outs:
+        assert gain[n].real == pytest.approx(r[f"gain_{n}"], rel=5e-3, abs=1e-6), n
+        assert abs(gain[n].imag) <= 1e-3 * max(abs(gain[n]), 1e-3), n  # really mid-band
+    assert abs(gain[r["output"]].real) > 0.5  # the compared gain is a real one
+    out = r["output"]
+    _, z = ng.dc_and_midband(_circuit(stage, tubes, probe="zout"), nodes, [out])
+    assert z[out].real == pytest.approx(r["zout_ohm"], rel=5e-3)
+    # the standing current, from ngspice's node voltages and Ohm's law
+    if isinstance(stage, CommonCathode):
+        ia = (stage.b_plus - dc["plate"]) / stage.ra
+    elif isinstance(stage, CathodeFollower):
+        ia = (dc["cathode"] - stage.vneg) / stage.rk
+    else:
+        ia = dc["cathode_bottom"] / stage.rk
+    assert 1e3 * ia == pytest.approx(r["ia_ma"], rel=1e-3)
