@@ -313,6 +313,8 @@ class _Problem:
         if with_grid:
             sel = np.concatenate([sel, np.zeros(self.ia.size, dtype=bool)])
         self.scale_points = sel
+        order = np.argsort(np.abs(self.ia), kind="stable")
+        self.current_bands = np.array_split(order, max(1, min(5, self.ia.size // 20)))
 
     @staticmethod
     def values(params):
@@ -412,7 +414,7 @@ class _FastSearch:
                 self.sw = None
                 raw = self._fun(x)
                 scale = max(_robust_scale(raw, self.prob.scale_points), 1e-5)
-                z = (raw / (f_scale_sigmas * _point_scales(raw, self.prob, scale))) ** 2
+                z = (raw / (f_scale_sigmas * scale)) ** 2
                 self.sw = (1.0 + z) ** -0.25  # sqrt of the soft-L1 weight (1 + z)^(-1/2)
                 x_new, ok, msg = self.solve(x, tol=1e-6)
                 step = np.max(np.abs(x_new - x))
@@ -455,19 +457,16 @@ class _FastSearch:
         return values, cov, chisqr, nres, ok, msg
 
 
-def _point_scales(r, prob: "_Problem", base: float, bins: int = 5):
+def _point_scales(r, prob: "_Problem", base: float):
     """Robust scale of each residual, allowing for noise that is not a fixed fraction of
     the current (an absolute noise floor makes small currents relatively noisier).
 
-    The plate-current points are split into up to ``bins`` groups of similar current;
+    The plate-current points are split into up to five groups of similar current;
     each point gets the larger of its group's robust scale and ``base`` (the scale of
     the points well above the floor).  Grid-current residuals get ``base``.
     """
-    n = prob.ia.size
     out = np.full(r.size, base)
-    order = np.argsort(np.abs(prob.ia), kind="stable")
-    k = max(1, min(bins, n // 20))
-    for chunk in np.array_split(order, k):
+    for chunk in prob.current_bands:
         rc = r[chunk]
         s_b = 1.4826 * float(np.median(np.abs(rc - np.median(rc))))
         out[chunk] = max(s_b, base)

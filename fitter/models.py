@@ -188,25 +188,34 @@ def _linearised_power_guess(va, vg, ia):
     sel = ia > 0.05 * imax
     if sel.sum() < 4:
         sel = ia > 0
-    best = None
     A = np.column_stack([va[sel], vg[sel], np.ones(sel.sum())])
+
+    def solve(n, w):
+        y = ia[sel] ** (1.0 / n)
+        coef, *_ = np.linalg.lstsq(A * w[:, None], y * w, rcond=None)
+        rel = (A @ coef - y) / np.maximum(y, 1e-12)
+        return coef, rel, y
+
+    best = None
     for n in (1.2, 1.35, 1.5, 1.65, 1.8, 2.0):
         y = ia[sel] ** (1.0 / n)
-        # relative weights, then a few Huber-type reweightings so that a bad point
-        # (a digitising slip, a tracer glitch) does not spoil the start
+        coef, rel, _ = solve(n, 1.0 / np.maximum(y, 1e-12))
+        # scored by the median squared relative residual, which a few bad points
+        # (a digitising slip, a tracer glitch) cannot spoil
+        score = float(np.median(rel**2))
+        if coef[0] > 0 and coef[1] > 0 and (best is None or score < best[0]):
+            best = (score, n)
+    if best is not None:
+        n = best[1]
+        y = ia[sel] ** (1.0 / n)
         w = 1.0 / np.maximum(y, 1e-12)
-        for _ in range(4):
-            coef, *_ = np.linalg.lstsq(A * w[:, None], y * w, rcond=None)
-            rel = (A @ coef - y) / np.maximum(y, 1e-12)
+        for _ in range(3):
+            # Huber-type reweighting so that bad points do not pull the start
+            coef, rel, _ = solve(n, w)
             s = 1.4826 * np.median(np.abs(rel)) + 1e-9
             w = np.minimum(1.0, 2.0 * s / np.maximum(np.abs(rel), 1e-12)) / np.maximum(y, 1e-12)
         a, b, c = coef
-        if not (a > 0 and b > 0):
-            continue
-        res = (A @ coef - y) / np.maximum(y, 1e-12)
-        score = float(np.median(res**2))
-        if best is None or score < best[0]:
-            best = (score, n, a, b, c)
+        best = (0.0, n, a, b, c) if (a > 0 and b > 0) else None
     if best is None:
         # fall back on a textbook-ish triode
         return dict(K=imax / max(np.max(va) / 20.0, 1.0) ** 1.5, mu=20.0, n=1.5, vc=0.0)
