@@ -1,10 +1,14 @@
 """Export a model card to SPICE, run ngspice on it, print how far its plate curves are
 from Platebook's model.
 
-    python bench/ngspice_check.py CARD [--va 0:400:5] [--vg -4:0:0.25]
+    python bench/ngspice_check.py CARD [--va 0:400:5] [--vg -4:0:0.25] [--stages]
+        [--bplus 250] [--ra 22k] [--rk 1k] [--rl 220k]
 
 The grid defaults to the card's fitted range (about 80 plate voltages by 17 grid
-voltages).  Prints figures only; asserts nothing.
+voltages).  With ``--stages`` it also builds a common-cathode stage (Rk bypassed)
+and an SRPP (the card's unit top and bottom) around the exported subcircuit and
+prints ngspice's DC node voltages, mid-band gain and output impedance beside
+Platebook's solver.  Prints figures only; asserts nothing.
 """
 
 from __future__ import annotations
@@ -22,7 +26,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 import ngspice_util as ng  # noqa: E402
 
 from fitter.card import CardError, load_card  # noqa: E402
-from fitter.export import ExportError, parse_sweep, spice_name, spice_subcircuit  # noqa: E402
+from fitter.export import HIGH_VOLTAGE_CAUTION, ExportError, parse_sweep, spice_name, spice_subcircuit  # noqa: E402
+from fitter.stage import CommonCathode, Stack, solve  # noqa: E402
+from fitter.units import parse_value  # noqa: E402
 
 
 def _range(spec, lo, hi, n, what):
@@ -41,6 +47,11 @@ def main(argv=None) -> int:
     ap.add_argument("--va", default=None, help="plate voltages start:stop:step [V]")
     ap.add_argument("--vg", default=None, help="grid voltages start:stop:step [V]")
     ap.add_argument("--show", action="store_true", help="print the exported netlist too")
+    ap.add_argument("--stages", action="store_true", help="also compare two stages with the solver")
+    ap.add_argument("--bplus", default="250", help="stages: B+ [V] (default 250)")
+    ap.add_argument("--ra", default="22k", help="common cathode: plate resistor (default 22k)")
+    ap.add_argument("--rk", default="1k", help="cathode resistor of both stages (default 1k)")
+    ap.add_argument("--rl", default="220k", help="AC load of both stages (default 220k)")
     a = ap.parse_args(argv)
     if not ng.available():
         print(ng.SKIP_REASON, file=sys.stderr)
@@ -74,6 +85,35 @@ def main(argv=None) -> int:
           f"{np.max(err[on] / np.abs(ia_py[on])) if on.any() else float('nan'):.3g}")
     print(f"max |abs diff| anywhere: {np.max(err):.3g} A")
     print(f"ngspice run: {dt:.2f} s")
+    if a.stages:
+        try:
+            bp, ra, rk, rl = (parse_value(v, f"--{k}") for k, v in
+                              (("bplus", a.bplus), ("ra", a.ra), ("rk", a.rk), ("rl", a.rl)))
+            stages = {
+                "common cathode (Rk bypassed)": CommonCathode(b_plus=bp, ra=ra, rk=rk, ck=100e-6, rl=rl),
+                "SRPP (same unit top and bottom)": Stack.srpp(b_plus=bp, rk=rk, rl=rl),
+            }
+        except ValueError as e:
+            print(f"ngspice_check: {e}", file=sys.stderr)
+            return 1
+        print()
+        print(HIGH_VOLTAGE_CAUTION)
+        for title, st in stages.items():
+            r = solve(st, *([unit] * (2 if isinstance(st, Stack) else 1)), errors=False).to_dict()
+            sub = [text] * (2 if isinstance(st, Stack) else 1)
+            build = ng.stack_circuit if isinstance(st, Stack) else ng.common_cathode_circuit
+            nodes = list(r["nodes_v"])
+            out = r["output"]
+            dc, g = ng.dc_and_midband(build(st, *sub), nodes, [out])
+            _, z = ng.dc_and_midband(build(st, *sub, probe="zout"), nodes, [out])
+            ra_txt = f", Ra {ra:g} ohm" if isinstance(st, CommonCathode) else ""
+            print(f"{title}: B+ {bp:g} V{ra_txt}, Rk {rk:g} ohm, RL {rl:g} ohm (invented values)")
+            print(f"  {'figure':<22}{'Platebook':>14}{'ngspice':>14}{'rel diff':>11}")
+            rows = [(f"v({n}) [V]", r["nodes_v"][n], dc[n]) for n in nodes]
+            rows += [(f"gain at {out}", r["gain"], g[out].real), ("zout [ohm]", r["zout_ohm"], z[out].real)]
+            for label, pb, sp in rows:
+                rel = abs(sp - pb) / max(abs(pb), 1e-9) if abs(pb) > 1e-9 else abs(sp - pb)
+                print(f"  {label:<22}{pb:>14.6g}{sp:>14.6g}{rel:>11.1e}")
     return 0
 
 

@@ -35,6 +35,11 @@ SPICE
     own grid current: the plate source carries Ik - Ig and a second source
     carries Ig from grid to cathode, so the cathode current is Ik.
 
+    In a stacked stage ngspice may print "singular matrix ... gmin stepping" at the
+    start of its operating-point search: at its all-zero first guess every tube
+    has va = 0 and conducts nothing, so the node between the tubes floats.  It
+    recovers by itself; a ``.nodeset`` of the plate voltages avoids the message.
+
 JSON
     :func:`card_json` re-emits the unit as a model card (:func:`fitter.card.card_dict`).
 
@@ -57,7 +62,6 @@ from typing import Callable, Mapping
 import numpy as np
 
 from .card import card_dict
-from .models import MODELS
 from .triode import FittedTriode
 
 __all__ = [

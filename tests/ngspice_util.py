@@ -80,8 +80,7 @@ def run(circuit: str, analyses: list[str], vectors: list[str], title: str = "pla
         proc = subprocess.run([NGSPICE, "-b", "deck.cir"], cwd=tmp, capture_output=True,
                               text=True, timeout=timeout)
         log = proc.stdout + proc.stderr
-        bad = [ln for ln in log.splitlines()
-               if re.search(r"\berror\b|singular|timestep too small|no convergence", ln, re.I)]
+        bad = _problems(log)
         if proc.returncode != 0 or bad:
             raise NgspiceError(f"ngspice failed (rc {proc.returncode}): {' | '.join(bad[:5])}\n"
                                f"--- deck ---\n{deck}\n--- log ---\n{log[-3000:]}")
@@ -92,6 +91,22 @@ def run(circuit: str, analyses: list[str], vectors: list[str], title: str = "pla
                 raise NgspiceError(f"ngspice wrote no output for {analyses[k]!r}\n{log[-3000:]}")
             out.append(_parse_wrdata(f.read_text(), vectors))
     return out
+
+
+def _problems(log: str) -> list[str]:
+    """Lines of an ngspice log that mean the results cannot be trusted.
+
+    A "singular matrix" warning followed by successful gmin stepping is not one:
+    stacked stages start the operating-point search with every tube at va = 0, where
+    they conduct nothing, and ngspice recovers by itself.
+    """
+    lines = log.splitlines()
+    bad = [ln for ln in lines if re.search(
+        r"\berror\b|failed|aborted|timestep too small|no convergence|iteration limit", ln, re.I)]
+    if any("singular matrix" in ln for ln in lines) and not any(
+            "stepping completed" in ln for ln in lines):
+        bad += [ln for ln in lines if "singular matrix" in ln]
+    return bad
 
 
 def _parse_wrdata(text: str, vectors: list[str]) -> dict[str, np.ndarray]:
@@ -135,7 +150,7 @@ def fourier(circuit: str, tran: str, freq: float, node: str, nharm: int = 10,
                               text=True, timeout=timeout)
     log = proc.stdout + proc.stderr
     m = re.search(r"THD:\s*([0-9.eE+-]+)\s*%", log)
-    if proc.returncode != 0 or m is None:
+    if proc.returncode != 0 or m is None or _problems(log):
         raise NgspiceError(f"ngspice fourier failed (rc {proc.returncode})\n--- deck ---\n{deck}\n--- log ---\n{log[-3000:]}")
     harm = []
     for ln in log.splitlines():
