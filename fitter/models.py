@@ -318,7 +318,8 @@ POWER = TriodeModel(
 def _koren_parts(va, vg, mu, kp, kvb):
     va = np.asarray(va, float)
     vg = np.asarray(vg, float)
-    s = np.sqrt(kvb + va * va)
+    # floored so that kvb = 0 (its lower bound) at va = 0 gives E1 = 0, not 0/0
+    s = np.sqrt(np.maximum(kvb + va * va, 1e-24))
     z = kp * (1.0 / mu + vg / s)
     L = softplus(z)
     e1 = va * L / kp
