@@ -22,8 +22,8 @@ SPICE
       number, not an error) and ``pwr(x,y)`` returns ``sign(x)|x|^y``; either
       would give a spurious current in cutoff or at negative plate voltage.
       The exporter writes ``pwr(max(x,0),y)``.
-    * divisions are by fitted constants only, or by ``sqrt(kvb + va^2)`` with
-      kvb > 0 (a card with kvb = 0 gets a 1e-12 V^2 floor there).
+    * divisions are by fitted constants only, or by ``sqrt(max(kvb + va^2, 1e-24))``,
+      the same floor as the Python model, so kvb = 0 at va = 0 is no 0/0.
 
     Grid conduction: a model without a grid-current part (power, koren, and
     dempwolf with its grid parameters at their defaults) gets a behavioural
@@ -150,8 +150,9 @@ def _power_expression(p: Mapping[str, float], va: str, vg: str) -> SpiceExpressi
 def _koren_expression(p: Mapping[str, float], va: str, vg: str) -> SpiceExpression:
     # Koren (1996/2003): E1 = (va/kp) ln(1+exp(kp (1/mu + vg/sqrt(kvb + va^2))));
     # Ia = 2 E1^ex / kg1 for E1 > 0.
-    kvb = p["kvb"] if p["kvb"] > 0 else 1e-12
-    s = f"sqrt({_n(kvb)}+{va}*{va})"
+    # the floor is the Python model's own (fitter.models._koren_parts): with kvb = 0
+    # (its lower bound) at va = 0 it gives E1 = 0 instead of 0/0
+    s = f"sqrt(max({_n(p['kvb'])}+{va}*{va},1e-24))"
     z = f"{_n(p['kp'])}*(1/{_n(p['mu'])}+{vg}/{s})"
     e1 = f"({va}/{_n(p['kp'])})*{_softplus(z)}"
     return SpiceExpression(f"(2/{_n(p['kg1'])})*{_pos_pow(e1, p['ex'])}", None)

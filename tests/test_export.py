@@ -103,15 +103,15 @@ def test_guards_are_in_the_text():
         assert body.count("pwr(") == body.count("pwr(max(") > 0
 
 
-def test_kvb_zero_gets_a_floor_not_a_division_by_zero():
+def test_kvb_zero_gets_the_models_floor_not_a_division_by_zero():
     t = unit("koren", dict(PARAMS["koren"], kvb=0.0))
     e = spice_expression(t)
-    assert "sqrt(1e-12+" in e.plate
+    assert "sqrt(max(0.0+" in e.plate and ",1e-24))" in e.plate
+    va, vg = np.r_[0.0, 0.0, 100.0, 300.0], np.r_[-2.0, 0.0, -2.0, 0.0]
     with np.errstate(over="raise", invalid="raise", divide="raise"):
-        got = _eval_spice(e.plate, np.r_[0.0, 100.0, 300.0], np.r_[-2.0, -2.0, 0.0])
-    assert got[0] == 0.0
-    # (the Python model is compared away from va = 0, where with kvb = 0 it divides 0/0)
-    np.testing.assert_allclose(got[1:], t.current(np.r_[100.0, 300.0], np.r_[-2.0, 0.0]), rtol=1e-9)
+        got = _eval_spice(e.plate, va, vg)
+    assert got[0] == 0.0 and got[1] == 0.0
+    np.testing.assert_allclose(got, t.current(va, vg), rtol=1e-12, atol=1e-15)
 
 
 # -- subcircuit text -----------------------------------------------------------

@@ -69,6 +69,17 @@ def test_plate_curves_match_python_model(model):
     assert np.max(err[on] / ia_py[on]) < 1e-6
 
 
+def test_koren_with_kvb_at_its_lower_bound_runs():
+    # Reference: ngspice .dc sweep.  kvb = 0 is the registry's lower bound; at va = 0
+    # the exported sqrt(max(kvb + va^2, 1e-24)) floor keeps ngspice away from 0/0.
+    unit = _unit("koren", dict(XU7["koren"], kvb=0.0))
+    text = spice_subcircuit(unit)
+    va, vg, ia_spice = ng.plate_curves(text, _subckt_name(text), 0, 300, 10, -4, 1, 0.5)
+    ia_py = unit.current(va, vg)
+    assert np.all(np.isfinite(ia_spice)) and np.any(va == 0)
+    assert np.all(np.abs(ia_spice - ia_py) <= 1e-6 * np.abs(ia_py) + 1e-12)
+
+
 def test_dempwolf_fitted_grid_current_matches():
     # Reference: ngspice, plate current and the current the grid source supplies.
     unit = _unit("dempwolf", XU7_DEMPWOLF_GRID, tube="XU7g")
