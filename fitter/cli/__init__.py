@@ -22,3 +22,4 @@ def main():
 # Command modules register themselves on ``main``; keep one import per area.
 from . import fitcmd  # noqa: E402,F401
 from . import export  # noqa: E402,F401
+from . import stage  # noqa: E402,F401

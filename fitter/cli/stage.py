@@ -1,0 +1,350 @@
+"""``platebook stage ...`` and ``platebook distortion ...``: a stage analysed with fitted tubes.
+
+Thin layer: parse the options (engineering notation), load the model cards, call
+:mod:`fitter.stage` / :mod:`fitter.distortion`, print the report or one JSON object,
+save the PNG.  Exit status 0 ok, 1 input error, 2 the circuit could not be solved.
+"""
+
+from __future__ import annotations
+
+import json
+from collections import defaultdict
+
+import click
+
+from ..card import CardError, load_card, load_cards
+from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
+from ..units import parse_value
+from . import main
+
+
+def _fail(message: str, code: int = 1):
+    click.echo(f"error: {message}", err=True)
+    raise SystemExit(code)
+
+
+def _val(text, option, optional=True):
+    if text is None:
+        if optional:
+            return None
+        _fail(f"{option}: a value is required")
+    try:
+        return parse_value(text, option)
+    except ValueError as e:
+        _fail(str(e))
+
+
+def _pct(text, option):
+    s = str(text).strip()
+    try:
+        v = float(s[:-1]) if s.endswith("%") else float(s)
+    except ValueError:
+        _fail(f"{option}: cannot read {text!r}; give a percentage such as 1 or 1%")
+    if not (0 < v < 100):
+        _fail(f"{option}: must lie between 0 and 100 %, got {text!r}")
+    return v / 100.0
+
+
+def _card(path, option):
+    try:
+        return load_card(path)
+    except CardError as e:
+        _fail(f"{option}: {e}")
+
+
+# -- shared options ---------------------------------------------------------
+
+_COMMON = [
+    click.option("--rg", default="1M", show_default=True, help="Grid leak of the input tube [ohm]."),
+    click.option("--cin", default=None, help="Input coupling capacitor [F] (low corner)."),
+    click.option("--rs", default="0", show_default=True, help="Source resistance [ohm] (input high corner)."),
+    click.option("--rl", default=None, help="AC load through the output coupling capacitor [ohm]."),
+    click.option("--cout", default=None, help="Output coupling capacitor [F] (low corner)."),
+    click.option("--cload", default="0", show_default=True, help="Capacitance loading the output [F]."),
+    click.option("--cgk", default="0", show_default=True, help="Grid-cathode capacitance of each tube [F]."),
+    click.option("--cga", default="0", show_default=True, help="Grid-plate capacitance of each tube [F]."),
+    click.option("--cak", default="0", show_default=True, help="Plate-cathode capacitance of each tube [F]."),
+    click.option("--pa-max", default=None, help="Plate dissipation limit of each tube [W]."),
+    click.option("--heater", default="0", show_default=True,
+                 help="Heater reference to ground [V] (0: grounded; else the elevation)."),
+    click.option("--vhk-max", default="100", show_default=True, help="Heater-cathode voltage limit [V]."),
+]
+
+
+def _common_kwargs(o) -> dict:
+    return dict(
+        rg=_val(o["rg"], "--rg"), c_in=_val(o["cin"], "--cin"), rs=_val(o["rs"], "--rs"),
+        rl=_val(o["rl"], "--rl"), c_out=_val(o["cout"], "--cout"), c_load=_val(o["cload"], "--cload"),
+        cgk=_val(o["cgk"], "--cgk"), cga=_val(o["cga"], "--cga"), cak=_val(o["cak"], "--cak"),
+        pa_max=_val(o["pa_max"], "--pa-max"), heater=_val(o["heater"], "--heater"),
+        vhk_max=_val(o["vhk_max"], "--vhk-max"),
+    )
+
+
+_FIELD_OPTION = {
+    "b_plus": "--bplus", "ra": "--ra", "rk": "--rk", "ck": "--ck", "vbias": "--vbias", "vneg": "--vneg",
+    "r_upper": "--r-upper", "r_lower": "--r-lower", "r_top": "--r-top", "r_mid": "--r-mid",
+    "top_grid": "--top-grid", "rg_top": "--rg-top", "c_top": "--c-top", "output": "--output",
+    "rg": "--rg", "c_in": "--cin", "rs": "--rs", "rl": "--rl", "c_out": "--cout", "c_load": "--cload",
+    "cgk": "--cgk", "cga": "--cga", "cak": "--cak", "pa_max": "--pa-max", "heater": "--heater",
+    "vhk_max": "--vhk-max",
+}
+
+
+def _build(cls, **kw):
+    try:
+        return cls(**kw)
+    except ValueError as e:
+        msg = str(e)
+        # name the command-line option as well as the field
+        head = msg.split(":", 1)[0]
+        field = head.split(".", 1)[-1].split("/")[0]
+        opt = _FIELD_OPTION.get(field)
+        _fail(f"{opt} ({msg})" if opt else msg)
+
+
+def _cc_stage(o):
+    return _build(CommonCathode, b_plus=_val(o["bplus"], "--bplus", False), ra=_val(o["ra"], "--ra", False),
+                  rk=_val(o["rk"], "--rk"), ck=_val(o["ck"], "--ck"), vbias=_val(o["vbias"], "--vbias"),
+                  **_common_kwargs(o))
+
+
+def _cf_stage(o):
+    return _build(CathodeFollower, b_plus=_val(o["bplus"], "--bplus", False), rk=_val(o["rk"], "--rk", False),
+                  vneg=_val(o["vneg"], "--vneg"), ra=_val(o["ra"], "--ra"),
+                  r_upper=_val(o["r_upper"], "--r-upper"), r_lower=_val(o["r_lower"], "--r-lower"),
+                  **_common_kwargs(o))
+
+
+def _stack_stage(o):
+    return _build(Stack, b_plus=_val(o["bplus"], "--bplus", False), rk=_val(o["rk"], "--rk", False),
+                  r_top=_val(o["r_top"], "--r-top", False), r_mid=_val(o["r_mid"], "--r-mid"),
+                  ck=_val(o["ck"], "--ck"), vbias=_val(o["vbias"], "--vbias"), top_grid=o["top_grid"],
+                  rg_top=_val(o["rg_top"], "--rg-top"), c_top=_val(o["c_top"], "--c-top"),
+                  output=o["output"], **_common_kwargs(o))
+
+
+_CC_OPTS = [
+    click.option("--tube", "tube", default=None, help="Model card (JSON) of the tube."),
+    click.option("--bplus", default=None, help="Supply voltage B+ [V]."),
+    click.option("--ra", default=None, help="Plate resistor [ohm]."),
+    click.option("--rk", default="0", show_default=True, help="Cathode resistor [ohm] (0 with --vbias)."),
+    click.option("--ck", default=None, help="Cathode bypass capacitor [F]; omit for unbypassed Rk."),
+    click.option("--vbias", default=None, help="Fixed grid bias to ground [V], e.g. -2."),
+]
+_CF_OPTS = [
+    click.option("--tube", "tube", default=None, help="Model card (JSON) of the tube."),
+    click.option("--bplus", default=None, help="Supply voltage at the plate [V]."),
+    click.option("--rk", default=None, help="Cathode resistor [ohm]."),
+    click.option("--vneg", default="0", show_default=True, help="Rail the cathode resistor returns to [V]."),
+    click.option("--ra", default="0", show_default=True, help="Plate resistor [ohm] (usually 0)."),
+    click.option("--r-upper", default=None, help="Grid bias divider, B+ side [ohm]."),
+    click.option("--r-lower", default=None, help="Grid bias divider, ground side [ohm]."),
+]
+_STACK_OPTS = [
+    click.option("--bottom", default=None, help="Model card of the bottom tube."),
+    click.option("--top", default=None, help="Model card of the top tube."),
+    click.option("--bplus", default=None, help="Supply voltage B+ [V]."),
+    click.option("--rk", default=None, help="Bottom cathode resistor [ohm] (0 with --vbias)."),
+    click.option("--ck", default=None, help="Bottom cathode bypass capacitor [F]; omit for unbypassed."),
+    click.option("--vbias", default=None, help="Fixed bias of the bottom grid [V]."),
+    click.option("--r-top", default=None, help="Resistor from the top cathode to the mid node [ohm]."),
+    click.option("--r-mid", default="0", show_default=True,
+                 help="Load resistor from the mid node to the bottom plate [ohm] (0 for SRPP)."),
+    click.option("--top-grid", type=click.Choice(["tied", "coupled"]), default="tied", show_default=True,
+                 help="tied: top grid on the bottom plate (SRPP); coupled: AC-coupled from the bottom "
+                      "plate, biased from the mid node (mu follower)."),
+    click.option("--rg-top", default="1M", show_default=True, help="Top grid bias resistor [ohm] (coupled)."),
+    click.option("--c-top", default=None, help="Top grid coupling capacitor [F] (coupled)."),
+    click.option("--output", type=click.Choice(["top-cathode", "bottom-plate"]), default="top-cathode",
+                 show_default=True, help="Where the output and the load are taken."),
+]
+
+_KIND = {
+    "common-cathode": (_CC_OPTS, _cc_stage, "A common-cathode stage: B+, Ra, Rk (bypassed or not) or fixed bias."),
+    "cathode-follower": (_CF_OPTS, _cf_stage, "A cathode follower: Rk to ground or a negative rail."),
+    "stack": (_STACK_OPTS, _stack_stage,
+              "Two triodes in series: SRPP (--top-grid tied) or mu follower (--top-grid coupled)."),
+}
+
+
+def _apply(opts, fn):
+    for opt in reversed(opts):
+        fn = opt(fn)
+    return fn
+
+
+def _tubes(kind, o):
+    if kind == "stack":
+        if o["bottom"] is None or o["top"] is None:
+            _fail("--bottom and --top: give the model cards of both tubes")
+        return (_card(o["bottom"], "--bottom"), _card(o["top"], "--top"))
+    if o["tube"] is None:
+        _fail("--tube: give the model card of the tube")
+    return (_card(o["tube"], "--tube"),)
+
+
+def _spread_cases(kind, folder):
+    try:
+        units = load_cards(folder)
+    except CardError as e:
+        _fail(f"--spread: {e}")
+    if kind != "stack":
+        return units, None, ""
+    by_tube = defaultdict(list)
+    for u in units:
+        by_tube[u.tube].append(u)
+    if all(len(v) == 2 for v in by_tube.values()):
+        bottoms, tops = [], []
+        for v in by_tube.values():
+            v = sorted(v, key=lambda t: t.section or "")
+            bottoms.append(v[0])
+            tops.append(v[1])
+        return bottoms, tops, "the two sections of each tube (first section at the bottom)"
+    return units, None, "each unit in both positions"
+
+
+def _write_plot(fn, obj, path):
+    try:
+        fn(obj, path)
+    except OSError as e:
+        _fail(f"--plot: cannot write {path}: {e.strerror or e}")
+
+
+# -- platebook stage --------------------------------------------------------
+
+
+@main.group("stage")
+def stage_group():
+    """Operating point, gain, output impedance and limits of a stage with fitted tubes.
+
+    Component values take engineering notation (100k, 1.5k, 4.7M, 470n, 22u, 100p).
+    CAUTION: tube circuits work at lethal voltages; follow local codes and licensed practice.
+    """
+
+
+def _make_stage_command(kind):
+    opts, builder, doc = _KIND[kind]
+
+    def command(**o):
+        st = builder(o)
+        try:
+            if o["spread"]:
+                units, tops, pairing = _spread_cases(kind, o["spread"])
+                res = spread(st, units, tops, slew_vpeak=_val(o["swing"], "--swing"))
+                if pairing:
+                    res.pairing = pairing
+                if o["json"]:
+                    click.echo(json.dumps(res.to_dict(), allow_nan=False))
+                else:
+                    click.echo(res.report())
+                return
+            tubes = _tubes(kind, o)
+            r = solve(st, *tubes, errors=not o["no_errors"], slew_vpeak=_val(o["swing"], "--swing"))
+        except StageSolveError as e:
+            _fail(f"the stage could not be solved: {e}", 2)
+        except ValueError as e:
+            _fail(str(e))
+        if o["plot"]:
+            from ..plotting_stage import save_load_line_plot
+
+            _write_plot(save_load_line_plot, r, o["plot"])
+        if o["json"]:
+            click.echo(json.dumps(r.to_dict(), allow_nan=False))
+        else:
+            click.echo(r.report())
+            if o["plot"]:
+                click.echo(f"\nload-line plot: {o['plot']}")
+
+    command.__doc__ = doc + "\n\nPrints a bench report, or one JSON object with --json."
+    extra = [
+        click.option("--swing", default="10", show_default=True,
+                     help="Output peak amplitude for the slew-rate check [V]."),
+        click.option("--spread", default=None, type=click.Path(file_okay=False),
+                     help="Folder of model cards: min/median/max of every figure over the units."),
+        click.option("--no-errors", is_flag=True, help="Skip the error bars from the fit covariance."),
+        click.option("--plot", default=None, help="Save the load-line plot to this PNG."),
+        click.option("--json", "json", is_flag=True, help="Print one JSON object."),
+    ]
+    return stage_group.command(kind)(_apply(opts + _COMMON + extra, command))
+
+
+for _k in _KIND:
+    _make_stage_command(_k)
+
+
+# -- platebook distortion ---------------------------------------------------
+
+
+@main.group("distortion")
+def distortion_group():
+    """Harmonics and THD of a stage (quasi-static, mid-band), at a level or swept.
+
+    Same circuit options as ``platebook stage``.  CAUTION: tube circuits work at
+    lethal voltages; follow local codes and licensed practice.
+    """
+
+
+def _make_distortion_command(kind):
+    opts, builder, doc = _KIND[kind]
+
+    def command(**o):
+        from .. import distortion as dist
+
+        st = builder(o)
+        tubes = _tubes(kind, o)
+        n = o["samples"]
+        try:
+            if o["sweep"]:
+                if o["vin"] is not None or o["vout"] is not None:
+                    _fail("--sweep: give either --sweep or a level (--vin / --vout), not both")
+                res = dist.sweep(st, *tubes, levels=o["levels"], thd_limit=_pct(o["thd_limit"], "--thd-limit"),
+                                 n_samples=n, grid_onset=_val(o["grid_onset"], "--grid-onset"))
+                if o["plot"]:
+                    from ..plotting_stage import save_thd_plot
+
+                    _write_plot(save_thd_plot, res, o["plot"])
+            else:
+                vin = _val(o["vin"], "--vin")
+                vout = _val(o["vout"], "--vout")
+                if (vin is None) == (vout is None):
+                    _fail("give one level: --vin (input peak) or --vout (output peak), or --sweep")
+                res = dist.analyse(st, *tubes, vin_peak=vin, vout_peak=vout, n_samples=n,
+                                   grid_onset=_val(o["grid_onset"], "--grid-onset"))
+                if o["plot"]:
+                    from ..plotting_stage import save_waveform_plot
+
+                    _write_plot(save_waveform_plot, res, o["plot"])
+        except StageSolveError as e:
+            _fail(f"the stage could not be solved: {e}", 2)
+        except ValueError as e:
+            _fail(str(e))
+        if o["json"]:
+            click.echo(json.dumps(res.to_dict(), allow_nan=False))
+        else:
+            click.echo(res.report())
+            if o["plot"]:
+                click.echo(f"\nplot: {o['plot']}")
+
+    command.__doc__ = (doc + "\n\nHarmonics H2..H10 and THD at --vin or --vout (peak volts), or a THD "
+                       "sweep up to grid-current onset or cutoff with --sweep.")
+    extra = [
+        click.option("--vin", default=None, help="Input grid amplitude [V peak]."),
+        click.option("--vout", default=None, help="Output fundamental amplitude [V peak]."),
+        click.option("--sweep", is_flag=True, help="Sweep THD against output level."),
+        click.option("--levels", default=30, show_default=True, type=click.IntRange(2, 400),
+                     help="Levels in the sweep."),
+        click.option("--thd-limit", default="1%", show_default=True, help="THD threshold for the headroom."),
+        click.option("--grid-onset", default="0", show_default=True,
+                     help="Grid-cathode voltage taken as grid-current onset [V]."),
+        click.option("--samples", default=256, show_default=True, type=click.IntRange(32, 8192),
+                     help="Samples per period."),
+        click.option("--plot", default=None,
+                     help="Save a PNG: THD against level (--sweep) or the waveform and spectrum."),
+        click.option("--json", "json", is_flag=True, help="Print one JSON object."),
+    ]
+    return distortion_group.command(kind)(_apply(opts + _COMMON + extra, command))
+
+
+for _k in _KIND:
+    _make_distortion_command(_k)
