@@ -21,7 +21,7 @@ Numerical guards (the reason for most of the ``np.where`` calls below):
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable, Mapping
 
 import numpy as np
@@ -126,7 +126,6 @@ class TriodeModel:
     grid_current: Callable | None = None
     #: extra starting points tried by the fitter (functions of the first guess)
     alternative_starts: Callable | None = None
-    spice_expression: Callable | None = field(default=None, compare=False)
 
     @property
     def param_names(self) -> tuple[str, ...]:
