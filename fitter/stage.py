@@ -412,6 +412,9 @@ class _Bank:
     def __init__(self, model, params):
         self.model = model
         self.params = params
+        # models without a grid-current part never give a negative plate current
+        self.nonnegative = not (model.grid_current is not None
+                                and (np.any(params.get("Gg", 0.0) != 0) or np.any(params.get("Ig0", 0.0) != 0)))
 
     @classmethod
     def of(cls, triodes: Sequence[FittedTriode]) -> "_Bank":
@@ -452,6 +455,10 @@ def _group_key(t: FittedTriode):
 # ---------------------------------------------------------------------------
 
 _I_ABS = 1e-16  # [A]
+#: try the joint Newton iteration first for mid-band stack solves (the nested bracketed
+#: iteration is the fallback, and the only method for the DC solve)
+_JOINT = True
+_JOINT_MAXIT = 12
 _REL = 1e-13
 _MAXIT = 80
 
@@ -525,7 +532,9 @@ def _solve_outer(fun, x0, lo, hi, xtol):
         xn = np.where(F == 0, x, xn)
         step = np.abs(xn - x)
         if np.all(step <= xtol):
-            stuck = np.abs(F) > 1e-9 * np.maximum(np.abs(dF) * span, 1e-12)
+            # residual [A] small against the iteration's scale, or below what the inner
+            # solves resolve (1e-13 A) where both tubes are cut off
+            stuck = np.abs(F) > 1e-9 * np.abs(dF) * span + 1e-13
             if not np.any(stuck):
                 return x, state
             widen += 1
@@ -667,11 +676,72 @@ def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, 
             dF = di1 + glp - (di2 * (1.0 - glk * cK) - glk * dkap)
         return F, dF, (i1, i2)
 
-    p0 = (0.5 * B) if dc else mid_op["plate_bottom"]
-    p0 = np.broadcast_to(p0, shape).astype(float)
-    lo = np.full(shape, -0.5 * B)
-    hi = np.full(shape, 1.5 * B)
-    p1, (i1, i2) = _solve_outer(residual, p0, lo, hi, xtol=1e-12 * B)
+    def joint(p1, i1, i2):
+        """Newton on (P1, I1, I2) together: one tube evaluation each per step.  Its
+        step in P1 is the nested iteration's step with the inner solves cut to one
+        Newton step, so near the root it is the same iteration, only cheaper."""
+        for it in range(_JOINT_MAXIT):
+            va1 = p1 - kc - ru * i1
+            vg = vg1 - kc - ru * i1
+            f1 = bottom.current(va1, vg)
+            f1va, f1vg = bottom.gradient(va1, vg)
+            a0, a1, b0, b1, da0, db0, _ = top_coeffs(p1)
+            va2 = a0 - a1 * i2
+            vg2 = b0 - b1 * i2
+            f2 = top.current(va2, vg2)
+            f2va, f2vg = top.gradient(va2, vg2)
+            r1 = i1 - f1
+            r2 = i2 - f2
+            D1 = 1.0 + ru * (f1va + f1vg)
+            D2 = 1.0 + a1 * f2va + b1 * f2vg
+            c2 = f2va * da0 + f2vg * db0
+            if dc:
+                r3 = i1 - i2
+                e, h = -1.0, 0.0
+            else:
+                k2 = cK * i2 + (B - a0)
+                r3 = i1 + glp * (p1 - p10) - ixp - (i2 + ixk - glk * (k2 - k20))
+                e, h = -(1.0 - glk * cK), glp + glk * dkap
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dp = -(r3 - r1 / D1 - e * r2 / D2) / (f1va / D1 + e * c2 / D2 + h)
+            dp = np.clip(dp, -0.2 * B, 0.2 * B)
+            di1 = (-r1 + f1va * dp) / D1
+            di2 = (-r2 + c2 * dp) / D2
+            if not (np.all(np.isfinite(dp)) and np.all(np.isfinite(di1)) and np.all(np.isfinite(di2))):
+                return None
+            done = (np.all(np.abs(dp) <= 1e-12 * B)
+                    and np.all(np.abs(di1) <= _I_ABS + _REL * np.abs(i1))
+                    and np.all(np.abs(di2) <= _I_ABS + _REL * np.abs(i2)))
+            if done:
+                return p1, i1, i2
+            p1 = p1 + dp
+            # currents stay non-negative where the model cannot give a negative one
+            i1 = np.where(i1 + di1 < 0, 0.5 * i1, i1 + di1) if bottom.nonnegative else i1 + di1
+            i2 = np.where(i2 + di2 < 0, 0.5 * i2, i2 + di2) if top.nonnegative else i2 + di2
+        return None
+
+    got = None
+    if _JOINT and not dc:
+        got = joint(np.broadcast_to(mid_op["plate_bottom"], shape).astype(float),
+                    np.broadcast_to(x0[0], shape).astype(float), np.broadcast_to(x0[1], shape).astype(float))
+    elif _JOINT:
+        # DC start: bottom plate at B+/2 and the current the bottom tube draws there
+        pstart = np.full(shape, 0.5 * B)
+        # one Newton step of the bottom tube's equation from zero current (F' >= 1 keeps
+        # it between zero and the bottom tube's unloaded current)
+        va_s, vg_s = pstart - kc, vg1 - kc
+        f0 = bottom.current(va_s, vg_s)
+        g0a, g0g = bottom.gradient(va_s, vg_s)
+        istart = np.broadcast_to(f0 / (1.0 + ru * (g0a + g0g)), shape).astype(float)
+        got = joint(pstart, istart, istart.copy())
+    if got is not None:
+        p1, i1, i2 = got
+    else:
+        p0 = (0.5 * B) if dc else mid_op["plate_bottom"]
+        p0 = np.broadcast_to(p0, shape).astype(float)
+        lo = np.full(shape, -0.5 * B)
+        hi = np.full(shape, 1.5 * B)
+        p1, (i1, i2) = _solve_outer(residual, p0, lo, hi, xtol=1e-12 * B)
     i1 = np.broadcast_to(i1, shape)
     i2 = np.broadcast_to(i2, shape)
     k1 = kc + ru * i1
@@ -769,7 +839,8 @@ def _analyse(stage, banks, n, slew_vpeak):
         fig[pos + ".pa"] = va * ia
         fig[pos + ".gm"] = gvg
         fig[pos + ".rp"] = rp
-        fig[pos + ".mu"] = gvg * rp
+        with np.errstate(divide="ignore", invalid="ignore"):
+            fig[pos + ".mu"] = np.where(gva > 0, gvg / np.where(gva > 0, gva, 1.0), np.nan)
         cath = "cathode" if pos == "tube" else "cathode_" + pos
         fig[pos + ".vhk"] = op[cath] - stage.heater
     fig["ia"] = op[positions[0] + ".ia"]
