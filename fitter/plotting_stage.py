@@ -140,7 +140,7 @@ def plot_load_lines(result: StageResult, axes=None):
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2, frameon=False)
     fig.suptitle(f"{stage_title(st)}: gain {f['gain']:.4g} at {result.to_dict()['output'].replace('_', ' ')}, "
-                 f"zout {_eng(f['zout'])}ohm", fontsize=11)
+                 f"zout {_eng(f['zout'])} ohm", fontsize=11)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     fig.tight_layout(rect=(0, 0.03, 1, 0.96))
     return axes

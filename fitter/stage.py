@@ -1106,7 +1106,12 @@ def _eng(v, unit=""):
 
     if v is None or not np.isfinite(v):
         return "inf" if v is not None and v > 0 else "n/a"
-    return format_value(float(v)) + (f" {unit}" if unit and unit not in ("F", "H") else unit)
+    import re
+
+    if not unit:
+        return format_value(float(v))
+    # "46.19 kHz", "57.07 kohm", "22 uF": a space between the number and prefix + unit
+    return re.sub(r"^([-+]?[\d.]+(?:e[-+]?\d+)?)", r"\1 ", format_value(float(v), unit)).rstrip()
 
 
 def _circuit_line(st) -> str:
@@ -1342,8 +1347,9 @@ class SpreadResult:
                "figures": figs, "caution": CAUTION, "circuit": self.stage.to_dict()}
         if self.pairing:
             out["pairing"] = self.pairing
-        i_lo = int(np.argmin(self.values["gain"]))
-        i_hi = int(np.argmax(self.values["gain"]))
+        g = np.abs(self.values["gain"])
+        i_lo = int(np.nanargmin(g))
+        i_hi = int(np.nanargmax(g))
         out["lowest_gain_unit"] = self.labels[i_lo]
         out["highest_gain_unit"] = self.labels[i_hi]
         return out
@@ -1353,8 +1359,11 @@ class SpreadResult:
                  (f" ({self.pairing})" if self.pairing else ""), CAUTION, "",
                  "Circuit: " + _circuit_line(self.stage), "",
                  f"  {'figure':<34}{'min':>12}{'median':>12}{'max':>12}"]
+        out = output_node(self.stage)
         for key in self.values:
-            if key in ("slew_vpeak", "zin", "c_out_node"):
+            if key in ("slew_vpeak", "zin", "c_out_node", "gain.grid", "gain." + out, "zout." + out):
+                continue
+            if not np.any(np.isfinite(self.values[key])):
                 continue
             name, scale, unit, label = _describe(key)
             lo, med, hi = self.stats(key)
@@ -1362,7 +1371,7 @@ class SpreadResult:
             lines.append(f"  {lab:<34}{lo * scale:>12.4g}{med * scale:>12.4g}{hi * scale:>12.4g}")
         d = self.to_dict()
         lines.append("")
-        lines.append(f"lowest gain: {d['lowest_gain_unit']}, highest gain: {d['highest_gain_unit']}")
+        lines.append(f"lowest |gain|: {d['lowest_gain_unit']}, highest |gain|: {d['highest_gain_unit']}")
         return "\n".join(lines)
 
 

@@ -7,6 +7,7 @@ save the PNG.  Exit status 0 ok, 1 input error, 2 the circuit could not be solve
 
 from __future__ import annotations
 
+import glob
 import json
 from collections import defaultdict
 
@@ -184,9 +185,15 @@ def _tubes(kind, o):
     return (_card(o["tube"], "--tube"),)
 
 
-def _spread_cases(kind, folder):
+def _spread_cases(kind, where):
     try:
-        units = load_cards(folder)
+        if any(c in str(where) for c in "*?["):
+            files = sorted(glob.glob(str(where)))
+            if not files:
+                _fail(f"--spread: no model cards match {where}")
+            units = [load_card(f) for f in files]
+        else:
+            units = load_cards(where)
     except CardError as e:
         _fail(f"--spread: {e}")
     if kind != "stack":
@@ -260,8 +267,9 @@ def _make_stage_command(kind):
     extra = [
         click.option("--swing", default="10", show_default=True,
                      help="Output peak amplitude for the slew-rate check [V]."),
-        click.option("--spread", default=None, type=click.Path(file_okay=False),
-                     help="Folder of model cards: min/median/max of every figure over the units."),
+        click.option("--spread", default=None,
+                     help="Folder of model cards, or a quoted glob such as 'cards/HM-*.json': "
+                          "min/median/max of every figure over those units."),
         click.option("--no-errors", is_flag=True, help="Skip the error bars from the fit covariance."),
         click.option("--plot", default=None, help="Save the load-line plot to this PNG."),
         click.option("--json", "json", is_flag=True, help="Print one JSON object."),
