@@ -14,6 +14,7 @@ import numpy as np  # noqa: E402
 from .distortion import Distortion, DistortionSweep, drive_limit  # noqa: E402
 from .stage import (CAUTION, CathodeFollower, CommonCathode, StageResult, Stack,  # noqa: E402
                     operating_point, quasi_static, stage_title, tube_positions)
+from .stage import _eng as _eng_unit  # noqa: E402
 from .units import format_value  # noqa: E402
 
 __all__ = ["plot_load_lines", "save_load_line_plot", "plot_thd_sweep", "save_thd_plot",
@@ -140,7 +141,7 @@ def plot_load_lines(result: StageResult, axes=None):
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2, frameon=False)
     fig.suptitle(f"{stage_title(st)}: gain {f['gain']:.4g} at {result.to_dict()['output'].replace('_', ' ')}, "
-                 f"zout {_eng(f['zout'])} ohm", fontsize=11)
+                 f"zout {_eng_unit(f['zout'], 'ohm')}", fontsize=11)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     fig.tight_layout(rect=(0, 0.03, 1, 0.96))
     return axes

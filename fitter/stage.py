@@ -1035,6 +1035,7 @@ class StageResult:
     errors: dict
     warnings: list
     assumptions: list
+    error_note: str = ""
 
     @property
     def labels(self):
@@ -1204,10 +1205,7 @@ def _report(r: StageResult) -> str:
         lines.append("Warnings")
         lines.extend("  ! " + w for w in r.warnings)
     lines.append("")
-    err_note = ("error bars: one sigma from the fit covariance"
-                if any(np.isfinite(v) for v in r.errors.values()) else
-                "no error bars: the model card(s) carry no covariance")
-    lines.append("Notes: " + err_note)
+    lines.append("Notes: " + (r.error_note or "error bars: one sigma from the fit covariance"))
     lines.extend("  - " + a for a in r.assumptions)
     return "\n".join(lines)
 
@@ -1284,7 +1282,9 @@ def solve(stage, *triodes: FittedTriode, errors: bool = True, slew_vpeak: float 
     keys = list(raw)
     figures = {k: float(raw[k][0]) for k in keys}
     errs = {k: np.nan for k in keys}
+    note = "no error bars: not requested"
     if errors:
+        note = "no error bars: the model card(s) carry no covariance"
         var = np.zeros(len(keys))
         known = False
         for i, t in enumerate(triodes):
@@ -1305,8 +1305,11 @@ def solve(stage, *triodes: FittedTriode, errors: bool = True, slew_vpeak: float 
             known = True
         if known:
             errs = {k: float(np.sqrt(v)) for k, v in zip(keys, var)}
+            with_cov = [t.label for t in triodes if t.covariance is not None and t.free]
+            note = ("error bars: one sigma from the fit covariance of " + ", ".join(with_cov)
+                    + ("" if len(with_cov) == len(triodes) else " (the other card carries none)"))
     warns = _warnings(stage, triodes, figures)
-    return StageResult(stage, tuple(triodes), figures, errs, warns, list(_ASSUMPTIONS))
+    return StageResult(stage, tuple(triodes), figures, errs, warns, list(_ASSUMPTIONS), note)
 
 
 # ---------------------------------------------------------------------------
