@@ -27,6 +27,16 @@ demo: install
 	@echo "== Fitting the demo stock (invented data, made by curves/make_demo.py) =="
 	$(BIN)/platebook fit curves/stock_*.csv --model koren --save $(DEMO)/cards --plot $(DEMO)/plots; \
 	  status=$$?; [ $$status -le 2 ] || exit $$status
+	@echo; echo "== A common-cathode stage with the fitted HM-01:A (invented circuit values) =="
+	$(BIN)/platebook stage common-cathode --tube $(DEMO)/cards/HM-01_A.koren.json --bplus 300 --ra 100k \
+	  --rk 1.5k --ck 22u --rl 470k --cout 100n --cgk 1.6p --cga 1.7p --cak 0.46p --cload 100p --pa-max 1 \
+	  --plot $(DEMO)/stage_cc.png
+	@echo; echo "== Its distortion, swept up to grid-current onset =="
+	$(BIN)/platebook distortion common-cathode --tube $(DEMO)/cards/HM-01_A.koren.json --bplus 300 --ra 100k \
+	  --rk 1.5k --ck 22u --rl 470k --sweep --thd-limit 1% --plot $(DEMO)/thd_cc.png
+	@echo; echo "== An SRPP with the two sections of MM-01 (elevated-heater check) =="
+	$(BIN)/platebook stage stack --bottom $(DEMO)/cards/MM-01_A.koren.json --top $(DEMO)/cards/MM-01_B.koren.json \
+	  --bplus 400 --rk 1k --r-top 1k --rl 47k --vhk-max 200 --plot $(DEMO)/stage_srpp.png
 
 test: install-test ngspice
 	$(BIN)/python -m pytest -q

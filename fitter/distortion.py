@@ -85,7 +85,8 @@ def assumptions(triodes) -> list[str]:
                    "loading of the source by grid current is not modelled")
     else:
         out.append("no grid current: the models have none, so results past grid-current onset are not valid")
-    out.append(f"harmonics H2..H{N_HARMONICS} of the output's fundamental; THD = sqrt(sum Hk^2)/H1")
+    out.append(f"harmonics H2..H{N_HARMONICS} of the output's fundamental; THD = sqrt(sum Hk^2)/H1; "
+               f"below {DB_FLOOR:.0f} dB they are under the solve's numerical resolution (shown as <{DB_FLOOR:.0f})")
     return out
 
 
@@ -110,6 +111,15 @@ def _spectrum(stage, op, res):
     node = output_node(stage)
     y = res[node] - op[node]
     return y, harmonic_amplitudes(y)
+
+
+#: Harmonics below this [dB re H1] are under the numerical resolution of the quasi-static
+#: solve (256 samples, solver tolerance); reports print them as "<-140".
+DB_FLOOR = -140.0
+
+
+def _fmt_db(x: float, width: int) -> str:
+    return f"{'<' + format(DB_FLOOR, '.0f'):>{width}}" if not np.isfinite(x) or x < DB_FLOOR else f"{x:{width}.1f}"
 
 
 @dataclass
@@ -203,7 +213,7 @@ class Distortion:
                  "  harmonic   dB re H1        %      V peak"]
         db = self.harmonics_db()
         for k in range(N_HARMONICS - 1):
-            lines.append(f"  H{k + 2:<8} {db[k]:8.1f} {100 * self.harmonics[k + 1] / self.harmonics[0]:10.4f} "
+            lines.append(f"  H{k + 2:<8} {_fmt_db(db[k], 8)} {100 * self.harmonics[k + 1] / self.harmonics[0]:10.4f} "
                          f"{self.harmonics[k + 1]:10.3g}")
         if self.warnings:
             lines.append("")
@@ -467,7 +477,7 @@ class DistortionSweep:
             db = 20 * np.log10(np.maximum(h[:, 1:], 1e-300) / h[:, :1])
         for i in range(len(self.vin_peak)):
             lines.append(f"  {self.vin_peak[i]:9.4g} {self.vout_peak[i]:9.4g} {100 * self.thd[i]:9.4g} "
-                         + " ".join(f"{db[i, k]:7.1f}" for k in range(4)))
+                         + " ".join(_fmt_db(db[i, k], 7) for k in range(4)))
         lines.append("")
         lines.append("Assumptions:")
         lines.extend("  - " + a for a in assumptions(self.triodes))

@@ -457,7 +457,7 @@ def _read_wide(names, header_line, data, numbers, directives, file, default_tube
             issues.append(ReadIssue(file, header_line, label, f"unknown current unit {unit!r}; use ia_ma, ia_a or ia_ua"))
             continue
         try:
-            v = float(m.group("vg"))
+            v = float(m.group("vg")) + 0.0  # -0 and 0 are the same curve
             if not np.isfinite(v):
                 raise ValueError
         except ValueError:

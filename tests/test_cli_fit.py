@@ -269,8 +269,6 @@ def test_bad_card_exits_1_naming_the_field(tmp_path):
     assert r.exit_code == 1 and f"{p}: field 'model': unknown model 'nope'" in r.stderr
 
 
-@pytest.mark.xfail(strict=True, reason="CLI bug reported to the lead: click usage errors exit with "
-                   "click's default status 2, which the issue reserves for failed fits (should be 1)")
 @pytest.mark.parametrize("args", [
     ["fit", "{lot}", "--model", "bogus"],
     ["fit", "{lot}", "--floor", "7"],

@@ -8,7 +8,26 @@ import click
 from .. import __version__
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class _Group(click.Group):
+    """click exits 2 on usage errors; Platebook's contract is 1 (2 means a fit or solve
+    failed), so that a script can tell a typo from a failed fit."""
+
+    def make_context(self, info_name, args, parent=None, **extra):
+        try:
+            return super().make_context(info_name, args, parent, **extra)
+        except click.UsageError as e:
+            e.exit_code = 1
+            raise
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except click.UsageError as e:
+            e.exit_code = 1
+            raise
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="platebook")
 def main():
     """Platebook: fit triode models to plate curves, analyse stages and match tubes.
