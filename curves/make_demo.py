@@ -46,8 +46,9 @@ How the data are made
 
 Everything comes from one seed, so running this script again rewrites identical
 files (``--check`` verifies that).  Only numpy and :mod:`fitter.models` are used.
-The functions :func:`draw_params`, :func:`trace` and :data:`TUBE_TYPES` are also
-used by ``bench/fit.py`` to make stock in memory with another seed.
+The functions :func:`draw_params`, :func:`trace`, :func:`add_glitches`,
+:func:`noise_sigma` and :data:`TUBE_TYPES` are also used by ``bench/fit.py`` to make
+stock in memory with another seed.
 
 Usage::
 
@@ -281,6 +282,48 @@ def _quantise(x, resolution):
     return np.maximum(np.round(x / resolution) * resolution, 0.0)
 
 
+def noise_sigma(tube_type, ia_true, relative_noise=0.01):
+    """One-sigma noise of a reading [A] of true current ``ia_true`` [A] on the tracer."""
+    return np.hypot(relative_noise * np.asarray(ia_true, float), tube_type.noise_floor)
+
+
+def add_glitches(rng, ia, ia_true, n_bad):
+    """Replace ``n_bad`` readings by tracer glitches.
+
+    A glitch is the true current multiplied by 1.4..2.5 or by 0.05..0.5 (equal
+    odds), on points above 10 % of the unit's largest current (a glitch near zero
+    current would not be told from noise).
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+    ia : ndarray
+        Readings [A]; not modified.
+    ia_true : ndarray
+        Noiseless currents [A].
+    n_bad : int
+        Number of glitches wanted (at most the number of candidate points).
+
+    Returns
+    -------
+    ia : ndarray
+        Readings with the glitches [A].
+    bad : ndarray of bool
+        Which readings are glitched.
+    """
+    ia = np.array(ia, dtype=float)
+    bad = np.zeros(ia.size, bool)
+    candidates = np.flatnonzero(ia_true > 0.1 * ia_true.max())
+    n_bad = min(int(n_bad), candidates.size)
+    if n_bad:
+        idx = rng.choice(candidates, n_bad, replace=False)
+        high = rng.random(n_bad) < 0.5
+        factor = np.where(high, rng.uniform(1.4, 2.5, n_bad), rng.uniform(0.05, 0.5, n_bad))
+        ia[idx] = ia_true[idx] * factor
+        bad[idx] = True
+    return ia, bad
+
+
 def trace(rng, tube_type, params, n_bad=None, bad_fraction=None, relative_noise=0.01):
     """Sweep one unit on the tracer: noisy readings inside the tracer's limits.
 
@@ -322,15 +365,7 @@ def trace(rng, tube_type, params, n_bad=None, bad_fraction=None, relative_noise=
         n_bad = int(round(bad_fraction * n))
     elif n_bad is None:
         n_bad = int(rng.poisson(1.2))
-    bad = np.zeros(n, bool)
-    candidates = np.flatnonzero(ia_true > 0.1 * ia_true.max())
-    n_bad = min(n_bad, candidates.size)
-    if n_bad:
-        idx = rng.choice(candidates, n_bad, replace=False)
-        high = rng.random(n_bad) < 0.5
-        factor = np.where(high, rng.uniform(1.4, 2.5, n_bad), rng.uniform(0.05, 0.5, n_bad))
-        ia[idx] = ia_true[idx] * factor
-        bad[idx] = True
+    ia, bad = add_glitches(rng, ia, ia_true, n_bad)
     out = dict(va=va, vg=vg, ia=_quantise(ia, tube_type.resolution), ia_true=ia_true, bad=bad)
     if ig_true is not None:
         ig_true = ig_true[measured]
