@@ -227,7 +227,8 @@ def robustness(units):
         for name, fn in FITTERS:
             for u in units:
                 r = fn(u, variant)
-                r["type"], r["label"] = u["type"], f"{u['tube']}:{u['section']}"
+                r["type"] = u["type"]
+                r["label"] = f"{u['tube']}:{u['section']}" if u["section"] else u["tube"]
                 rows.setdefault((variant, name), []).append(r)
     print("\n== Noise floor: fraction of fits with D <= 1 "
           "(D = rms((I_fit - I_true)/sigma) on inlier points)")
