@@ -402,24 +402,36 @@ class _FastSearch:
                                              ftol=tol, xtol=tol, maxfev=100 * (len(x0) + 1))
         return x, ier in (1, 2, 3, 4), msg
 
-    def robust(self, values, robust: bool, f_scale_sigmas: float = 2.5, rounds: int = 5):
-        """Plain weighted LM from ``values``, then IRLS rounds with soft-L1 weights.
+    def robust(self, values, robust: bool, f_scale_sigmas: float = 2.5, rounds: int = 6,
+               first_scale: float = 0.05):
+        """IRLS rounds of LM with soft-L1 weights from ``values``.
+
+        The first round uses a fixed soft-L1 scale of ``first_scale`` (5 % relative), so
+        that a bad point cannot drag the very first solution into a wrong basin (a plain
+        first pass can, and cannot always get back); later rounds use the robust
+        scatter of the residuals.  ``robust=False`` is one plain weighted LM run.
 
         Returns (values, robust scale, success, message).
         """
-        x, ok, msg = self.solve(self.to_internal(values))
+        x = self.to_internal(values)
         scale = None
-        if robust:
-            for _ in range(rounds):
+        if not robust:
+            x, ok, msg = self.solve(x)
+        else:
+            ok, msg = False, ""
+            for i in range(rounds):
                 self.sw = None
                 raw = self._fun(x)
-                scale = max(_robust_scale(raw, self.prob.scale_points), 1e-5)
-                z = (raw / (f_scale_sigmas * scale)) ** 2
-                self.sw = (1.0 + z) ** -0.25  # sqrt of the soft-L1 weight (1 + z)^(-1/2)
+                if i == 0:
+                    f = first_scale
+                else:
+                    scale = max(_robust_scale(raw, self.prob.scale_points), 1e-5)
+                    f = f_scale_sigmas * scale
+                self.sw = (1.0 + (raw / f) ** 2) ** -0.25  # sqrt of the soft-L1 weight (1 + z)^(-1/2)
                 x_new, ok, msg = self.solve(x, tol=1e-6)
                 step = np.max(np.abs(x_new - x))
                 x = x_new
-                if step < 1e-3:
+                if i > 0 and step < 1e-3:
                     break
             self.sw = None
             scale = max(_robust_scale(self._fun(x), self.prob.scale_points), 1e-5)
@@ -467,10 +479,23 @@ def _point_scales(r, prob: "_Problem", base: float):
     """
     out = np.full(r.size, base)
     for chunk in prob.current_bands:
-        rc = r[chunk]
-        s_b = 1.4826 * float(np.median(np.abs(rc - np.median(rc))))
-        out[chunk] = max(s_b, base)
+        out[chunk] = max(_mad_scale(r[chunk]), base)
     return out
+
+
+def _median(x):
+    """Median by partition: the same value as np.median, at a fraction of its overhead on
+    the small arrays of one fit (it is called tens of times per fit)."""
+    n = x.size
+    k = n // 2
+    if n % 2:
+        return float(np.partition(x, k)[k])
+    p = np.partition(x, (k - 1, k))
+    return 0.5 * float(p[k - 1] + p[k])
+
+
+def _mad_scale(r):
+    return 1.4826 * _median(np.abs(r - _median(r)))
 
 
 def _robust_scale(r, sel=None):
@@ -480,8 +505,7 @@ def _robust_scale(r, sel=None):
         r = r[sel]
     if r.size == 0:
         return float("nan")
-    med = np.median(r)
-    return 1.4826 * float(np.median(np.abs(r - med)))
+    return _mad_scale(r)
 
 
 def _run(mini_problem: _Problem, params, loss: str, f_scale: float, use_jac: bool, max_nfev: int):
@@ -616,7 +640,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     # outliers on the robust solution
     r_all = prob.residual_values(values)[: u.n_points]
     if opts.robust:
-        outliers = np.abs(r_all - np.median(r_all)) > opts.outlier_sigma * _point_scales(r_all, prob, scale)
+        outliers = np.abs(r_all - _median(r_all)) > opts.outlier_sigma * _point_scales(r_all, prob, scale)
     else:
         outliers = np.zeros(u.n_points, dtype=bool)
 
@@ -656,7 +680,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
             # outliers are then judged again at the new solution
             r_new = prob.residual_values(values)[: u.n_points]
             scale = max(_robust_scale(r_new, prob.scale_points[: u.n_points]), 1e-5)
-            new_out = np.abs(r_new - np.median(r_new)) > opts.outlier_sigma * _point_scales(r_new, prob, scale)
+            new_out = np.abs(r_new - _median(r_new)) > opts.outlier_sigma * _point_scales(r_new, prob, scale)
             if np.array_equal(new_out, outliers):
                 break
             outliers = new_out

@@ -190,8 +190,14 @@ def _linearised_power_guess(va, vg, ia):
     A = np.column_stack([va[sel], vg[sel], np.ones(sel.sum())])
 
     def solve(n, w):
+        # weighted normal equations of the 3-column problem: a 3x3 solve, much cheaper
+        # than an SVD-based lstsq and as accurate at this size
         y = ia[sel] ** (1.0 / n)
-        coef, *_ = np.linalg.lstsq(A * w[:, None], y * w, rcond=None)
+        Aw = A * (w * w)[:, None]
+        try:
+            coef = np.linalg.solve(A.T @ Aw, Aw.T @ y)
+        except np.linalg.LinAlgError:
+            coef, *_ = np.linalg.lstsq(A * w[:, None], y * w, rcond=None)
         rel = (A @ coef - y) / np.maximum(y, 1e-12)
         return coef, rel, y
 
