@@ -113,6 +113,16 @@ def _spectrum(stage, op, res):
     return y, harmonic_amplitudes(y)
 
 
+#: Real triodes start to draw grid current somewhat below 0 V grid-cathode voltage, about
+#: -0.5 to -1 V depending on the heater and contact potential (common practice).  A
+#: swing that comes this close to the onset without a grid-current model gets a warning.
+GRID_CURRENT_MARGIN = 1.0
+
+
+def _has_grid_current(t) -> bool:
+    return t.model.grid_current is not None and (t.params.get("Gg", 0.0) != 0.0 or t.params.get("Ig0", 0.0) != 0.0)
+
+
 #: Harmonics below this [dB re H1] are under the numerical resolution of the quasi-static
 #: solve (256 samples, solver tolerance); reports print them as "<-140".
 DB_FLOOR = -140.0
@@ -356,10 +366,15 @@ def analyse(stage, *triodes, vin_peak: float | None = None, vout_peak: float | N
     tubes = {p: {"va": res[p + ".va"][0], "vgk": res[p + ".vgk"][0], "ia": res[p + ".ia"][0]}
              for p in tube_positions(stage)}
     for p, t in zip(tube_positions(stage), triodes):
-        if np.max(tubes[p]["vgk"]) >= grid_onset:
-            warnings.append(f"{_who(p)}'s grid reaches {np.max(tubes[p]['vgk']):+.3g} V to its cathode: "
+        vmax = float(np.max(tubes[p]["vgk"]))
+        if vmax >= grid_onset:
+            warnings.append(f"{_who(p)}'s grid reaches {vmax:+.3g} V to its cathode: "
                             "past grid-current onset" + ("" if t.model.grid_current else
                                                          " (this model has no grid current: not valid)"))
+        elif vmax >= grid_onset - GRID_CURRENT_MARGIN and not _has_grid_current(t):
+            warnings.append(f"{_who(p)}'s grid comes to {vmax:+.3g} V from its cathode: real tubes begin "
+                            f"to draw grid current within about {GRID_CURRENT_MARGIN:g} V of 0 V (common "
+                            "practice), which this model leaves out")
         if np.min(tubes[p]["ia"]) <= 0.01 * op[p + ".ia"]:
             warnings.append(f"{_who(p)} cuts off over part of the cycle")
         if t.outside_range(tubes[p]["va"], tubes[p]["vgk"]):

@@ -215,7 +215,11 @@ def test_distortion_matches_ngspice_fourier(key, vout_peak):
     # the solver (no grid current) leaves out.
     stage, tubes = STAGES[key]
     d = analyse(stage, *tubes, vout_peak=vout_peak).to_dict()
-    assert not d["warnings"]  # no cutoff / grid current at this level
+    # no cutoff and no grid past onset at this level; the mu follower's top grid comes
+    # near the onset (the case described above), which the analysis now warns about
+    hard = [w for w in d["warnings"] if "comes to" not in w]
+    assert not hard
+    assert any("comes to" in w for w in d["warnings"]) == (key == "mu-follower")
     circuit = ng.hold_capacitors(_circuit(stage, tubes, signal=f"SIN(0 {d['vin_peak_v']!r} 1k)"))
     out = "out" if stage.rl is not None else ("plate" if isinstance(stage, CommonCathode) else "cathode_top")
     res = ng.fourier(circuit, "tran 1u 3m 0 1u", 1000.0, f"v({out})", nharm=11)
