@@ -445,6 +445,9 @@ class _Bank:
     def gradient(self, va, vg):
         return self.model.voltage_gradient(va, vg, **self.params)
 
+    def current_and_gradient(self, va, vg):
+        return self.model.current_with_gradient(va, vg, **self.params)
+
 
 def _group_key(t: FittedTriode):
     return (t.model.name,) + tuple(t.params[p] for p in t.model.grid_param_names)
@@ -478,8 +481,7 @@ def _solve_tube(bank: _Bank, a0, a1, b0, b1, x0=None):
     for it in range(_MAXIT):
         va = a0 - a1 * x
         vg = b0 - b1 * x
-        f = bank.current(va, vg)
-        gva, gvg = bank.gradient(va, vg)
+        f, gva, gvg = bank.current_and_gradient(va, vg)
         F = x - f
         D = 1.0 + a1 * gva + b1 * gvg
         if it == 0:
@@ -683,13 +685,11 @@ def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, 
         for it in range(_JOINT_MAXIT):
             va1 = p1 - kc - ru * i1
             vg = vg1 - kc - ru * i1
-            f1 = bottom.current(va1, vg)
-            f1va, f1vg = bottom.gradient(va1, vg)
+            f1, f1va, f1vg = bottom.current_and_gradient(va1, vg)
             a0, a1, b0, b1, da0, db0, _ = top_coeffs(p1)
             va2 = a0 - a1 * i2
             vg2 = b0 - b1 * i2
-            f2 = top.current(va2, vg2)
-            f2va, f2vg = top.gradient(va2, vg2)
+            f2, f2va, f2vg = top.current_and_gradient(va2, vg2)
             r1 = i1 - f1
             r2 = i2 - f2
             D1 = 1.0 + ru * (f1va + f1vg)
