@@ -42,3 +42,4 @@ def main():
 from . import fitcmd  # noqa: E402,F401
 from . import export  # noqa: E402,F401
 from . import stage  # noqa: E402,F401
+from . import match  # noqa: E402,F401
