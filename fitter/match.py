@@ -310,8 +310,8 @@ class _EdgeSet:
         return self.I.size
 
 
-def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: int = 30,
-                    time_limit: float = 60.0, milp_limit: int = 400, large_rounds: int = 8):
+def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: int = 2000,
+                    time_limit: float = 60.0, milp_limit: int = 400, large_rounds: int = 2000):
     """Maximum-cardinality, minimum-mismatch matching on ``space``.
 
     Returns (i, j, m, Optimality) with i, j indices into the caller's node order.
@@ -335,14 +335,16 @@ def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: i
     dead = np.zeros(n, bool)  # nodes known to have no compatible partner at all
     x = None
     clean = False
+    priced_once = False
     status = "stalled"
     cut_keys: set = set()
     ge_dirty = True
     history = []
+    lp = _WarmLP(n, B)
     if n > milp_limit:
         max_rounds = min(max_rounds, large_rounds)
     for _ in range(max_rounds):
-        if len(history) >= 6 and history[-6] - history[-1] < 2e-2 * max(space.mmax, 1e-9):
+        if len(history) >= 60 and history[-60] - history[-1] < 1e-6 * max(space.mmax, 1e-9):
             status = "stalled"  # the cut loop is creeping; hand over to branch-and-cut
             break
         if time.perf_counter() - t_start > time_limit:
@@ -359,31 +361,40 @@ def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: i
                     cuts.append(S)
                     stats["cuts"] += 1
             ge_dirty = False
-        x, y, zc, val = _lp(edges, cuts, n, B)
+        x, y, zc, val = lp.solve(edges, cuts)
         stats["lp_solves"] += 1
         history.append(val)
+        frac = (x > 1e-7) & (x < 1 - 1e-7)
+        # pricing every round until the edge set first settles, then only when the cut
+        # loop on the current edges is done (integral or out of cuts)
+        new_cuts = []
+        if frac.any() and (complete or priced_once):
+            new_cuts = [S for S in (np.sort(S) for S in _odd_cuts(edges, x, frac, n))
+                        if S.tobytes() not in cut_keys]
+        if new_cuts:
+            clean = complete
+            for S in new_cuts:
+                cut_keys.add(np.sort(S).tobytes())
+            cuts.extend(np.sort(S) for S in new_cuts)
+            stats["cuts"] += len(new_cuts)
+            continue
         clean = complete
-        # -- pricing: edges of the full graph that could improve the LP
         if not complete:
             added = _price(space, edges, cuts, y, zc, B, dead)
             stats["priced_edges"] += added
             if added:
                 ge_dirty = True
+                history = []  # the LP changed: measure progress afresh
                 continue
             clean = True
-        frac = (x > 1e-7) & (x < 1 - 1e-7)
-        if not frac.any():
-            status = "integral"
-            break
-        new_cuts = _odd_cuts(edges, x, frac, n)
-        if not new_cuts:
-            status = "stalled"
-            break
-        for S in new_cuts:
-            cut_keys.add(np.sort(S).tobytes())
-        cuts.extend(np.sort(S) for S in new_cuts)
-        stats["cuts"] += len(new_cuts)
+            if not priced_once:
+                priced_once = True
+                if frac.any():
+                    continue
+        status = "stalled" if frac.any() else "integral"
+        break
     stats["seconds"] = round(time.perf_counter() - t_start, 3)
+    stats["stop"] = status
     if status == "integral":
         sel = x > 0.5
         i, j, m = edges.I[sel], edges.J[sel], edges.M[sel]
@@ -426,6 +437,78 @@ def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: i
         opt = Optimality(method, bool(solved), max(k, k_bound), lb, gap, note, stats)
     o = space.order
     return o[i], o[j], m, opt
+
+
+class _WarmLP:
+    """The matching LP kept in one HiGHS instance between rounds.
+
+    Priced edges are added as columns and cuts as rows, and each re-solve starts
+    from the previous basis (dual simplex), which is what makes many cut rounds
+    cheap.  Uses the HiGHS object that scipy ships; when it is not available the
+    LP is rebuilt and solved with :func:`scipy.optimize.linprog` every round.
+    """
+
+    def __init__(self, n, B):
+        self.n = n
+        self.B = B
+        self.cols = 0
+        self.rows_cuts = 0
+        try:
+            from scipy.optimize._highspy import _core
+        except ImportError:  # pragma: no cover - depends on the scipy build
+            self.h = None
+            return
+        self.core = _core
+        h = _core._Highs()
+        h.setOptionValue("output_flag", False)
+        h.setOptionValue("presolve", "off")
+        h.changeObjectiveSense(_core.ObjSense.kMaximize)
+        h.addRows(n, np.full(n, -np.inf), np.ones(n), 0, np.zeros(n, np.int32), np.zeros(0, np.int32),
+                  np.zeros(0))
+        self.h = h
+
+    def solve(self, edges: _EdgeSet, cuts):
+        if self.h is None:
+            return _lp(edges, cuts, self.n, self.B)
+        h, n = self.h, self.n
+        E = len(edges)
+        if E > self.cols:
+            I, J = edges.I[self.cols:], edges.J[self.cols:]
+            k = I.size
+            rows = [I, J]
+            colidx = [np.arange(k), np.arange(k)]
+            if self.rows_cuts:
+                member = _cut_membership(cuts[:self.rows_cuts], n)
+                both = member[I].multiply(member[J]).tocoo()
+                rows.append(n + both.col)
+                colidx.append(both.row)
+            r = np.concatenate(rows)
+            c = np.concatenate(colidx)
+            order = np.lexsort((r, c))
+            r, c = r[order], c[order]
+            starts = np.searchsorted(c, np.arange(k)).astype(np.int32)
+            h.addCols(k, self.B - edges.M[self.cols:], np.zeros(k), np.full(k, np.inf), r.size, starts,
+                      r.astype(np.int32), np.ones(r.size))
+            self.cols = E
+        if len(cuts) > self.rows_cuts:
+            new = cuts[self.rows_cuts:]
+            member = _cut_membership(new, n)
+            both = member[edges.I].multiply(member[edges.J]).T.tocsr()  # cut x edge
+            both.sort_indices()
+            h.addRows(len(new), np.full(len(new), -np.inf), np.array([(len(S) - 1) / 2.0 for S in new]),
+                      both.nnz, both.indptr[:-1].astype(np.int32), both.indices.astype(np.int32),
+                      np.ones(both.nnz))
+            self.rows_cuts = len(cuts)
+        h.run()
+        status = h.getModelStatus()
+        if status != self.core.HighsModelStatus.kOptimal:
+            # numerical trouble with the warm basis: solve from scratch once
+            return _lp(edges, cuts, n, self.B)
+        sol = h.getSolution()
+        x = np.asarray(sol.col_value, float)
+        dual = np.abs(np.asarray(sol.row_dual, float))
+        val = float(h.getInfo().objective_function_value)
+        return x, dual[:n], dual[n:], val
 
 
 def _lp(edges: _EdgeSet, cuts, n, B):
@@ -488,18 +571,21 @@ def _price(space: _Space, edges: _EdgeSet, cuts, y, zc, B, dead, per_node=6, sla
     scan(small[keep], space.span_for(rad[keep]))
     wide = np.nonzero(big & live)[0]
     if wide.size:
-        before = len(found_i)
-        scan(wide, space.span[0])
-        scan(wide, space.span[0], backward=True)
-        # a wide node with no compatible partner at all never needs scanning again
-        hit = _cat(found_i[before:] + found_j[before:])
         anyc = np.zeros(space.n, bool)
-        for i, j in list(space.windows(wide, space.span[0])) + list(space.windows(wide, space.span[0], True)):
-            ok, _, _ = space.measure(i, j)
-            anyc[i[ok]] = True
-            anyc[j[ok]] = True
+        for back in (False, True):
+            for i, j in space.windows(wide, space.span[0], backward=back):
+                ok, m, _ = space.measure(i, j)
+                anyc[i[ok]] = True
+                anyc[j[ok]] = True
+                i, j, m = i[ok], j[ok], m[ok]
+                thr = pi[i] + pi[j]
+                if member is not None and i.size:
+                    thr = thr - member[i].multiply(member[j]) @ zpos
+                viol = thr - m
+                s = viol > (1e-9 * B if slack == 0 else -1e-9 * B)
+                found_i.append(i[s]), found_j.append(j[s]), found_m.append(m[s]), found_v.append(viol[s])
+        # a wide node with no compatible partner at all never needs scanning again
         dead[wide[~anyc[wide]]] = True
-        del hit
     I, J, M, V = _cat(found_i), _cat(found_j), _catf(found_m), _catf(found_v)
     if I.size == 0:
         return 0
@@ -563,7 +649,7 @@ def _component_cuts(edges, x, sel, n):
     return out
 
 
-def _padberg_rao(edges, x, supp, frac, n, scale=1e7, max_nodes=80):
+def _padberg_rao(edges, x, supp, frac, n, scale=1e7, max_nodes=1500):
     from scipy.sparse.csgraph import maximum_flow
 
     si, sj, sx = edges.I[supp], edges.J[supp], x[supp]
@@ -571,6 +657,7 @@ def _padberg_rao(edges, x, supp, frac, n, scale=1e7, max_nodes=80):
     _, lab = connected_components(g, directed=False)
     deg = np.bincount(si, weights=sx, minlength=n) + np.bincount(sj, weights=sx, minlength=n)
     out = []
+    seen: set = set()
     for c in np.unique(lab[edges.I[frac]]):
         nodes = np.nonzero(lab == c)[0]
         k = nodes.size
@@ -593,7 +680,6 @@ def _padberg_rao(edges, x, supp, frac, n, scale=1e7, max_nodes=80):
         terminal[k] = (k % 2 == 1)
         # Gusfield's Gomory-Hu tree: parent[i], cut value and the source side
         parent = np.zeros(k + 1, int)
-        best = None
         for s in range(1, k + 1):
             t = parent[s]
             res = maximum_flow(C, s, t)
@@ -603,14 +689,15 @@ def _padberg_rao(edges, x, supp, frac, n, scale=1e7, max_nodes=80):
                 if side[v] and parent[v] == t:
                     parent[v] = s
             todd = int(np.sum(terminal & side)) % 2 == 1
-            if todd and val < 1.0 - 1e-6 and (best is None or val < best[0]):
-                best = (val, side.copy())
-        if best is not None:
-            side = best[1]
-            S = side[:k] if not side[k] else ~side[:k]
-            S = nodes[S]
-            if S.size % 2 == 1:
-                out.append(S)
+            if todd and val < 1.0 - 1e-6:
+                # every T-odd cut of the tree below 1 is a violated blossom inequality
+                S = side[:k] if not side[k] else ~side[:k]
+                S = nodes[S]
+                if S.size % 2 == 1 and S.size >= 3:
+                    key = S.tobytes()
+                    if key not in seen:
+                        seen.add(key)
+                        out.append(S)
     return out
 
 
