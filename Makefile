@@ -25,8 +25,11 @@ ngspice:
 
 demo: install
 	@echo "== Fitting the demo stock (invented data, made by curves/make_demo.py) =="
-	$(BIN)/platebook fit curves/stock_*.csv --model koren --save $(DEMO)/cards --plot $(DEMO)/plots; \
-	  status=$$?; [ $$status -le 2 ] || exit $$status
+	$(BIN)/platebook fit curves/stock_high_mu.csv curves/stock_medium_mu.csv curves/stock_power.csv \
+	  --model koren --save $(DEMO)/cards --plot $(DEMO)/plots; status=$$?; [ $$status -le 2 ] || exit $$status
+	@echo; echo "== Every model on the positive-grid set with grid current and on the digitised datasheet curves =="
+	$(BIN)/platebook fit curves/stock_grid_current.csv curves/datasheet_medium_mu_wide.csv --model all \
+	  --save $(DEMO)/cards --plot $(DEMO)/plots; status=$$?; [ $$status -le 2 ] || exit $$status
 	@echo; echo "== A common-cathode stage with the fitted HM-01:A (invented circuit values) =="
 	$(BIN)/platebook stage common-cathode --tube $(DEMO)/cards/HM-01_A.koren.json --bplus 300 --ra 100k \
 	  --rk 1.5k --ck 22u --rl 470k --cout 100n --cgk 1.6p --cga 1.7p --cak 0.46p --cload 100p --pa-max 1 \

@@ -61,6 +61,10 @@ __all__ = [
 MAX_ROBUST_SCATTER = 0.15
 #: ...nor one that had to reject more than this fraction of the points.
 MAX_OUTLIER_FRACTION = 0.2
+#: A converged fit whose relative rms exceeds this gets a note: tracer data scatter by
+#: about 1 % (common practice), so several percent means the model misses the tube's
+#: shape somewhere (positive grid, the knee), even though it is not a failure.
+LOOSE_FIT_REL_RMS = 0.05
 
 
 class FitFailed(RuntimeError):
@@ -734,13 +738,18 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
                    "too many for a trustworthy fit")
     if failure is None and cov is None:
         u = u.with_notes("parameter covariance could not be estimated (singular); errors are unknown")
+    rel_rms = float(np.sqrt(np.mean(wres**2))) if wres.size else float("nan")
+    if failure is None and rel_rms > LOOSE_FIT_REL_RMS:
+        u = u.with_notes(f"loose fit: relative rms {100 * rel_rms:.1f} % is well above the ~1 % scatter of "
+                         f"tracer data; the {m.name} model misses this tube's shape somewhere "
+                         "(compare models with --model all)")
 
     return FitResult(
         unit=u, model=m, converged=failure is None, failure=failure,
         params=values, stderr=stderr, correlations=corr, free=free_fitted, covariance=cov,
         residuals=resid, outliers=outliers, rms_ma=1e3 * rms,
         max_abs_ma=1e3 * float(np.max(np.abs(resid[inl]))) if inl.any() else float("nan"),
-        rel_rms=float(np.sqrt(np.mean(wres**2))) if wres.size else float("nan"),
+        rel_rms=rel_rms,
         robust_scatter=robust_scatter, r2=r2, aic=aic, bic=bic,
         nfev=nfev, starts_tried=tried, message=message, elapsed_ms=elapsed(), optimizer=fin,
     )

@@ -11,7 +11,7 @@ import click
 
 from . import main
 from ..card import CardError, load_card, save_card, card_filename
-from ..fit import FitInputError, FitOptions, fit_many
+from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
 from ..models import MODELS, get_model
 from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
 from ..triode import OutsideDataWarning
@@ -84,8 +84,9 @@ def _table(rows_by_unit, multi: bool) -> str:
             mus = f"{mu:.4g}" if mu is not None else "-"
             if r.stderr.get("mu") is not None:
                 mus += f"±{r.stderr['mu']:.2g}"
+            loose = "!" if r.rel_rms > LOOSE_FIT_REL_RMS else " "
             lines.append(f"{name:<16} {r.model.name:<8}{mark} {r.n_points:>4} {r.n_outliers:>3} "
-                         f"{r.rms_ma:>8.4f} {100 * r.rel_rms:>6.2f} {mus:>9}  {others}")
+                         f"{r.rms_ma:>8.4f} {100 * r.rel_rms:>5.2f}{loose} {mus:>9}  {others}")
     return "\n".join(lines)
 
 
@@ -185,6 +186,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         click.echo(_table(results, len(models) > 1))
         if len(models) > 1:
             click.echo("\n* best model for the unit (lowest BIC among converged fits)")
+        if any(r.converged and r.rel_rms > LOOSE_FIT_REL_RMS for r in flat):
+            click.echo(f"\n! loose fit: relative rms above {100 * LOOSE_FIT_REL_RMS:g} %, well above the ~1 % "
+                       "scatter of tracer data; the model misses the tube's shape somewhere")
         n_out = sum(r.n_outliers for r in flat if r.converged)
         click.echo(f"\n{len(units)} unit(s), {len(flat)} fit(s), {n_failed} unit(s) without a good fit, "
                    f"{n_out} outlier point(s) down-weighted")
