@@ -414,10 +414,15 @@ def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: i
         status = "stalled" if frac.any() else "integral"
         break
     if status != "integral" and not complete and x is not None and not clean:
-        # is the last LP value a bound for the full graph?  Only if nothing prices in.
-        probe = _EdgeSet(n)
-        probe.add(edges.I, edges.J, edges.M)
-        clean = _price(space, probe, cuts[:len(zc)], y, zc, B, dead, per_node=None) == 0
+        # the last LP value bounds the full graph only once nothing prices in:
+        # price and re-solve (no new cuts) until it does
+        for _ in range(20):
+            cuts_lp = cuts[:len(zc)]
+            if _price(space, edges, cuts_lp, y, zc, B, dead) == 0:
+                clean = True
+                break
+            x, y, zc, val = lp.solve(edges, cuts)
+            stats["lp_solves"] += 1
     stats["seconds"] = round(time.perf_counter() - t_start, 3)
     stats["stop"] = status
     if status == "integral":
