@@ -1851,7 +1851,8 @@ def match_quads(units: Sequence[FittedTriode], position, criterion: Criterion | 
         pairs of optimal pairs (both steps exact matchings) and reported with an upper
         bound on the number of quads (half the maximum number of pairs) and a lower
         bound on the total mismatch (each unit's mismatch to its 3rd-nearest
-        compatible unit, or nearest for ``"sides"``, bounds every quad holding it).
+        compatible unit, or nearest for ``"sides"``, bounds every quad holding it, so
+        q quads cost at least every 4th of the 4q smallest such bounds, largest first).
 
     Other parameters as :func:`match_pairs`.
     """
@@ -1892,15 +1893,17 @@ def match_quads(units: Sequence[FittedTriode], position, criterion: Criterion | 
     sds = [((int(pi[x]), int(pj[x])), (int(pi[y]), int(pj[y]))) for x, y in zip(qa, qb)]
     q = len(groups)
     nu = _k_nearest(space, 3 if mode == "all" else 1)
-    lb = float(np.sum(np.sort(nu)[:4 * q]) / 4.0) if q else 0.0
+    # a quad's mismatch is at least the largest bound of its four units; over any q
+    # quads that sum is at least every 4th of the 4q smallest bounds, largest first
+    lb = float(np.sum(np.sort(nu)[:4 * q][::-1][0::4])) if q else 0.0
     total = float(np.sum(qm))
     qbound = popt.groups_bound // 2
     opt = Optimality(
         "pairs of optimal pairs (two exact matchings)", q >= qbound and total - lb <= 1e-9, qbound, lb,
         max(0.0, total - lb),
         f"more than {exact_limit} feasible quads or {n} > 400 units: at most {qbound} quads "
-        f"(half the most pairs); the total mismatch bound uses each unit's "
-        f"{'3rd-' if mode == 'all' else ''}nearest compatible unit",
+        f"(half the most pairs); the total mismatch bound: every quad is at least as far apart "
+        f"as each member is from its {'3rd-' if mode == 'all' else ''}nearest compatible unit",
         {"units": n, "pairs": int(pi.size), "pair_step": popt.stats, "quad_step": qopt.stats,
          "seconds": round(time.perf_counter() - t0, 3)})
     return _finish(figs, crit, usable, excluded, balance, V, groups, list(qm), opt, 4, mode, grades, sds)
