@@ -1589,7 +1589,7 @@ def section_balance(figs: UnitFigures, crit: Criterion) -> list[dict]:
     return out
 
 
-def _nearest_reason(figs, crit, usable, k, group_of, grades):
+def _nearest_reason(figs, crit, usable, k, group_of, size=2, quad_mode=None):
     """The nearest other unit to unit ``k`` and what kept them apart."""
     others = np.array([j for j in usable if j != k], dtype=np.int64)
     if others.size == 0:
@@ -1608,9 +1608,14 @@ def _nearest_reason(figs, crit, usable, k, group_of, grades):
         best = c[np.argmin(m[c])]
         j = int(others[best])
         g = group_of.get(j)
-        where = f"is in group {g}" if g is not None else "is also unmatched"
-        reason = (f"nearest compatible unit {figs.units[j].label} (mismatch {100 * m[best]:.2f} %) {where}; "
-                  "the optimum needs it there")
+        near = f"nearest compatible unit {figs.units[j].label} (mismatch {100 * m[best]:.2f} %)"
+        if size == 2:
+            reason = f"{near} is in group {g}; the optimum needs it there"
+        elif g is not None:
+            reason = f"{near} is in group {g}; the best grouping leaves no quad for this unit"
+        else:
+            reason = (f"{near} is also unmatched, but the units left make no quad within tolerance"
+                      + (" (all four compatible)" if quad_mode == "all" else " (two pairs whose sums match)"))
     else:
         excess = np.max(d / tol, axis=1)
         best = int(np.argmin(excess))
@@ -1722,7 +1727,8 @@ def _finish(figs, crit, usable, excluded, balance, V, groups_local, mismatches, 
                             [figs.units[k].label for k in idx if figs.outside[k]]))
     group_of = {k: gi for gi, g in enumerate(groups, 1) for k in g.index}
     matched = set(group_of)
-    unmatched = [_nearest_reason(figs, crit, usable, k, group_of, grades) for k in usable if k not in matched]
+    unmatched = [_nearest_reason(figs, crit, usable, k, group_of, size, quad_mode)
+                 for k in usable if k not in matched]
     return MatchResult(figs, crit, size, groups, unmatched, excluded, opt, balance, quad_mode, tuple(grades))
 
 
