@@ -453,6 +453,7 @@ def _solve_matching(space: _Space, exhaustive_limit: int = 30_000, max_rounds: i
         k = i.size
         stats["seconds"] = round(time.perf_counter() - t_start, 3)
         k_bound = int(math.floor(bound_val / (B - space.mmax) + 1e-9)) if np.isfinite(bound_val) else n // 2
+        k_bound = min(k_bound, n // 2)
         lb = max(0.0, k * B - bound_val) if k_bound <= k else 0.0
         gap = max(0.0, float(m.sum()) - lb)
         if solved:
@@ -755,10 +756,35 @@ def _incumbent(space, edges, x, n):
         u, v = int(edges.I[e]), int(edges.J[e])
         if mate0[u] < 0 and mate0[v] < 0:
             mate0[u], mate0[v] = v, u
-    mate, _ = _edmonds_cardinality(n, edges.I, edges.J, start=mate0)
+    I, J = edges.I, edges.J
+    if 0 < len(edges) and not _complete_hint(space, edges):
+        # augmenting paths may need edges the LP never priced in: give the units the
+        # greedy start leaves single, and their partners' partners, all their edges
+        free = np.nonzero(mate0 < 0)[0]
+        rows = np.unique(np.concatenate([free, mate0[np.unique(_neighbours(edges, free))]]))
+        rows = rows[rows >= 0]
+        extra_i, extra_j = [I], [J]
+        for back in (False, True):
+            for a, b in space.windows(rows, space.span[0], backward=back):
+                ok, _, _ = space.measure(a, b)
+                extra_i.append(a[ok]), extra_j.append(b[ok])
+        I, J = np.concatenate(extra_i), np.concatenate(extra_j)
+        key = np.unique(np.minimum(I, J) * n + np.maximum(I, J))
+        I, J = key // n, key % n
+    mate, _ = _edmonds_cardinality(n, I, J, start=mate0)
     u = np.nonzero(mate > np.arange(n))[0]
     _, m, _ = space.measure(u, mate[u])
     return u, mate[u], m
+
+
+def _complete_hint(space, edges):
+    return len(edges) >= space.candidate_count()
+
+
+def _neighbours(edges, nodes):
+    mask = np.zeros(edges.n, bool)
+    mask[nodes] = True
+    return np.concatenate([edges.J[mask[edges.I]], edges.I[mask[edges.J]]])
 
 
 def _fix_by_reduced_cost(space, edges, cuts, x, y, zc, val, B, n, dead, complete, inc):
