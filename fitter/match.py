@@ -1455,8 +1455,7 @@ class MatchResult:
         }
         if self.quad_mode:
             d["quad_mode"] = self.quad_mode
-        if not isinstance(pos, FixedBias):
-            d["caution"] = CAUTION
+        d["caution"] = CAUTION
         return d
 
     def csv_rows(self) -> list[dict]:
@@ -1490,9 +1489,7 @@ class MatchResult:
         """The readable report (what the CLI prints without --json)."""
         pos = self.figures.position
         name = "pairs" if self.group_size == 2 else "quads"
-        lines = [f"Matching {len(self.figures.units)} units into {name} at {pos.describe()}"]
-        if not isinstance(pos, FixedBias):
-            lines.append(CAUTION)
+        lines = [f"Matching {len(self.figures.units)} units into {name} at {pos.describe()}", CAUTION]
         lines.append(f"Criterion: {self.criterion.describe()}")
         if self.quad_mode:
             lines.append("Quads: " + ("four units all within tolerance" if self.quad_mode == "all"

@@ -105,6 +105,7 @@ def test_table_and_csv(fits, tmp_path):
     assert r.exit_code == 0, r.output
     assert "Matching 12 units into pairs" in r.output
     assert "Criterion: Ia within 5 %" in r.output
+    assert "lethal voltages" in r.output
     with out.open() as fh:
         rows = list(csv.DictReader(fh))
     assert {"group", "grade", "unit", "ia_ma", "gm_ms", "label"} <= set(rows[0])
