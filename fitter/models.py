@@ -511,6 +511,14 @@ def dempwolf_grid_current(vg, Gg, xi, Cg, Ig0):
     return Gg * _safe_pow(softplus(Cg * vg) / Cg, xi) + Ig0
 
 
+def dempwolf_grid_current_of_params(vg, Gg=0.0, xi=1.5, Cg=10.0, Ig0=0.0, **_):
+    """Grid current [A] from a full parameter set (the plate parameters are ignored).
+
+    A module-level function, not a lambda, so that models pickle into worker processes.
+    """
+    return dempwolf_grid_current(vg, Gg, xi, Cg, Ig0)
+
+
 def dempwolf_current(va, vg, G, mu, gamma, C, Gg=0.0, xi=1.5, Cg=10.0, Ig0=0.0):
     """Plate current of the Dempwolf-Zoelzer triode model.
 
@@ -640,9 +648,7 @@ DEMPWOLF = TriodeModel(
     voltage_gradient=dempwolf_voltage_gradient,
     param_gradient=dempwolf_param_gradient,
     guess=dempwolf_guess,
-    grid_current=lambda vg, Gg=0.0, xi=1.5, Cg=10.0, Ig0=0.0, **_: dempwolf_grid_current(
-        vg, Gg, xi, Cg, Ig0
-    ),
+    grid_current=dempwolf_grid_current_of_params,
     alternative_starts=dempwolf_alternative_starts,
 )
 

@@ -428,6 +428,22 @@ def test_fit_many_in_parallel_equals_one_by_one(synth, tube_types):
         assert a[0].params == b[0].params
 
 
+def test_fit_many_in_parallel_with_every_model(synth, tube_types):
+    # issue section 3/6: --model all fits every registered model, on all cores; every
+    # model (and its result) must cross the process boundary (a lambda in the registry
+    # once broke this for the Dempwolf model only)
+    units = [synth(tube_types[n], seed=20 + i, tube=f"W{i}").curveset()
+             for i, n in enumerate(["12AX7", "12AU7", "300B"] * 3)]
+    par = fit_many(units, tuple(MODELS), processes=2)
+    ser = fit_many(units, tuple(MODELS), processes=1)
+    assert len(par) == len(units)
+    for a, b in zip(par, ser):
+        assert [r.model.name for r in a] == [r.model.name for r in b]
+        assert sorted(r.model.name for r in a) == sorted(MODELS)
+        assert [r.converged for r in a] == [r.converged for r in b]
+        assert all(ra.params == rb.params for ra, rb in zip(a, b))
+
+
 def test_fit_is_deterministic(synth, tube_types):
     # reproducibility (common practice): the same data give the same fit, bit for bit
     s = synth(tube_types["300B"], outliers=0.02, seed=5)

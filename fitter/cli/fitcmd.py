@@ -41,6 +41,11 @@ def _parse_fix(items, model_names):
         if name not in known:
             fail_input(f"--fix {item!r}: no model being fitted has a parameter {name!r} "
                        f"(known: {', '.join(sorted(known))})")
+        for m in model_names:
+            spec = next((p for p in get_model(m).params if p.name == name), None)
+            if spec is not None and not (spec.lower <= fix[name] <= spec.upper):
+                fail_input(f"--fix {item!r}: {m} parameter {name} must lie within its bounds "
+                           f"{spec.lower:g} .. {spec.upper:g}" + ("" if spec.unit == "-" else f" {spec.unit}"))
     return fix
 
 
@@ -137,12 +142,12 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
             problems.append(issue)
     if problems:
         fail_input(str(CurveReadError(problems)))
-    if not units:
-        fail_input("no units left to fit" + (" after skipping bad input" if skipped else ""))
     for s in skipped:
         click.echo(f"skipped: {s}", err=True)
     for n in read.notes:
         click.echo(f"note: {n}", err=True)
+    if not units:
+        fail_input("no units left to fit" + (" after skipping bad input (listed above)" if skipped else ""))
 
     opts = FitOptions(fix={k: v for k, v in fix.items()}, floor=floor, robust=not plain)
     show_bar = sys.stdout.isatty() and not as_json and len(units) > 1
