@@ -344,3 +344,23 @@ def test_demo_stock_fits(tmp_path):
     assert r.exit_code == 0, r.stdout[-2000:] + r.stderr[-2000:]
     doc = json.loads(r.stdout)
     assert len(doc["fits"]) >= 10 and all(f["converged"] for f in doc["fits"])
+
+
+@pytest.mark.parametrize("fix, message", [("kp=0", "kp must lie within its bounds 1 .. 5000"),
+                                          ("mu=-5", "mu must lie within its bounds 0.5 .. 500")])
+def test_fix_outside_the_bounds_is_an_input_error(lot, fix, message):
+    # issue section 6: exit 1 for a usage or input error; the bounds are the registry's
+    # (fitter/models.py), and a value outside them cannot be a fit result
+    path, _ = lot
+    r = run("fit", path, "--fix", fix)
+    assert r.exit_code == 1 and message in r.stderr and f"--fix '{fix}'" in r.stderr
+
+
+def test_skip_bad_lists_what_it_skipped_even_when_nothing_is_left(tmp_path):
+    # rules: bad input gets a clear error naming what was wrong and where
+    p = tmp_path / "tiny.csv"
+    p.write_text("tube,va,vg,ia_ma\nX,100,-1,1.0\nX,150,-1,2.0\nX,100,-2,x\n")
+    r = run("fit", p, "--skip-bad")
+    assert r.exit_code == 1
+    assert f"skipped: {p}, line 4, column ia_ma: non-numeric value 'x'" in r.stderr
+    assert "no units left to fit" in r.stderr
