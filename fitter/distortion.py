@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .stage import (CAUTION, operating_point, output_node, quasi_static, stage_kind,
+from .stage import (CAUTION, StageSolveError, operating_point, output_node, quasi_static, stage_kind,
                     stage_title, tube_positions)
 
 __all__ = [
@@ -117,6 +117,21 @@ def _spectrum(stage, op, res):
 #: -0.5 to -1 V depending on the heater and contact potential (common practice).  A
 #: swing that comes this close to the onset without a grid-current model gets a warning.
 GRID_CURRENT_MARGIN = 1.0
+
+
+#: A tube drawing less than this at the operating point [A] is cut off: there is no
+#: signal to analyse.
+CUTOFF_CURRENT = 1e-6
+
+
+def _require_conduction(stage, triodes, op):
+    """Raise StageSolveError when a tube is cut off at the operating point."""
+    for p, t in zip(tube_positions(stage), triodes):
+        ia = float(np.max(np.atleast_1d(op[p + ".ia"])))
+        if ia < CUTOFF_CURRENT:
+            raise StageSolveError(
+                f"{_who(p)} ({t.label}) is cut off at the operating point (Ia {ia * 1e3:.3g} mA, "
+                f"Vgk {float(np.max(np.atleast_1d(op[p + '.vgk']))):+.4g} V): the stage passes no signal to analyse")
 
 
 def _has_grid_current(t) -> bool:
@@ -359,6 +374,7 @@ def analyse(stage, *triodes, vin_peak: float | None = None, vout_peak: float | N
         if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
             raise ValueError(f"{name}: must be a positive amplitude in volts, got {v!r}")
     op = operating_point(stage, *triodes)
+    _require_conduction(stage, triodes, op)
     warnings = []
     if vout_peak is not None:
         vin_peak = _input_for_output(stage, triodes, op, float(vout_peak), n_samples)
@@ -522,6 +538,7 @@ def sweep(stage, *triodes, levels: int = 30, thd_limit: float = 0.01, lowest: fl
     if not (0 < lowest < 1):
         raise ValueError(f"lowest: a fraction between 0 and 1, got {lowest!r}")
     op = operating_point(stage, *triodes)
+    _require_conduction(stage, triodes, op)
     lim = drive_limit(stage, *triodes, op=op, grid_onset=grid_onset, cutoff_fraction=cutoff_fraction)
     if lim.vin_peak <= 0:
         raise ValueError(f"sweep: no signal swing is possible ({lim.detail})")

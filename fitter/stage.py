@@ -1181,7 +1181,7 @@ def _report(r: StageResult) -> str:
     for node in _output_nodes(st):
         mark = " (output)" if node == out else ""
         lines.append(f"  gain to {node.replace('_', ' ')}{mark}: {_fmt(f['gain.' + node], e.get('gain.' + node), '', 4)}"
-                     f"  ({20 * np.log10(abs(f['gain.' + node])):.1f} dB)")
+                     + (f"  ({20 * np.log10(abs(f['gain.' + node])):.1f} dB)" if f['gain.' + node] != 0 else "  (no gain)"))
         z = f["zout." + node]
         ze = e.get("zout." + node, np.nan)
         lines.append(f"  output impedance at {node.replace('_', ' ')}: {_eng(z, 'ohm')}"
@@ -1232,9 +1232,13 @@ def _warnings(stage, triodes, fig) -> list[str]:
     if over:
         best = 0.5 * (max(vk) + min(vk))
         worst = 0.5 * (max(vk) - min(vk))
-        msg = (f"heater-cathode voltage of the {' and '.join(over)} tube exceeds the {stage.vhk_max:g} V limit "
+        single = list(tube_positions(stage)) == ["tube"]
+        who = "the tube" if single else f"the {' and '.join(over)} tube"
+        msg = (f"heater-cathode voltage of {who} exceeds the {stage.vhk_max:g} V limit "
                f"(heater at {stage.heater:g} V)")
-        if worst <= stage.vhk_max:
+        if single:
+            msg += f"; elevate the heater supply to about {best:.0f} V, near the cathode's DC voltage"
+        elif worst <= stage.vhk_max:
             msg += f"; elevate the heater supply to about {best:.0f} V (then at most {worst:.0f} V)"
         else:
             msg += "; no single heater elevation brings every cathode within the limit"

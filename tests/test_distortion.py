@@ -161,3 +161,14 @@ def test_distortion_input_errors():
         D.analyse(CC, t, vin_peak=0.1, n_samples=8)
     with pytest.raises(ValueError, match="more than the stage can deliver"):
         D.analyse(CC, t, vout_peak=5000.0)
+
+
+def test_a_cut_off_stage_is_a_failure_not_a_distortion_figure():
+    # Koren (1996): with vg = -100 V and va <= 300 V, a mu-100 triode's E1 is zero, so
+    # no plate current flows; there is no signal, and a THD figure (noise / noise)
+    # would be a failed analysis reported as a result
+    st = S.CommonCathode(b_plus=300.0, ra=100e3, rk=0.0, vbias=-100.0)
+    with pytest.raises(S.StageSolveError, match=r"cut off at the operating point .*no signal"):
+        D.analyse(st, high_mu(), vin_peak=1.0)
+    with pytest.raises(S.StageSolveError, match="cut off"):
+        D.sweep(st, high_mu(), levels=5)
