@@ -59,7 +59,7 @@ amplifiers).
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, field, fields
 from typing import Callable, Sequence
 
 import numpy as np
@@ -1338,6 +1338,8 @@ class SpreadResult:
     labels: list
     values: dict
     pairing: str = ""
+    #: summary lines: how many units carry each kind of warning, and mixed types
+    warnings: list = field(default_factory=list)
 
     def stats(self, key):
         v = np.asarray(self.values[key], float)
@@ -1354,6 +1356,7 @@ class SpreadResult:
                "figures": figs, "caution": CAUTION, "circuit": self.stage.to_dict()}
         if self.pairing:
             out["pairing"] = self.pairing
+        out["warnings"] = list(self.warnings)
         g = np.abs(self.values["gain"])
         i_lo = int(np.nanargmin(g))
         i_hi = int(np.nanargmax(g))
@@ -1379,6 +1382,10 @@ class SpreadResult:
         d = self.to_dict()
         lines.append("")
         lines.append(f"lowest |gain|: {d['lowest_gain_unit']}, highest |gain|: {d['highest_gain_unit']}")
+        if self.warnings:
+            lines.append("")
+            lines.append("Warnings")
+            lines.extend("  ! " + w for w in self.warnings)
         return "\n".join(lines)
 
 
@@ -1435,4 +1442,40 @@ def spread(stage, units: Sequence[FittedTriode], tops=None, slew_vpeak: float = 
         fig = _analyse(stage, banks, len(idx), slew_vpeak)
         for k, v in fig.items():
             values.setdefault(k, np.full(n, np.nan))[idx] = np.broadcast_to(v, (len(idx),))
-    return SpreadResult(stage, labels, values, pairing)
+    return SpreadResult(stage, labels, values, pairing, _spread_warnings(stage, cases, labels, values))
+
+
+#: kinds of per-unit warning, as (marker in the message, summary wording)
+_WARNING_KINDS = (
+    ("extrapolating", "operating point outside their fitted data (the model is extrapolating)"),
+    ("cut off", "practically cut off at the operating point"),
+    ("over the", "over the plate dissipation limit"),
+    ("grid current", "grid at or above its cathode: grid current"),
+    ("heater-cathode", "over the heater-cathode limit"),
+)
+
+
+def _spread_warnings(stage, cases, labels, values) -> list[str]:
+    """Per-unit warnings of a spread, summarised: 'k of N units: ...' with the labels."""
+    n = len(cases)
+    hits: dict = {}
+    for i, c in enumerate(cases):
+        fig = {k: float(v[i]) for k, v in values.items()}
+        for w in _warnings(stage, c, fig):
+            for marker, text in _WARNING_KINDS:
+                if marker in w:
+                    hits.setdefault(text, []).append(labels[i])
+                    break
+    out = []
+    for _, text in _WARNING_KINDS:
+        if text in hits:
+            who = hits[text]
+            shown = ", ".join(who[:8]) + (f" and {len(who) - 8} more" if len(who) > 8 else "")
+            out.append(f"{len(who)} of {n} units: {text} ({shown})")
+    first = tube_positions(stage)[0]
+    mu = np.asarray(values.get(first + ".mu", []), float)
+    mu = mu[np.isfinite(mu)]
+    if mu.size and np.min(mu) > 0 and np.max(mu) / np.min(mu) > 1.5:
+        out.append(f"the units look like different tube types (mu at the operating point from "
+                   f"{np.min(mu):.3g} to {np.max(mu):.3g}); a spread is meant for units of one type")
+    return out

@@ -402,3 +402,19 @@ def test_joint_newton_and_nested_bracketed_solve_agree(monkeypatch):
     slow = S.solve(st, bot, top, errors=False)
     for key in ("node.plate_bottom", "node.cathode_top", "gain", "zout", "gain.plate_bottom"):
         assert fast[key] == pytest.approx(slow[key], rel=1e-7), key
+
+
+def test_spread_summarises_the_units_warnings_and_mixed_types():
+    # rules: a figure the model extrapolates to is flagged, never silent; Koren's 12AX7
+    # and 12AU7 sets (from memory) have mu 100 and 21.5 -- two types, not one
+    ranged = dict(valid_range={"va": (0.0, 300.0), "vg": (-4.0, 0.0), "ia": (0.0, 5e-3)})
+    units = [FittedTriode("koren", dict(mu=100, ex=1.4, kg1=k, kp=600, kvb=300), tube=f"H{i}", **ranged)
+             for i, k in enumerate((1000.0, 1060.0, 1120.0))]
+    # B+ 3 kV drives every unit far beyond the 300 V it was fitted to
+    far = S.spread(S.CommonCathode(b_plus=3000.0, ra=1e3, rk=100.0), units)
+    assert any(w.startswith("3 of 3 units: operating point outside their fitted data") for w in far.warnings)
+    assert far.to_dict()["warnings"] == far.warnings
+    near = S.spread(S.CommonCathode(b_plus=250.0, ra=100e3, rk=1.5e3), units)
+    assert near.warnings == []
+    mixed = S.spread(S.CommonCathode(b_plus=250.0, ra=100e3, rk=1.5e3), units + [medium_mu()])
+    assert any("different tube types" in w for w in mixed.warnings)
