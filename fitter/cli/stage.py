@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import glob
 import json
+import re
 from collections import defaultdict
 
 import click
@@ -19,8 +20,28 @@ from ..units import parse_value
 from . import main
 
 
+#: engine field names -> the options that set them, so errors name what the user typed
+_OPTION_OF = {
+    "b_plus": "--bplus", "ra": "--ra", "rk": "--rk", "ck": "--ck", "vbias": "--vbias", "rg": "--rg",
+    "c_in": "--cin", "rs": "--rs", "rl": "--rl", "c_out": "--cout", "c_load": "--cload",
+    "cgk": "--cgk", "cga": "--cga", "cak": "--cak", "pa_max": "--pa-max", "heater": "--heater",
+    "vhk_max": "--vhk-max", "vneg": "--vneg", "r_upper": "--r-upper", "r_lower": "--r-lower",
+    "r_top": "--r-top", "r_mid": "--r-mid", "top_grid": "--top-grid", "rg_top": "--rg-top",
+    "c_top": "--c-top", "output": "--output", "vin_peak": "--vin", "vout_peak": "--vout",
+    "levels": "--levels", "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset",
+}
+
+
+def _option_message(message: str) -> str:
+    """'CommonCathode.ra: must be positive' -> '--ra: must be positive'."""
+    m = re.match(r"^(?:[A-Za-z]+\.)?([a-z_]+): ", message)
+    if m and m.group(1) in _OPTION_OF:
+        return _OPTION_OF[m.group(1)] + message[m.end(1):]
+    return message
+
+
 def _fail(message: str, code: int = 1):
-    click.echo(f"error: {message}", err=True)
+    click.echo(f"error: {_option_message(message)}", err=True)
     raise SystemExit(code)
 
 
