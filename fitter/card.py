@@ -113,6 +113,8 @@ def card_to_triode(d: Mapping[str, Any], where: str = "card") -> FittedTriode:
     """Build a :class:`FittedTriode` from a parsed card, validating every field."""
     if not isinstance(d, dict):
         raise CardError(f"{where}: a model card is a JSON object")
+    if "format" not in d:
+        raise CardError(f"{where}: missing field 'format' (expected {CARD_FORMAT!r}); is this a model card?")
     fmt = d.get("format")
     if fmt != CARD_FORMAT:
         raise CardError(f"{where}: field 'format' is {fmt!r}, expected {CARD_FORMAT!r}")

@@ -117,7 +117,7 @@ def card_with(tmp_path, fitted, change):
 
 @pytest.mark.parametrize("change,message", [
     (lambda d: d.update(format="something-else"), r"field 'format' is 'something-else'"),
-    (lambda d: d.pop("format"), r"field 'format' is None"),
+    (lambda d: d.pop("format"), r"missing field 'format'"),
     (lambda d: d.update(version=2), r"field 'version' is 2; this Platebook reads version 1"),
     (lambda d: d.update(model="pentode"), r"field 'model': unknown model 'pentode'"),
     (lambda d: d.pop("model"), r"missing field 'model'"),
