@@ -37,6 +37,12 @@ demo: install
 	@echo; echo "== Its distortion, swept up to grid-current onset =="
 	$(BIN)/platebook distortion common-cathode --tube $(DEMO)/cards/HM-01_A.koren.json --bplus 300 --ra 100k \
 	  --rk 1.5k --ck 22u --rl 470k --sweep --thd-limit 1% --plot $(DEMO)/thd_cc.png
+	@echo; echo "== Matched pairs from the medium-mu stock at its working point =="
+	$(BIN)/platebook fit curves/stock_medium_mu.csv --model koren --json > $(DEMO)/fits_medium_mu.json; \
+	  status=$$?; [ $$status -le 2 ] || exit $$status
+	$(BIN)/platebook match $(DEMO)/fits_medium_mu.json --va 250 --vg -8.5 --tolerance 5 --csv $(DEMO)/pairs.csv
+	@echo; echo "== Left and right SRPP stacks from the same stock, one bottle per stack =="
+	$(BIN)/platebook match $(DEMO)/fits_medium_mu.json --stack srpp --bplus 400 --rk 1k --stages 2 --same-bottle
 	@echo; echo "== An SRPP with the two sections of MM-01 (elevated-heater check) =="
 	$(BIN)/platebook stage stack --bottom $(DEMO)/cards/MM-01_A.koren.json --top $(DEMO)/cards/MM-01_B.koren.json \
 	  --bplus 400 --rk 1k --r-top 1k --rl 47k --vhk-max 200 --plot $(DEMO)/stage_srpp.png
