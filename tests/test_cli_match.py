@@ -169,3 +169,19 @@ def test_bad_files(tmp_path):
     p.write_text('{"fits": []}')
     r = run(["match", str(p), "--va", "250", "--vg", "-2"])
     assert r.exit_code == 1 and "empty" in r.output
+
+
+def test_fit_json_of_every_model_is_matched_by_each_units_best_model(fits, tmp_path):
+    # 'platebook fit --model all --json' lists every model's fit of a unit and names the
+    # best in "best"; the match must use that one fit per unit (issue 4 section 4: FITS
+    # is the JSON that 'platebook fit --json' prints)
+    path, entries = fits
+    good = [e for e in entries if e["converged"]]
+    worse = [dict(e, model="power", params=dict(K=1e-5, mu=80.0, n=1.5, vc=0.0)) for e in good]
+    best = [{"tube": e["tube"], "section": e["section"], "model": "koren", "converged": True} for e in good]
+    both = tmp_path / "all.json"
+    both.write_text(json.dumps({"fits": good + worse, "best": best}))
+    r_all = run(["match", str(both), "--va", "250", "--vg", "-2", "--json"])
+    r_one = run(["match", str(path), "--va", "250", "--vg", "-2", "--json"])
+    assert r_all.exit_code == 0, r_all.output
+    assert json.loads(r_all.output)["groups"] == json.loads(r_one.output)["groups"]

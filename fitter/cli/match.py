@@ -122,8 +122,16 @@ def read_fits(path):
         _fail(f"{path}: line {e.lineno}, column {e.colno}: not valid JSON: {e.msg}")
     if not isinstance(d, dict) or not isinstance(d.get("fits"), list):
         _fail(f"{path}: expected the JSON of 'platebook fit --json', an object with a list 'fits'")
+    fits = list(enumerate(d["fits"]))
+    best = d.get("best")
+    if isinstance(best, list) and best:
+        # 'platebook fit --model all --json': several models per unit, ranked; match
+        # each unit by its best model (the first of its ranking)
+        keep = {(b.get("tube"), b.get("section"), b.get("model")) for b in best if isinstance(b, dict)}
+        fits = [(k, f) for k, f in fits
+                if isinstance(f, dict) and (f.get("tube"), f.get("section"), f.get("model")) in keep]
     units, failed = [], []
-    for k, f in enumerate(d["fits"]):
+    for k, f in fits:
         where = f"{path}: fits[{k}]"
         if not isinstance(f, dict):
             _fail(f"{where}: must be an object")
