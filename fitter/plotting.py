@@ -40,8 +40,10 @@ def plot_fit(result: FitResult, axes=None):
     grids = np.unique(u.vg)
     cmap = plt.get_cmap("viridis")
     colours = {v: cmap(i / max(len(grids) - 1, 1)) for i, v in enumerate(sorted(grids, reverse=True))}
-    out = result.outliers if result.outliers is not None else np.zeros(u.n_points, bool)
-    va_line = np.linspace(0.0, float(u.va.max()) * 1.02, 300)
+    # a failed fit has no meaningful outliers: its points are all shown as measured
+    out = result.outliers if (result.outliers is not None and result.converged) else np.zeros(u.n_points, bool)
+    # the fitted curves are drawn over the plate voltages the data cover, not beyond
+    va_line = np.linspace(float(u.va.min()), float(u.va.max()), 300)
     for v in grids:
         sel = u.vg == v
         c = colours[v]
