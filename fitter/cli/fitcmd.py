@@ -250,7 +250,7 @@ def point_command(card, va, vg, as_json):
     def pm(v, e, unit, spec=".4g"):
         if v is None:
             return "-"
-        return f"{v:{spec}} ± {e:.2g} {unit}" if e is not None else f"{v:{spec}} {unit}"
+        return (f"{v:{spec}} ± {e:.2g} {unit}" if e is not None else f"{v:{spec}} {unit}").rstrip()
 
     click.echo(f"{triode.label} ({triode.model.name}) at va {va:g} V, vg {vg:g} V")
     click.echo(f"  plate current  ia = {pm(d['ia_ma'], d['ia_ma_err'], 'mA')}")
