@@ -87,10 +87,7 @@ GRID_RESISTANCE = 1500.0
 #: Softness of the generic grid path's knee [V] (common practice; about a diode's n*Vt).
 GRID_KNEE = 0.05
 
-HIGH_VOLTAGE_CAUTION = (
-    "CAUTION: tube circuits work at lethal voltages; follow your local electrical "
-    "codes and licensed practice."
-)
+from . import CAUTION as HIGH_VOLTAGE_CAUTION  # noqa: E402  (one wording, in fitter/__init__.py)
 
 _NAME = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.+-]*$")
 

@@ -119,10 +119,7 @@ __all__ = [
 ]
 
 #: The one-line caution every report describing a circuit carries.
-CAUTION = (
-    "CAUTION: tube circuits work at lethal voltages; follow your local electrical "
-    "codes and licensed practice."
-)
+from . import CAUTION  # noqa: E402  (re-exported: one wording, in fitter/__init__.py)
 
 
 class MatchError(ValueError):

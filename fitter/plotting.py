@@ -11,12 +11,11 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from . import CAUTION  # noqa: E402
 from .fit import FitResult  # noqa: E402
 
 __all__ = ["plot_fit", "save_fit_plot", "CAUTION"]
 
-CAUTION = ("Caution: tube circuits and curve tracers work at lethal voltages; "
-           "follow local codes and licensed practice.")
 
 
 def plot_fit(result: FitResult, axes=None):

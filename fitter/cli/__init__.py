@@ -38,6 +38,34 @@ def main():
     """
 
 
+# -- helpers shared by the command modules ---------------------------------------
+
+
+def fail(message: str, code: int = 1):
+    """Print ``error: message`` to stderr and exit: 1 for usage or input errors, 2 when
+    a fit or a solve failed."""
+    click.echo(f"error: {message}", err=True)
+    raise SystemExit(code)
+
+
+def value(text, option: str, optional: bool = True, on_error=None):
+    """An option's engineering-notation value (100k, 4.7M, 22u ...) in SI, or None.
+
+    Errors name the option; ``on_error`` (default :func:`fail`) reports them.
+    """
+    from ..units import parse_value
+
+    report = on_error or fail
+    if text is None:
+        if optional:
+            return None
+        report(f"{option}: a value is required")
+    try:
+        return parse_value(text, option)
+    except ValueError as e:
+        report(str(e))
+
+
 # Command modules register themselves on ``main``; keep one import per area.
 from . import fitcmd  # noqa: E402,F401
 from . import export  # noqa: E402,F401

@@ -20,22 +20,15 @@ from ..export import (
     spice_name,
     spice_subcircuit,
 )
-from ..units import parse_value
-from . import main
+from . import fail, main, value
 
 
 def _fail(message: str) -> None:
-    click.echo(f"platebook export: {message}", err=True)
-    raise SystemExit(1)
+    fail(message)
 
 
 def _value(text, option: str) -> float | None:
-    if text is None:
-        return None
-    try:
-        return parse_value(text, option)
-    except ValueError as e:
-        _fail(str(e))
+    return value(text, option)
 
 
 @main.command("export")
@@ -105,7 +98,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             if triode.outside_range(va, vg):
                 r = triode.valid_range
                 click.echo(
-                    f"platebook export: note: the grid reaches outside the fitted data "
+                    f"note: the grid reaches outside the fitted data "
                     f"(va {r['va'][0]:g}..{r['va'][1]:g} V, vg {r['vg'][0]:g}..{r['vg'][1]:g} V); "
                     "those curves are extrapolated",
                     err=True,

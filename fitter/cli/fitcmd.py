@@ -9,21 +9,19 @@ from pathlib import Path
 
 import click
 
-from . import main
+from . import fail, main
+from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
 from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
 from ..models import MODELS, get_model
 from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
 from ..triode import OutsideDataWarning
 
-CAUTION = ("Caution: tube circuits and curve tracers work at lethal voltages; "
-           "follow local codes and licensed practice.")
 
 
 def fail_input(message: str) -> None:
     """Print an input error to stderr and exit with status 1."""
-    click.echo(f"error: {message}", err=True)
-    raise SystemExit(1)
+    fail(message, 1)
 
 
 def _parse_fix(items, model_names):

@@ -20,22 +20,15 @@ from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchErr
                      assign_stacks, match_units, select_units)
 from ..models import get_model
 from ..triode import FittedTriode
-from ..units import parse_value
-from . import main
+from . import fail, main, value
 
 
 def _fail(message: str, code: int = 1):
-    click.echo(f"error: {message}", err=True)
-    raise SystemExit(code)
+    fail(message, code)
 
 
 def _val(text, option):
-    if text is None:
-        return None
-    try:
-        return parse_value(text, option)
-    except ValueError as e:
-        _fail(str(e))
+    return value(text, option)
 
 
 def _percent(text, option):

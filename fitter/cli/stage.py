@@ -16,8 +16,7 @@ import click
 
 from ..card import CardError, load_card, load_cards
 from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
-from ..units import parse_value
-from . import main
+from . import fail, main, value
 
 
 #: engine field names -> the options that set them, so errors name what the user typed
@@ -41,19 +40,11 @@ def _option_message(message: str) -> str:
 
 
 def _fail(message: str, code: int = 1):
-    click.echo(f"error: {_option_message(message)}", err=True)
-    raise SystemExit(code)
+    fail(_option_message(message), code)
 
 
 def _val(text, option, optional=True):
-    if text is None:
-        if optional:
-            return None
-        _fail(f"{option}: a value is required")
-    try:
-        return parse_value(text, option)
-    except ValueError as e:
-        _fail(str(e))
+    return value(text, option, optional, on_error=_fail)
 
 
 def _pct(text, option):
