@@ -13,7 +13,7 @@ import numpy as np  # noqa: E402
 
 from .distortion import Distortion, DistortionSweep, drive_limit  # noqa: E402
 from .stage import (CAUTION, CathodeFollower, CommonCathode, StageResult, Stack,  # noqa: E402
-                    operating_point, quasi_static, stage_title, tube_positions)
+                    operating_point, output_node, quasi_static, stage_title, tube_positions)
 from .stage import _eng as _eng_unit  # noqa: E402
 from .units import format_value  # noqa: E402
 
@@ -28,28 +28,81 @@ def _nice_step(span: float, most: int = 12) -> float:
     return 200.0
 
 
-def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu):
-    """Draw the plate-curve family; returns the grid step."""
+_NODE_TEXT = {"plate": "the plate", "cathode": "the cathode", "cathode_top": "the top cathode",
+              "plate_bottom": "the bottom plate"}
+
+
+def _node_text(stage) -> str:
+    """The output node in words ("the plate", "the top cathode", ...)."""
+    node = output_node(stage)
+    return _NODE_TEXT.get(node, node.replace("_", " "))
+
+
+def _tubes_text(stage, triodes) -> str:
+    """The tube(s) of a stage: "HM-01:A" or "bottom MM-01:A, top MM-01:B"."""
+    positions = tube_positions(stage)
+    if len(positions) == 1:
+        return triodes[0].label
+    return " and ".join(f"{p} {t.label}" for p, t in zip(positions, triodes))
+
+
+def _outside_grid(triode, vg) -> bool:
+    """True when grid voltage ``vg`` [V] lies outside the card's fitted grid range
+    (beyond a 2 % margin of its span), i.e. the curve is extrapolated."""
+    rng = triode.valid_range
+    if not rng or "vg" not in rng:
+        return False
+    lo, hi = rng["vg"]
+    tol = 0.02 * max(hi - lo, 0.1)
+    return bool(vg < lo - tol or vg > hi + tol)
+
+
+def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
+    """Draw the plate-curve family and the curve through the operating point.
+
+    Curves outside the card's fitted grid range are dashed and lighter, with one
+    legend note.  Each curve is labelled in volts where it leaves the plot (top or
+    right edge); a label that would sit on the Pa-max hyperbola moves down the curve
+    to just below it.
+
+    Returns the grid step [V].
+    """
     vg_cut = -va_max / max(mu, 0.5)
     step = _nice_step(abs(vg_cut), 11)
     va = np.linspace(0.0, va_max, 400)
     grids = np.arange(0.0, vg_cut - step, -step)
     cmap = plt.get_cmap("viridis")
+    top = np.full_like(va, 0.97 * ia_top)
+    pa_ma = 1e3 * pa_max / np.maximum(va, 1e-9) if pa_max else None
+    box = dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.75)
+    extrapolated = False
     for i, vg in enumerate(grids):
+        vg = float(np.round(vg, 9)) + 0.0
         ia = 1e3 * triode.current(va, np.full_like(va, vg))
         c = cmap(0.15 + 0.7 * i / max(len(grids) - 1, 1))
-        ax.plot(va, ia, "-", lw=0.9, color=c, alpha=0.9)
-        inside = np.flatnonzero(ia <= ia_top * 0.97)
+        out = _outside_grid(triode, vg)
+        extrapolated |= out
+        ax.plot(va, ia, "--" if out else "-", lw=0.9, color=c, alpha=0.5 if out else 0.9)
+        inside = np.flatnonzero(ia <= top)
+        if pa_ma is not None and inside.size:
+            j = inside[-1]
+            if abs(ia[j] - pa_ma[j]) < 0.08 * ia_top:  # the label would sit on the Pa-max line
+                inside = np.flatnonzero(ia <= np.minimum(top, 0.85 * pa_ma))
+        text = f"{vg:g} V"
+        kw = dict(fontsize=7, color=c, alpha=0.7 if out else 1.0, textcoords="offset points", bbox=box)
         if inside.size and inside[-1] < va.size - 1:
             j = inside[-1]
-            ax.annotate(f"{vg:g}", (va[j], ia[j]), fontsize=7, color=c, xytext=(-2, 2),
-                        textcoords="offset points", ha="right")
+            ax.annotate(text, (va[j], ia[j]), xytext=(-2, 1), ha="right", va="bottom", **kw)
         elif inside.size:
-            ax.annotate(f"{vg:g} V", (va[-1], ia[-1]), fontsize=7, color=c, xytext=(2, 0),
-                        textcoords="offset points", va="center")
+            ax.annotate(text, (va[-1], ia[-1]), xytext=(2, 0), va="center", annotation_clip=False, **kw)
     # the curve through the operating point, highlighted
     ia_q = 1e3 * triode.current(va, np.full_like(va, vgk_q))
-    ax.plot(va, ia_q, ":", lw=1.2, color="0.35")
+    note = ", extrapolated" if _outside_grid(triode, vgk_q) else ""
+    ax.plot(va, ia_q, ":", lw=1.4, color="0.3", label=f"Vgk = {vgk_q:.3g} V (operating point{note})")
+    if extrapolated:
+        lo, hi = triode.valid_range["vg"]
+        ax.plot([], [], "--", lw=0.9, color="0.55",
+                label=f"dashed curves: extrapolated\n(fitted data cover Vgk {lo:g}..{hi:g} V)")
     return step
 
 
@@ -103,7 +156,7 @@ def plot_load_lines(result: StageResult, axes=None):
         else:
             ia_top = 2.6 * ia_q
         ia_top = max(ia_top, 1.8 * ia_q)
-        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, f[pos + ".mu"])
+        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, f[pos + ".mu"], st.pa_max)
         if isinstance(st, (CommonCathode, CathodeFollower)):
             supply = st.b_plus - (st.vneg if isinstance(st, CathodeFollower) else 0.0)
             r_dc = st.ra + st.rk
@@ -122,16 +175,16 @@ def plot_load_lines(result: StageResult, axes=None):
             dcl = quasi_static(st, *triodes, vin=np.linspace(-40.0 * abs(vgk_q) - 5, 3.0 * abs(f['bottom.vgk']) + 2, 300),
                                dc_grid=True)
             ax.plot(dcl[pos + ".va"], 1e3 * dcl[pos + ".ia"], "-", color="tab:blue", lw=1.8,
-                    label="DC load (bias moved)")
+                    label=_stack_dc_label(st, pos))
             ax.plot(wide[pos + ".va"], 1e3 * wide[pos + ".ia"], "--", color="tab:orange", lw=1.3,
-                    label="AC load (mid-band signal)")
+                    label="AC load: path of the mid-band signal")
         ax.plot(swing[pos + ".va"], 1e3 * swing[pos + ".ia"], "-", color="tab:red", lw=3.2, alpha=0.75,
                 label=f"swing to {lim.reason} (±{A:.3g} V in)")
         if st.pa_max:
             v = np.linspace(max(st.pa_max / (ia_top * 1e-3), 1.0), va_max, 200)
             ax.plot(v, 1e3 * st.pa_max / v, "-.", color="crimson", lw=1.0, label=f"Pa max {st.pa_max:g} W")
         ax.plot([va_q], [ia_q], "o", ms=9, color="black", zorder=5,
-                label=f"Q: Va {va_q:.4g} V, Ia {ia_q:.3g} mA, Vgk {vgk_q:.3g} V")
+                label=f"Q: Va {va_q:.4g} V, Ia {ia_q:.3g} mA")
         ax.set_xlim(0.0, va_max)
         ax.set_ylim(0.0, ia_top)
         ax.set_xlabel("plate-cathode voltage Va [V]")
@@ -139,12 +192,24 @@ def plot_load_lines(result: StageResult, axes=None):
         who = "" if pos == "tube" else f"{pos} tube "
         ax.set_title(f"{who}{t.label} ({t.model.name}); curves every {step:g} V of Vgk", fontsize=10)
         ax.grid(True, alpha=0.3)
-        ax.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2, frameon=False)
-    fig.suptitle(f"{stage_title(st)}: gain {f['gain']:.4g} at {result.to_dict()['output'].replace('_', ' ')}, "
+        handles, labels = ax.get_legend_handles_labels()
+        # load lines and the operating point first, the curve notes last
+        order = sorted(range(len(labels)), key=lambda k: (labels[k].startswith("Q:") + 2 * labels[k].startswith("Vgk =")
+                                                     + 3 * labels[k].startswith("dashed")))
+        ax.legend([handles[k] for k in order], [labels[k] for k in order], fontsize=7.5,
+                  loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2, frameon=False)
+    fig.suptitle(f"{stage_title(st)}: gain {f['gain']:.4g} at {_node_text(st)}, "
                  f"zout {_eng_unit(f['zout'], 'ohm')}", fontsize=11)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     fig.tight_layout(rect=(0, 0.03, 1, 0.96))
     return axes
+
+
+def _stack_dc_label(st: Stack, pos: str) -> str:
+    """Legend text of a stack tube's DC locus, in plain words."""
+    rest = "R-top + R-mid" if st.r_mid else "R-top"
+    load = f"top tube + {rest}" if pos == "bottom" else f"{rest} + bottom tube"
+    return f"DC load: Q as the bottom grid bias varies\n(load = {load})"
 
 
 def save_load_line_plot(result: StageResult, path) -> Path:
@@ -162,23 +227,26 @@ def plot_thd_sweep(sw: DistortionSweep, ax=None):
     if ax is None:
         _, ax = plt.subplots(figsize=(8.0, 5.6))
     vo = sw.vout_peak
-    ax.loglog(vo, 100 * sw.thd, "-o", ms=3, lw=2.0, color="black", label="THD (H2..H10)")
+    lo = max(1e-4, 0.3 * float(np.min(100 * sw.thd)))
+    # THD wide and translucent underneath, so a harmonic that carries nearly all of it
+    # (H2 of a single-ended triode) stays visible on top
+    ax.loglog(vo, 100 * sw.thd, "-o", ms=4, lw=6.0, color="0.25", alpha=0.35, zorder=2,
+              solid_capstyle="round", label="THD (H2..H10)")
     styles = {2: ("tab:blue", "-"), 3: ("tab:orange", "-"), 4: ("tab:green", "--"), 5: ("tab:purple", "--")}
     for k, (c, ls) in styles.items():
         h = 100 * sw.harmonics[:, k - 1] / sw.harmonics[:, 0]
         ok = h > 1e-6
-        if np.any(ok):
-            ax.loglog(vo[ok], h[ok], ls, lw=1.1, color=c, label=f"H{k}")
+        if np.any(h > lo):  # harmonics that never reach the plotted range are left out
+            ax.loglog(vo[ok], h[ok], ls, lw=1.3, color=c, zorder=3, label=f"H{k}")
     ax.axhline(100 * sw.thd_limit, color="crimson", ls=":", lw=1.2, label=f"threshold {100 * sw.thd_limit:g} %")
     ax.axvline(sw.headroom_vout_peak, color="crimson", ls="--", lw=1.0,
                label=f"headroom {sw.headroom_vout_peak:.3g} V peak ({sw.headroom_vout_peak / np.sqrt(2):.3g} V rms)")
     ax.annotate(f"sweep ends: {sw.limit.reason}", (vo[-1], 100 * sw.thd[-1]), xytext=(-10, 12),
                 textcoords="offset points", ha="right", fontsize=8)
-    lo = max(1e-4, 0.3 * float(np.min(100 * sw.thd)))
     ax.set_ylim(lo, max(3.0 * float(np.max(100 * sw.thd)), 2 * 100 * sw.thd_limit))
     ax.set_xlabel("output fundamental [V peak]")
     ax.set_ylabel("distortion [% of fundamental]")
-    ax.set_title(f"{stage_title(sw.stage)} ({', '.join(t.label for t in sw.triodes)}): "
+    ax.set_title(f"{stage_title(sw.stage)} with {_tubes_text(sw.stage, sw.triodes)}, output at {_node_text(sw.stage)}:\n"
                  "THD against output level (quasi-static, mid-band)", fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=8, loc="upper left")
@@ -211,6 +279,8 @@ def plot_waveform(d: Distortion, axes=None):
     ax.grid(True, alpha=0.3)
     ax.legend(fontsize=8)
     ax.set_title(f"{d.vin_peak:.3g} V peak in, {d.vout_peak:.3g} V peak out, THD {100 * d.thd:.3g} %", fontsize=10)
+    ax.figure.suptitle(f"{stage_title(d.stage)} with {_tubes_text(d.stage, d.triodes)}, "
+                       f"output at {_node_text(d.stage)}", fontsize=11)
     db = d.harmonics_db()
     n = np.arange(2, 2 + db.size)
     floor = -140.0
@@ -221,7 +291,8 @@ def plot_waveform(d: Distortion, axes=None):
     axh.set_ylim(floor, 0)
     axh.grid(True, axis="y", alpha=0.3)
     axh.figure.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    axh.figure.tight_layout(rect=(0, 0.04, 1, 1))
+    axh.set_title("harmonics of the output", fontsize=10)
+    axh.figure.tight_layout(rect=(0, 0.04, 1, 0.97))
     return axes
 
 

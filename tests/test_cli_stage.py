@@ -148,3 +148,44 @@ def test_distortion_needs_one_level(cards):
     res = CliRunner().invoke(main, ["distortion", "common-cathode", "--tube", str(cards["hx"]), *CC_ARGS,
                                     "--sweep", "--thd-limit", "150%"])
     assert res.exit_code == 1 and "--thd-limit" in res.output
+
+
+def test_plots_label_operating_curve_extrapolation_and_visible_harmonics():
+    import matplotlib.pyplot as plt
+
+    from fitter import distortion as D
+    from fitter import plotting_stage as PS
+
+    # invented unit on Koren's 12AX7 set (from memory, as above) whose data are said to
+    # stop at Vgk = -2 V, so the curves drawn below that are extrapolated
+    t = FittedTriode("koren", dict(mu=100, ex=1.4, kg1=1060, kp=600, kvb=300), tube="HX", section="A",
+                     valid_range={"va": (0.0, 400.0), "vg": (-2.0, 0.0), "ia": (0.0, 8e-3)})
+    st = S.CommonCathode(b_plus=300, ra=100e3, rk=1.5e3, ck=22e-6, rl=470e3, pa_max=1.0)
+    r = S.solve(st, t, errors=False)
+    (ax,) = PS.plot_load_lines(r)
+    labels = [x.get_text() for x in ax.get_legend().get_texts()]
+    assert f"Vgk = {r.figures['tube.vgk']:.3g} V (operating point)" in labels
+    assert any("extrapolated" in x and "-2..0 V" in x for x in labels)
+    grid_labels = [a.get_text() for a in ax.texts]
+    assert grid_labels and all(x.endswith(" V") for x in grid_labels)
+    n_out = sum(float(x[:-2]) < -2.04 for x in grid_labels)
+    dashed = [ln for ln in ax.lines if ln.get_label().startswith("_") and ln.get_linestyle() == "--"]
+    assert n_out > 0 and len(dashed) == n_out
+    plt.close(ax.figure)
+
+    sw = D.sweep(S.CommonCathode(b_plus=300, ra=100e3, rk=1.5e3, ck=22e-6, rl=470e3), t, levels=8)
+    ax = PS.plot_thd_sweep(sw)
+    shown = {x.get_text() for x in ax.get_legend().get_texts()}
+    lo = ax.get_ylim()[0]
+    for k in range(2, 6):
+        reaches = np.max(100 * sw.harmonics[:, k - 1] / sw.harmonics[:, 0]) > lo
+        assert (f"H{k}" in shown) == reaches, k
+    # common practice: a single-ended triode stage is mostly H2, so H2 is shown and H5 is not
+    assert "H2" in shown and "H5" not in shown
+    plt.close(ax.figure)
+
+    d = D.analyse(S.CommonCathode(b_plus=300, ra=100e3, rk=1.5e3, ck=22e-6, rl=470e3), t, vout_peak=10.0)
+    axes = PS.plot_waveform(d)
+    title = axes[0].figure.get_suptitle()
+    assert "Common-cathode stage" in title and "HX:A" in title and "plate" in title
+    plt.close(axes[0].figure)
