@@ -481,18 +481,21 @@ class _WarmLP:
         self.B = B
         self.cols = 0
         self.rows_cuts = 0
+        # scipy's HiGHS binding is private API: if this scipy lacks it or it changed
+        # shape, fall back on the public (slower, cold-started) scipy.optimize.linprog
         try:
             from scipy.optimize._highspy import _core
-        except ImportError:  # pragma: no cover - depends on the scipy build
+
+            h = _core._Highs()
+            h.setOptionValue("output_flag", False)
+            h.setOptionValue("presolve", "off")
+            h.changeObjectiveSense(_core.ObjSense.kMaximize)
+            h.addRows(n, np.full(n, -np.inf), np.ones(n), 0, np.zeros(n, np.int32), np.zeros(0, np.int32),
+                      np.zeros(0))
+        except (ImportError, AttributeError, TypeError):  # pragma: no cover - depends on the scipy build
             self.h = None
             return
         self.core = _core
-        h = _core._Highs()
-        h.setOptionValue("output_flag", False)
-        h.setOptionValue("presolve", "off")
-        h.changeObjectiveSense(_core.ObjSense.kMaximize)
-        h.addRows(n, np.full(n, -np.inf), np.ones(n), 0, np.zeros(n, np.int32), np.zeros(0, np.int32),
-                  np.zeros(0))
         self.h = h
 
     def solve(self, edges: _EdgeSet, cuts):

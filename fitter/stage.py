@@ -1108,6 +1108,9 @@ def _eng(v, unit=""):
 
     if not unit:
         return format_value(float(v))
+    if unit == "ohm" and abs(v) < 1.0:
+        # "917 mohm" would read as megohms
+        return f"{float(v):.3g} ohm"
     # "46.19 kHz", "57.07 kohm", "22 uF": a space between the number and prefix + unit
     return re.sub(r"^([-+]?[\d.]+(?:e[-+]?\d+)?)", r"\1 ", format_value(float(v), unit)).rstrip()
 
