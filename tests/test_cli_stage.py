@@ -77,6 +77,8 @@ def test_common_cathode_report_and_plot(cards, tmp_path):
 
 
 def test_stack_and_spread(cards, tmp_path):
+    # the CLI passes the same circuit to the engine: its JSON equals a direct solve
+    # (the engine's stack solves are checked against fsolve and ngspice elsewhere)
     args = ["--bplus", "300", "--rk", "820", "--r-top", "820", "--rl", "100k"]
     res = run(["stage", "stack", "--bottom", cards["muA"], "--top", cards["muB"], *args, "--json"])
     assert res.exit_code == 0, res.output

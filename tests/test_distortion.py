@@ -38,6 +38,7 @@ def test_projection_matches_numpy_fft():
 
 
 def test_stage_harmonics_match_fft_of_its_waveform():
+    # independent reference: numpy.fft of the stage's own output waveform
     d = D.analyse(CC, high_mu(), vin_peak=0.8)
     X = np.fft.rfft(d.vout)
     n = d.vout.size
@@ -101,6 +102,8 @@ def test_drive_limit_is_grid_current_onset_for_bypassed_cc():
 
 
 def test_drive_limit_cutoff_for_cathode_follower_into_low_load():
+    # definition (common practice for a quasi-static sweep): "cutoff" is where the tube's
+    # current falls to 1 % of its standing current; checked on the waveform solver itself
     t = medium_mu()
     st = S.CathodeFollower(b_plus=250, rk=22e3, vneg=-150, rl=4.7e3)
     op = S.operating_point(st, t)

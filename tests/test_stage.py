@@ -295,6 +295,9 @@ def test_error_bars_match_monte_carlo_spread():
 
 
 def test_spread_agrees_with_single_solves_and_mixed_models():
+    # consistency of the vectorised spread with one solve per unit (the single solves are
+    # checked against textbook formulas and fsolve above); Dempwolf-Zoelzer ECC83 set
+    # from memory of DAFx-11, Koren 12AX7 set from memory
     units = [high_mu("A", kg1=k) for k in (900.0, 1000.0, 1060.0, 1200.0)]
     units.append(FittedTriode("dempwolf", dict(G=2.242e-3, mu=103.2, gamma=1.26, C=3.40), tube="DZ"))
     st = S.CommonCathode(b_plus=300, ra=100e3, rk=1.5e3, ck=22e-6, rl=470e3)
@@ -308,6 +311,7 @@ def test_spread_agrees_with_single_solves_and_mixed_models():
 
 
 def test_stack_spread_pairs_bottom_and_top():
+    # consistency: the paired spread equals one stack solve per (bottom, top) pair
     bots = [medium_mu("M", "A", kg1=k) for k in (1100.0, 1180.0, 1250.0)]
     tops = [medium_mu("M", "B", kg1=k) for k in (1300.0, 1200.0, 1150.0)]
     st = S.Stack.srpp(b_plus=300, rk=820.0, rl=100e3)
@@ -322,6 +326,9 @@ def test_stack_spread_pairs_bottom_and_top():
 
 
 def test_solve_is_robust_at_cutoff_and_positive_grid():
+    # Koren (1996): at vg = -20 V a mu-100 triode's E1 is 0 for va <= 300 V, so no
+    # current and the plate sits at B+ (Ohm's law); at vg = +0.5 V grid current flows
+    # (common practice) and the solve must still converge
     t = high_mu()
     cut = S.solve(S.CommonCathode(b_plus=300, ra=100e3, vbias=-20.0), t, errors=False)
     assert cut["ia"] == pytest.approx(0.0, abs=1e-12)
@@ -337,6 +344,8 @@ def test_solve_is_robust_at_cutoff_and_positive_grid():
 
 
 def test_stack_with_bottom_cut_off():
+    # Koren 12AU7 set (from memory): at vg = -60 V the bottom tube conducts nothing,
+    # so neither can the top tube in series with it (Kirchhoff's current law)
     t = medium_mu()
     r = S.solve(S.Stack.srpp(b_plus=300, rk=820.0, vbias=-60.0), t, t, errors=False)
     assert r["ia"] == pytest.approx(0.0, abs=1e-9)
