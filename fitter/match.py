@@ -588,9 +588,12 @@ def _price(space: _Space, edges: _EdgeSet, cuts, y, zc, B, dead, per_node=6, sla
     zpos = zc[zc > 1e-12]
     found_i, found_j, found_m, found_v = [], [], [], []
 
-    def scan(rows, spans, backward=False):
+    def scan(rows, spans, backward=False, seen=None):
         for i, j in space.windows(rows, spans, backward):
             ok, m, _ = space.measure(i, j)
+            if seen is not None:
+                seen[i[ok]] = True
+                seen[j[ok]] = True
             i, j, m = i[ok], j[ok], m[ok]
             thr = pi[i] + pi[j]
             if member is not None and i.size:
@@ -607,17 +610,7 @@ def _price(space: _Space, edges: _EdgeSet, cuts, y, zc, B, dead, per_node=6, sla
     if wide.size:
         anyc = np.zeros(space.n, bool)
         for back in (False, True):
-            for i, j in space.windows(wide, space.span[0], backward=back):
-                ok, m, _ = space.measure(i, j)
-                anyc[i[ok]] = True
-                anyc[j[ok]] = True
-                i, j, m = i[ok], j[ok], m[ok]
-                thr = pi[i] + pi[j]
-                if member is not None and i.size:
-                    thr = thr - member[i].multiply(member[j]) @ zpos
-                viol = thr - m
-                s = viol > (1e-9 * B if slack == 0 else -1e-9 * B)
-                found_i.append(i[s]), found_j.append(j[s]), found_m.append(m[s]), found_v.append(viol[s])
+            scan(wide, space.span[0], backward=back, seen=anyc)
         # a wide node with no compatible partner at all never needs scanning again
         dead[wide[~anyc[wide]]] = True
     I, J, M, V = _cat(found_i), _cat(found_j), _catf(found_m), _catf(found_v)

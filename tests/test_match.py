@@ -67,6 +67,21 @@ def brute_pairs(figs, crit, idx):
     return best
 
 
+def networkx_pairs(figs, tol):
+    """Independent reference: networkx max_weight_matching (maxcardinality) on the default
+    criterion's compatibility graph; returns (number of pairs, total mismatch)."""
+    ia, gm = figs.values["ia"], figs.values["gm"]
+    G = nx.Graph()
+    for a in range(len(ia)):
+        for b in range(a + 1, len(ia)):
+            da = abs(ia[a] - ia[b]) / ((ia[a] + ia[b]) / 2)
+            dg = abs(gm[a] - gm[b]) / ((gm[a] + gm[b]) / 2)
+            if da <= tol / 100 and dg <= tol / 100:
+                G.add_edge(a, b, weight=-max(da, dg))
+    M = nx.max_weight_matching(G, maxcardinality=True)
+    return len(M), -sum(G[a][b]["weight"] for a, b in M)
+
+
 @pytest.mark.parametrize("seed,tol", [(1, 5.0), (2, 8.0), (3, 12.0), (4, 6.0), (5, 20.0)])
 def test_pairs_equal_brute_force(seed, tol):
     # independent reference: exhaustive search over every partition of <= 10 units
@@ -151,18 +166,8 @@ def test_pairs_equal_networkx(seed, tol):
     pos = FixedBias(250.0, -2.0)
     crit = Criterion(tolerance_pct=tol)
     res = match_pairs(units, pos, crit)
-    figs = unit_figures(units, pos)
-    ia, gm = figs.values["ia"], figs.values["gm"]
-    G = nx.Graph()
-    for a in range(len(units)):
-        for b in range(a + 1, len(units)):
-            da = abs(ia[a] - ia[b]) / ((ia[a] + ia[b]) / 2)
-            dg = abs(gm[a] - gm[b]) / ((gm[a] + gm[b]) / 2)
-            if da <= tol / 100 and dg <= tol / 100:
-                G.add_edge(a, b, weight=-max(da, dg))
-    M = nx.max_weight_matching(G, maxcardinality=True)
-    ref = -sum(G[a][b]["weight"] for a, b in M)
-    assert len(res.groups) == len(M)
+    n_pairs, ref = networkx_pairs(unit_figures(units, pos), tol)
+    assert len(res.groups) == n_pairs
     assert res.total_mismatch == pytest.approx(ref, abs=1e-7)
     assert res.optimality.exact
 
@@ -372,15 +377,6 @@ def test_public_linprog_fallback_gives_the_same_pairs(monkeypatch):
     cold = match_pairs(units, pos, crit)
     assert len(cold.groups) == len(warm.groups)
     assert cold.total_mismatch == pytest.approx(warm.total_mismatch, abs=1e-9)
-    figs = unit_figures(units, pos)
-    ia, gm = figs.values["ia"], figs.values["gm"]
-    G = nx.Graph()
-    for a in range(len(units)):
-        for b in range(a + 1, len(units)):
-            da = abs(ia[a] - ia[b]) / ((ia[a] + ia[b]) / 2)
-            dg = abs(gm[a] - gm[b]) / ((gm[a] + gm[b]) / 2)
-            if da <= 0.05 and dg <= 0.05:
-                G.add_edge(a, b, weight=-max(da, dg))
-    M = nx.max_weight_matching(G, maxcardinality=True)
-    assert len(cold.groups) == len(M)
-    assert cold.total_mismatch == pytest.approx(-sum(G[a][b]["weight"] for a, b in M), abs=1e-7)
+    n_pairs, ref = networkx_pairs(unit_figures(units, pos), 5.0)
+    assert len(cold.groups) == n_pairs
+    assert cold.total_mismatch == pytest.approx(ref, abs=1e-7)
