@@ -134,6 +134,14 @@ def _require_conduction(stage, triodes, op):
                 f"Vgk {float(np.max(np.atleast_1d(op[p + '.vgk']))):+.4g} V): the stage passes no signal to analyse")
 
 
+def _stage_warnings(stage, triodes) -> list[str]:
+    """The stage's DC warnings (heater-cathode, dissipation, extrapolation), so that a
+    distortion report does not hide what the stage report would say."""
+    from .stage import solve
+
+    return list(solve(stage, *triodes, errors=False).warnings)
+
+
 def _has_grid_current(t) -> bool:
     return t.model.grid_current is not None and (t.params.get("Gg", 0.0) != 0.0 or t.params.get("Ig0", 0.0) != 0.0)
 
@@ -375,7 +383,7 @@ def analyse(stage, *triodes, vin_peak: float | None = None, vout_peak: float | N
             raise ValueError(f"{name}: must be a positive amplitude in volts, got {v!r}")
     op = operating_point(stage, *triodes)
     _require_conduction(stage, triodes, op)
-    warnings = []
+    warnings = _stage_warnings(stage, triodes)
     if vout_peak is not None:
         vin_peak = _input_for_output(stage, triodes, op, float(vout_peak), n_samples)
     theta, vin, res, y, H, thd = _distortion_at(stage, triodes, op, [vin_peak], n_samples)
@@ -468,6 +476,8 @@ class DistortionSweep:
     headroom_vout_peak: float
     headroom_vin_peak: float
     headroom_reason: str
+    #: the stage's own DC warnings (heater-cathode, dissipation, extrapolation ...)
+    warnings: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
         h = self.harmonics
@@ -489,6 +499,7 @@ class DistortionSweep:
                  "h_db": {f"h{k + 2}": float(db[i, k]) for k in range(N_HARMONICS - 1)}}
                 for i in range(len(self.vin_peak))
             ],
+            "warnings": list(self.warnings),
             "assumptions": assumptions(self.triodes),
             "caution": CAUTION,
         }
@@ -509,6 +520,9 @@ class DistortionSweep:
         for i in range(len(self.vin_peak)):
             lines.append(f"  {self.vin_peak[i]:9.4g} {self.vout_peak[i]:9.4g} {100 * self.thd[i]:9.4g} "
                          + " ".join(_fmt_db(db[i, k], 7) for k in range(4)))
+        if self.warnings:
+            lines.append("")
+            lines.extend("  ! " + w for w in self.warnings)
         lines.append("")
         lines.append("Assumptions:")
         lines.extend("  - " + a for a in assumptions(self.triodes))
@@ -565,4 +579,4 @@ def sweep(stage, *triodes, levels: int = 30, thd_limit: float = 0.01, lowest: fl
         hv_out = o0 + w * (o1 - o0)
         reason = f"THD reaches {100 * thd_limit:g} %"
     return DistortionSweep(stage, tuple(triodes), amps, H[:, 1], thd, H[:, 1:], lim, thd_limit,
-                           float(hv_out), float(hv_in), reason)
+                           float(hv_out), float(hv_in), reason, _stage_warnings(stage, triodes))

@@ -175,3 +175,15 @@ def test_a_cut_off_stage_is_a_failure_not_a_distortion_figure():
         D.analyse(st, high_mu(), vin_peak=1.0)
     with pytest.raises(S.StageSolveError, match="cut off"):
         D.sweep(st, high_mu(), levels=5)
+
+
+def test_distortion_reports_carry_the_stages_dc_warnings():
+    # common practice: octal double triodes allow about 200 V heater-cathode; an SRPP's
+    # top cathode sits near B+/2, so at 400 V with grounded heaters the stage report warns,
+    # and the distortion report of the same stage must not hide it
+    t = medium_mu()
+    st = S.Stack.srpp(b_plus=400.0, rk=1e3, r_top=1e3, rl=47e3, vhk_max=150.0)
+    dc = S.solve(st, t, t, errors=False).warnings
+    assert any("heater-cathode" in w for w in dc)
+    assert any("heater-cathode" in w for w in D.analyse(st, t, t, vout_peak=5.0).warnings)
+    assert any("heater-cathode" in w for w in D.sweep(st, t, t, levels=4).warnings)

@@ -217,7 +217,8 @@ def test_distortion_matches_ngspice_fourier(key, vout_peak):
     d = analyse(stage, *tubes, vout_peak=vout_peak).to_dict()
     # no cutoff and no grid past onset at this level; the mu follower's top grid comes
     # near the onset (the case described above), which the analysis now warns about
-    hard = [w for w in d["warnings"] if "comes to" not in w]
+    # (the stage's DC heater-cathode warnings are carried too; they do not touch the signal)
+    hard = [w for w in d["warnings"] if "comes to" not in w and "heater-cathode" not in w]
     assert not hard
     assert any("comes to" in w for w in d["warnings"]) == (key == "mu-follower")
     circuit = ng.hold_capacitors(_circuit(stage, tubes, signal=f"SIN(0 {d['vin_peak_v']!r} 1k)"))
