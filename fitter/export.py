@@ -409,6 +409,8 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
             raise ExportError(f"{what}: step must be positive in {text!r}")
         if b < a:
             raise ExportError(f"{what}: stop is below start in {text!r}")
+        if b > a and h > b - a:
+            raise ExportError(f"{what}: the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}")
         n = int(math.floor((b - a) / h + 1e-9)) + 1
         if n > 100_000:
             raise ExportError(f"{what}: {text!r} gives {n} points; at most 100000")

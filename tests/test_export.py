@@ -182,7 +182,8 @@ def test_parse_sweep():
     np.testing.assert_allclose(parse_sweep("-4, -2,0", "--vg"), [-4, -2, 0])
     for bad, msg in (("0:400", "should be start:stop:step"), ("0:400:0", "step must be positive"),
                      ("400:0:5", "stop is below start"), ("a:b:c", "cannot read 'a:b:c'"),
-                     ("", "gives no finite voltages"), ("0:1e9:1", "at most 100000")):
+                     ("", "gives no finite voltages"), ("0:1e9:1", "at most 100000"),
+                     ("0:400:1000", "step 1000 is larger than the range 0..400")):
         with pytest.raises(ExportError, match=re.escape("--va: ") + ".*" + re.escape(msg)):
             parse_sweep(bad, "--va")
 
