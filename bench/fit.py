@@ -357,7 +357,7 @@ def main(argv=None):
           f"numpy {np.__version__}, scipy {scipy.__version__}, {os.cpu_count()} cpu(s)")
     print(f"seed {SEED}; {per_type} units per type x {len(TYPES)} types "
           f"({', '.join(TYPES)}); each clean and with {100 * OUTLIER_FRACTION:.0f} % outliers")
-    print(f"plain fit: scipy.optimize.curve_fit, unweighted, unbounded, from "
+    print("plain fit: scipy.optimize.curve_fit, unweighted, unbounded, from "
           + ", ".join(f"{k} {v:g}" for k, v in GENERIC_START.items()))
     digests = ", ".join(
         f"{name} {hashlib.sha1((ROOT / 'fitter' / name).read_bytes()).hexdigest()[:10]}"

@@ -572,7 +572,6 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     if not free:
         raise FitInputError("every parameter is fixed: nothing to fit")
     prob = _Problem(m, u, opts.floor, with_grid)
-    use_jac = not opts.expr
 
     first = m.guess(u.va, u.vg, u.ia)
     if with_grid:

@@ -1776,7 +1776,7 @@ def _quad_candidates(V, crit, mode, limit):
     pair_m = np.full((n, n), np.inf)
     pair_m[a[ok], b[ok]] = _norm(crit, d[ok])
     pair_m[b[ok], a[ok]] = pair_m[a[ok], b[ok]]
-    quads, mism, sides = [], [], []
+    quads, mism = [], []
     if mode == "all":
         for p in range(n):
             up = np.nonzero(A[p, p + 1:])[0] + p + 1

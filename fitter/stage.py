@@ -59,8 +59,8 @@ amplifiers).
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field, fields
-from typing import Callable, Sequence
+from dataclasses import asdict, dataclass, field
+from typing import Sequence
 
 import numpy as np
 
