@@ -514,10 +514,10 @@ def _robust_scale(r, sel=None):
     return _mad_scale(r)
 
 
-def _run(mini_problem: _Problem, params, loss: str, f_scale: float, use_jac: bool, max_nfev: int):
+def _run(mini_problem: _Problem, params, loss: str, f_scale: float, max_nfev: int):
+    """One lmfit least_squares run (used with constraint expressions, whose chain rule
+    lmfit handles; the Jacobian is then numerical)."""
     kws = dict(loss=loss, f_scale=f_scale, x_scale="jac", max_nfev=max_nfev)
-    if use_jac:
-        kws["jac"] = lambda p: mini_problem.jacobian(p)
     mini = lmfit.Minimizer(lambda p: mini_problem.residual(p), params, nan_policy="raise")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -580,7 +580,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     fixed = {sp.name: float(opts.fix.get(sp.name, sp.default if sp.default is not None else np.nan))
              for sp in m.params if sp.name not in free and sp.name not in opts.expr}
     # starting values of fixed parameters are the fixed values
-    first = {**first, **{k: v for k, v in fixed.items()}}
+    first = {**first, **fixed}
 
     def bound_hit(values):
         for k in free:
@@ -604,12 +604,12 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
 
         def attempt(start):
             params = _make_params(m, start, free, opts)
-            r1 = _run(prob, params, loss, 0.05, False, 200 * (len(free) + 1))
+            r1 = _run(prob, params, loss, 0.05, 200 * (len(free) + 1))
             scale = None
             r = r1
             if opts.robust:
                 scale = max(_robust_scale(r1.residual, prob.scale_points), 1e-5)
-                r = _run(prob, r1.params, loss, 2.5 * scale, False, 200 * (len(free) + 1))
+                r = _run(prob, r1.params, loss, 2.5 * scale, 200 * (len(free) + 1))
                 scale = max(_robust_scale(r.residual, prob.scale_points), 1e-5)
             return prob.values(r.params), scale, bool(r.success)
 

@@ -190,6 +190,19 @@ def test_mu_fixed_to_a_datasheet_value(synth, tube_types):
     assert r.converged and r.params["mu"] == 100.0 and "mu" not in r.free
 
 
+def test_a_constraint_expression_holds_and_recovers_the_truth(synth, tube_types):
+    # issue section 3: "any parameter can be fixed or constrained on request"; the
+    # constraint goes through lmfit's expression machinery.  Koren's 12AU7 set (from
+    # memory) has kvb 300 and kp 84, so kvb = 300/84 kp holds at the truth and the
+    # constrained fit must still recover mu within 2 % and keep the relation exactly
+    s = synth(tube_types["12AU7"], seed=8)
+    r = fit_curves(s.curveset(), "koren", FitOptions(expr={"kvb": f"kp*{300 / 84!r}"}))
+    assert r.converged, r.failure
+    assert "kvb" not in r.free
+    assert r.params["kvb"] == pytest.approx(r.params["kp"] * 300 / 84, rel=1e-12)
+    assert r.params["mu"] == pytest.approx(21.5, rel=0.02)
+
+
 # --------------------------------------------------------------------------
 # handbook typical values (from memory)
 # --------------------------------------------------------------------------
