@@ -191,3 +191,12 @@ def test_plots_label_operating_curve_extrapolation_and_visible_harmonics():
     title = axes[0].figure.get_suptitle()
     assert "Common-cathode stage" in title and "HX:A" in title and "plate" in title
     plt.close(axes[0].figure)
+
+
+def test_a_capacitor_without_its_prefix_is_an_input_error(cards):
+    # rules: bad input gets a clear error naming what was wrong; 22 F behind a cathode
+    # resistor is a forgotten "u" (common practice: bypass capacitors are tens of uF)
+    res = run(["stage", "common-cathode", "--tube", cards["hx"], "--bplus", "300", "--ra", "100k",
+               "--rk", "1.5k", "--ck", "22"])
+    assert res.exit_code == 1
+    assert "--ck: '22' is 22 F, not a plausible capacitor" in res.output

@@ -43,8 +43,16 @@ def _fail(message: str, code: int = 1):
     fail(_option_message(message), code)
 
 
+#: capacitor options; a value of 0.1 F or more is a missing prefix, not a capacitor
+_CAPACITORS = {"--ck", "--cin", "--cout", "--cload", "--cgk", "--cga", "--cak", "--c-top"}
+
+
 def _val(text, option, optional=True):
-    return value(text, option, optional, on_error=_fail)
+    v = value(text, option, optional, on_error=_fail)
+    if option in _CAPACITORS and v is not None and abs(v) >= 0.1:
+        _fail(f"{option}: {text!r} is {v:g} F, not a plausible capacitor; give the prefix, "
+              f"e.g. {text}u for microfarads or {text}n for nanofarads")
+    return v
 
 
 def _pct(text, option):
