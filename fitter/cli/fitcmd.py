@@ -121,6 +121,8 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     ig_*) or the wide layout (va, then ia_ma@vg=<V> columns). Each (tube, section) is
     one unit. Exit status: 0 all fits good, 1 input error, 2 one or more fits failed.
     """
+    if residuals and not as_json:
+        fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
     fix = _parse_fix(fix_items, models)
     try:
