@@ -278,3 +278,16 @@ def test_cli_bad_card(tmp_path):
     broken.write_text('{"format": "platebook.model-card", "version": 1, "model": "triodeX"}')
     r = _cli(str(broken), "--format", "json")
     assert r.exit_code == 1 and "field 'model': unknown model 'triodeX'" in r.output
+
+
+def test_grid_r_is_refused_for_a_card_with_its_own_grid_current(tmp_path):
+    # Dempwolf-Zoelzer (DAFx-11) models grid current itself (Gg, xi, Cg, Ig0; ECC83 set
+    # from memory); a generic grid resistance would be silently ignored, so it is an error
+    from fitter.cli import main
+
+    t = FittedTriode("dempwolf", dict(G=2.242e-3, mu=103.2, gamma=1.26, C=3.40, Gg=6.177e-4, xi=1.314,
+                                      Cg=9.901, Ig0=8.025e-8), tube="DZ")
+    card = tmp_path / "dz.json"
+    save_card(card, t)
+    r = CliRunner().invoke(main, ["export", str(card), "--format", "spice", "--grid-r", "1k"])
+    assert r.exit_code == 1 and "--grid-r does not apply" in r.output

@@ -70,6 +70,11 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             if v is not None and fmt != which:
                 _fail(f"{opt} applies to --format {which} only (this is --format {fmt})")
 
+    own_grid = triode.model.grid_current is not None and (
+        triode.params.get("Gg", 0.0) != 0.0 or triode.params.get("Ig0", 0.0) != 0.0)
+    if grid_r is not None and own_grid:
+        _fail(f"--grid-r does not apply to {card}: its {triode.model.name} model carries its own fitted "
+              "grid current, which the subcircuit uses")
     try:
         if fmt == "spice":
             sub_name = name or spice_name(triode)
