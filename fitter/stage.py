@@ -563,6 +563,13 @@ def _solve_outer(fun, x0, lo, hi, xtol):
 # node [A] (for output impedances), ``gl`` the load conductance [S] (0: no load).
 
 
+def _single_tube_nodes(vg, k, p, I):
+    """Node voltages and tube figures of a one-tube stage (grid, cathode, plate, current),
+    all broadcast to the shape of the current."""
+    return {"grid": vg + 0 * I, "cathode": k + 0 * I, "plate": p,
+            "tube.va": p - k, "tube.vgk": vg - k, "tube.ia": I}
+
+
 def _cc_dc(st: CommonCathode, banks, n, dvg=0.0):
     (bank,) = banks
     vg = (0.0 if st.vbias is None else st.vbias) + dvg
@@ -570,8 +577,7 @@ def _cc_dc(st: CommonCathode, banks, n, dvg=0.0):
     I = np.broadcast_to(I, np.broadcast(I, np.zeros(n)).shape)
     k = st.rk * I
     p = st.b_plus - st.ra * I
-    return {"grid": vg + 0 * I, "cathode": k, "plate": p,
-            "tube.va": p - k, "tube.vgk": vg - k, "tube.ia": I}
+    return _single_tube_nodes(vg, k, p, I)
 
 
 def _cc_mid(st: CommonCathode, banks, op, vin, inj, gl):
@@ -588,8 +594,7 @@ def _cc_mid(st: CommonCathode, banks, op, vin, inj, gl):
     I, *_ = _solve_tube(bank, pth - kc, rth + ru, vg - kc, ru, x0=op["tube.ia"])
     k = kc + ru * I
     p = pth - rth * I
-    return {"grid": vg + 0 * I, "cathode": k + 0 * I, "plate": p,
-            "tube.va": p - k, "tube.vgk": vg - k, "tube.ia": I}
+    return _single_tube_nodes(vg, k, p, I)
 
 
 def _cf_dc(st: CathodeFollower, banks, n, dvg=0.0):
@@ -599,8 +604,7 @@ def _cf_dc(st: CathodeFollower, banks, n, dvg=0.0):
     I = np.broadcast_to(I, np.broadcast(I, np.zeros(n)).shape)
     k = st.vneg + st.rk * I
     p = st.b_plus - st.ra * I
-    return {"grid": vg + 0 * I, "cathode": k, "plate": p,
-            "tube.va": p - k, "tube.vgk": vg - k, "tube.ia": I}
+    return _single_tube_nodes(vg, k, p, I)
 
 
 def _cf_mid(st: CathodeFollower, banks, op, vin, inj, gl):
@@ -613,8 +617,7 @@ def _cf_mid(st: CathodeFollower, banks, op, vin, inj, gl):
     I, *_ = _solve_tube(bank, st.b_plus - kth, st.ra + rth, vg - kth, rth, x0=op["tube.ia"])
     k = kth + rth * I
     p = st.b_plus - st.ra * I
-    return {"grid": vg + 0 * I, "cathode": k, "plate": p,
-            "tube.va": p - k, "tube.vgk": vg - k, "tube.ia": I}
+    return _single_tube_nodes(vg, k, p, I)
 
 
 def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, n=1):
