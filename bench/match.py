@@ -61,7 +61,8 @@ def main():
             dt = time.perf_counter() - t
             o = res.optimality
             st = o.stats
-            info = (f"lp {st.get('lp_solves')} cuts {st.get('cuts')} priced {st.get('priced_edges')} "
+            info = (f"edges {st.get('candidate_edges')} stand-ins {st.get('stand_ins')} "
+                    f"pricing rounds {st.get('priced_rounds')} ({st.get('priced_edges')} edges) "
                     f"stop {st.get('stop')}" if what == "pairs" else
                     f"feasible quads {st.get('feasible_quads')}" if "feasible_quads" in st else
                     f"pair step {st['pair_step'].get('seconds')} s ({st['pair_step'].get('stop')}), "

@@ -361,22 +361,3 @@ def test_stacked_assignment_same_bottle_and_errors():
         assert s["bottom"].split(":")[0] == s["top"].split(":")[0]
     with pytest.raises(MatchError, match="need 8 units"):
         assign_stacks(units[:6], st, 4)
-
-
-def test_public_linprog_fallback_gives_the_same_pairs(monkeypatch):
-    # the warm-started solver uses scipy's private HiGHS binding; without it the matcher
-    # falls back on the public scipy.optimize.linprog.  Both must give networkx's answer
-    # (independent reference, as in test_pairs_equal_networkx) on the same graph.
-    import sys
-
-    units = stock(60, 7)
-    pos = FixedBias(250.0, -2.0)
-    crit = Criterion(tolerance_pct=5.0)
-    warm = match_pairs(units, pos, crit)
-    monkeypatch.setitem(sys.modules, "scipy.optimize._highspy", None)  # import now fails
-    cold = match_pairs(units, pos, crit)
-    assert len(cold.groups) == len(warm.groups)
-    assert cold.total_mismatch == pytest.approx(warm.total_mismatch, abs=1e-9)
-    n_pairs, ref = networkx_pairs(unit_figures(units, pos), 5.0)
-    assert len(cold.groups) == n_pairs
-    assert cold.total_mismatch == pytest.approx(ref, abs=1e-7)
