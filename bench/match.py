@@ -5,7 +5,8 @@ ex 1.4, kg1 1060, kp 600, kvb 300) with lognormal spread mu 4 %, ex 2 %, kg1 15 
 kp 5 %, matched at va = 250 V, vg = -2 V with the default criterion (Ia and gm within
 P % of the pair's mean).
 
-Usage: python bench/match.py [--sizes 100,1000,10000] [--tolerance 5] [--time-limit 120]
+Usage: python bench/match.py [--sizes 100,1000,10000] [--seeds 1] [--tolerance 5] [--time-limit 120]
+(``--seeds 1,2,3`` repeats every size on several invented stocks.)
 """
 
 from __future__ import annotations
@@ -40,15 +41,15 @@ def main():
     ap.add_argument("--sizes", default="100,1000,10000")
     ap.add_argument("--tolerance", type=float, default=5.0)
     ap.add_argument("--time-limit", type=float, default=120.0)
-    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--seeds", default="1")
     a = ap.parse_args()
     pos = FixedBias(250.0, -2.0)
     crit = Criterion(tolerance_pct=a.tolerance)
     print(f"matching benchmark: tolerance {a.tolerance:g} %, position {pos.describe()}")
-    print(f"{'units':>7} {'what':<6} {'figures s':>10} {'total s':>8} {'groups':>7} {'bound':>6} "
+    print(f"{'seed':>4} {'units':>7} {'what':<6} {'figures s':>10} {'total s':>8} {'groups':>7} {'bound':>6} "
           f"{'mismatch %':>11} {'gap %':>8} {'exact':>6}  solver")
-    for n in [int(s) for s in a.sizes.split(",")]:
-        units = stock(n, a.seed)
+    for seed, n in [(int(sd), int(s)) for s in a.sizes.split(",") for sd in a.seeds.split(",")]:
+        units = stock(n, seed)
         t = time.perf_counter()
         unit_figures(units, pos)
         t_fig = time.perf_counter() - t
@@ -67,7 +68,7 @@ def main():
                     f"feasible quads {st.get('feasible_quads')}" if "feasible_quads" in st else
                     f"pair step {st['pair_step'].get('seconds')} s ({st['pair_step'].get('stop')}), "
                     f"quad step {st['quad_step'].get('seconds')} s ({st['quad_step'].get('stop')})")
-            print(f"{n:>7} {what:<6} {t_fig:>10.3f} {dt:>8.2f} {len(res.groups):>7} {o.groups_bound:>6} "
+            print(f"{seed:>4} {n:>7} {what:<6} {t_fig:>10.3f} {dt:>8.2f} {len(res.groups):>7} {o.groups_bound:>6} "
                   f"{100 * res.total_mismatch:>11.3f} {100 * o.gap:>8.3f} {str(o.exact):>6}  {info}",
                   flush=True)
 

@@ -12,22 +12,25 @@ matched edges are *tight* (slack 0), a blossom B with z_B > 0 holds (|B| - 1) / 
 matched edges, and an unmatched vertex ends with y_v = 0.  When every vertex is
 matched or has y_v = 0, the matching and the duals prove each other optimal.
 
-The searches are grown *one alternating tree at a time* from a single unmatched
-vertex with y > 0 (the "single tree" form of the primal-dual method; see
-V. Kolmogorov, "Blossom V: a new implementation of a minimum cost perfect matching
-algorithm", Math. Prog. Comp. 1 (2009) 43-67, section 2, for this form and its
-dual updates, and Z. Galil, "Efficient algorithms for finding maximum matching in
-graphs", ACM Comput. Surv. 18 (1986) 23-38, for the four kinds of dual step).
-Dual changes are kept lazily (one running total per search), and the next event
-(an edge becoming tight, an inner blossom's z reaching 0, an outer vertex's y
-reaching 0) comes from a heap, so a search costs in proportion to the tree it
-grows, not to the graph.  The matching may start from any set of tight edges and
-any feasible duals (a warm start); by default it starts from a greedy matching on
-``y_v = max_e w_e / 2`` lowered vertex by vertex.
+All unmatched vertices with y > 0 grow alternating trees at once under one running
+dual change (Edmonds' method as in Z. Galil, "Efficient algorithms for finding
+maximum matching in graphs", ACM Comput. Surv. 18 (1986) 23-38, with the several
+trees of V. Kolmogorov, "Blossom V: a new implementation of a minimum cost perfect
+matching algorithm", Math. Prog. Comp. 1 (2009) 43-67; both cited from memory).
+Dual changes are kept lazily, per top-level blossom, and the next event (an edge
+becoming tight, an inner blossom's z reaching 0, an outer vertex's y reaching 0)
+comes from a heap, so the work follows the trees, not the graph.  A new blossom takes
+over the id of its largest child and an expanding one hands its id to its largest
+child, so blossoms nested hundreds deep (usual for units spread along a line) cost
+in proportion to what changes.  The matching may start from any set of tight edges
+and any feasible duals: by default a greedy matching on ``y_v = max_e w_e / 2``
+lowered vertex by vertex; after a solve, :meth:`BlossomMatching.restart_with` adds
+edges and continues.
 
 When an outer vertex other than the root reaches y = 0, the even alternating path
 from the root to it is flipped: the root is matched and that vertex left single
-with y = 0, which complementary slackness allows.
+with y = 0, which complementary slackness allows.  The inner vertices of such a tree
+are recorded (``barrier``): they separate its outer blossoms from the rest.
 
 Nothing here is specific to tubes; the tests check it against brute force and
 against networkx's ``max_weight_matching`` (an independent implementation, of
@@ -104,7 +107,7 @@ class BlossomMatching:
         (hubs such as the stand-ins for a single unit) get the smallest y that keeps
         their edges feasible once the others are set, and go last.
         """
-        y, mate, adj = self.y, self.mate, self.adj
+        y, adj = self.y, self.adj
         late = set(late)
         for v in range(self.n):
             if v not in late:
