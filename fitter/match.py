@@ -1835,7 +1835,9 @@ def assign_stacks(units: Sequence[FittedTriode], stack, n_stages: int, target_ma
                        "outside_data": [lab for lab, o in ((units[b].label, out_b[c]), (units[t].label, out_t[c])) if o]})
     stages.sort(key=lambda s: s["deviation"])
     opt = Optimality("mixed-integer programme over every (bottom, top) pair (HiGHS branch-and-cut)",
-                     bool(solved), n_stages, total, 0.0, "optimal" if solved else "stopped at the time limit",
+                     bool(solved), n_stages, total, 0.0,
+                     (f"HiGHS branch-and-cut over all {int(pairs.shape[0])} (bottom, top) cases" if solved
+                      else "stopped at the time limit"),
                      {"units": M, "cases": int(pairs.shape[0]), "seconds": round(time.perf_counter() - t0, 3)})
     unused = [u.label for k, u in enumerate(units) if k not in used and u.label not in {e["unit"] for e in excluded}]
     return StackAssignment(stack, stages, {"ia": it, "split": float(target_split)}, dmax, spr, opt, unused,
