@@ -488,10 +488,6 @@ def _violations(space: _Space, y, bl: _Blossoms, B, tol):
     return _cat(I), _cat(J), _catf(M)
 
 
-class _Deadline(Exception):
-    pass
-
-
 def _singles_lower_bound(space: _Space, edges: _EdgeSet, lab, size):
     """Per component of the full compatibility graph, how many units every maximum
     matching must leave single: a proven lower bound.
@@ -621,7 +617,7 @@ def _solve_matching(space: _Space, time_limit: float = 60.0):
     stats["seconds"] = round(time.perf_counter() - t_start, 3)
     stats["stop"] = status
     stats.update({key: bm.stats[key] for key in ("searches", "augment", "shrink", "expand")})
-    parity_bound = int(np.sum(size // 2))
+    parity_bound = int(np.sum((size - count) // 2))  # the stand-in counts are proven
     if status == "optimal":
         # weak duality over the full graph plus stand-ins: any matching of K pairs leaves at
         # least as many units single as there are stand-ins (a proven lower bound), so
@@ -644,8 +640,9 @@ def _solve_matching(space: _Space, time_limit: float = 60.0):
     else:
         opt = Optimality("Edmonds' weighted blossom method, stopped at the time limit", False,
                          parity_bound, 0.0, float(m.sum()),
-                         f"stopped after {time_limit:g} s; at most {parity_bound} pairs (one unit "
-                         "of every odd component of the compatibility graph stays single)", stats)
+                         f"stopped after {time_limit:g} s; at most {parity_bound} pairs (every "
+                         "component of the compatibility graph leaves its proven number of units "
+                         "single)", stats)
     o = space.order
     return o[u], o[v], m, opt
 

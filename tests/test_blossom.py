@@ -163,3 +163,14 @@ def test_units_that_must_stay_single_get_stand_ins(monkeypatch):
     assert opt.stats["stand_ins"] >= 2
     assert (i.size, float(m.sum())) == (k, pytest.approx(ref, abs=1e-9))
     assert space.n - 2 * i.size == 2
+
+
+def test_time_limit_reports_pairs_found_as_not_proven():
+    rng = np.random.default_rng(2)
+    space = _space(rng.normal(0, 0.04, (3000, 2)))
+    i, j, m, opt = fm._solve_matching(space, time_limit=1e-6)
+    assert not opt.exact and opt.stats["stop"] == "time"
+    assert "stopped after" in opt.note
+    used = np.concatenate([i, j])
+    assert np.unique(used).size == used.size  # still a matching
+    assert i.size <= opt.groups_bound <= space.n // 2
