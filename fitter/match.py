@@ -330,6 +330,8 @@ class _EdgeSet:
 ALL_EDGES_UP_TO = 30_000
 #: Otherwise from each node's this many nearest nodes (and prices in the rest).
 NEAREST = 24
+#: The cardinality pass (stand-in count) starts from this many nearest nodes.
+UNIT_PASS_NEAREST = 12
 
 
 def _candidates(space: _Space, k: int | None = None):
@@ -469,23 +471,42 @@ def _violations(space: _Space, y, bl: _Blossoms, B, tol):
 
     An edge can be violated only if its mismatch is below ``pi_i + pi_j`` with
     ``pi = B/2 - y`` (blossom duals only add to its reduced cost), so below twice the
-    larger of the two: each node's windows, both ways, reach as far as ``2 pi``."""
+    larger of the two.  A mismatch below r bounds every figure's weighted ln-difference
+    (``w_f 2 tanh(|d_f| / 2) <= m``), so each node's partners lie in a box around it,
+    found by scipy's k-d tree (node centres; a pair-node's span is at least the
+    distance of the centres)."""
+    from scipy.spatial import cKDTree
+
     pi = B / 2.0 - y[:space.n]
     rows = np.nonzero(pi > 0)[0]
-    spans = space.span_for(2.0 * pi[rows] + tol)
-    I, J, M = [], [], []
-    for back in (False, True):
-        for i, j in space.windows(rows, spans, back):
-            ok, m, _ = space.measure(i, j)
-            i, j, m = i[ok], j[ok], m[ok]
-            rc = y[i] + y[j] - (B - m)
-            s = rc < -tol
-            if s.any():
-                i, j, m, rc = i[s], j[s], m[s], rc[s]
-                rc = rc + bl.zsum(i, j)
-                s = rc < -tol
-                I.append(i[s]), J.append(j[s]), M.append(m[s])
-    return _cat(I), _cat(J), _catf(M)
+    if rows.size == 0:
+        z = np.zeros(0, np.int64)
+        return z, z, np.zeros(0)
+    r = 2.0 * pi[rows] + tol
+    w = space.w
+    with np.errstate(invalid="ignore", divide="ignore"):
+        half = np.clip(r[:, None] / (2.0 * w[None, :]), 0.0, 1.0 - 1e-15)
+        d = np.minimum(2.0 * np.arctanh(half), space.span[None, :])  # ln-difference bound per figure
+    R = np.max(d * w[None, :], axis=1) * (1 + 1e-9) + 1e-12
+    pts = (space.lo + space.hi) / 2.0 * w
+    near = cKDTree(pts).query_ball_point(pts[rows], R, p=np.inf, return_sorted=False)
+    counts = np.fromiter((len(x) for x in near), np.int64, count=len(near))
+    I = np.repeat(rows, counts)
+    J = np.fromiter((j for x in near for j in x), np.int64, count=int(counts.sum()))
+    # a pair found from both ends is kept once (and a node's own entry dropped)
+    I, J = np.minimum(I, J), np.maximum(I, J)
+    key = np.unique(I[I != J] * space.n + J[I != J])
+    I, J = key // space.n, key % space.n
+    ok, m, _ = space.measure(I, J)
+    I, J, m = I[ok], J[ok], m[ok]
+    rc = y[I] + y[J] - (B - m)
+    s = rc < -tol
+    I, J, m, rc = I[s], J[s], m[s], rc[s]
+    if I.size:
+        rc = rc + bl.zsum(I, J)
+        s = rc < -tol
+        I, J, m = I[s], J[s], m[s]
+    return I, J, m
 
 
 def _singles_lower_bound(space: _Space, edges: _EdgeSet, lab, size):
@@ -508,7 +529,7 @@ def _singles_lower_bound(space: _Space, edges: _EdgeSet, lab, size):
     # a sparser graph is enough here: the bound is checked on the full graph below
     # (units with few near neighbours keep all their candidate edges)
     sparse = _EdgeSet(n)
-    sparse.add(*_candidates(space, 8))
+    sparse.add(*_candidates(space, UNIT_PASS_NEAREST))
     few = np.bincount(np.concatenate([sparse.I, sparse.J]), minlength=n) < 4
     sel = few[edges.I] | few[edges.J]
     sparse.add(edges.I[sel], edges.J[sel], edges.M[sel])

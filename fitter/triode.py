@@ -147,6 +147,13 @@ class FittedTriode:
         """True when any (va, vg) lies more than ``margin`` of the span outside the data."""
         if not self.valid_range:
             return False
+        if np.ndim(va) == 0 and np.ndim(vg) == 0:  # one point: plain floats (matching calls this per unit)
+            for key, v in (("va", float(va)), ("vg", float(vg))):
+                lo, hi = self.valid_range[key]
+                span = max(hi - lo, 1e-9)
+                if v < lo - margin * span or v > hi + margin * span:
+                    return True
+            return False
         va = np.atleast_1d(np.asarray(va, float))
         vg = np.atleast_1d(np.asarray(vg, float))
         for key, v in (("va", va), ("vg", vg)):
