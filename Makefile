@@ -52,6 +52,8 @@ test: install-test ngspice
 
 bench: install
 	$(BIN)/python bench/fit.py
+	$(BIN)/python bench/stage.py
+	$(BIN)/python bench/match.py --sizes 100,1000,10000
 
 clean:
 	rm -rf $(DEMO) .pytest_cache

@@ -59,7 +59,7 @@ is *certified* (``Optimality.exact``).  If the time limit stops the pass, the pa
 found so far are reported with the parity bound and no claim of optimality.
 
 Cost (measured with bench/match.py on invented stocks, 2 cores): about 0.02 s for 100
-units, 0.1 s for 1,000 and 3 to 6 s for 10,000, so roughly n^1.5 at the top: the
+units, 0.1-0.2 s for 1,000 and 2.6-4.6 s for 10,000, so roughly n^1.5 at the top: the
 blossom pass grows with the nesting of blossoms (hundreds deep at 10,000 units), and
 pricing with the window pairs inside each unit's dual radius.
 
