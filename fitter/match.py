@@ -139,6 +139,10 @@ def relative_difference(a, b):
 # ---------------------------------------------------------------------------
 
 _CHUNK = 2_000_000  # candidate pairs evaluated per vectorised batch
+# Windows reach a little further than measure() accepts (its 1e-12 relative slack on a
+# tolerance t becomes up to 1 / (1 - t^2/4) times that on the ln-span), so that every pair
+# measure() calls compatible is in some window; measure() then decides.
+_WIDER = 1.0 + 1e-9
 
 
 class _Space:
@@ -181,13 +185,6 @@ class _Space:
         m = np.maximum(m, np.maximum(self.base[i], self.base[j]))
         return ok, m, d
 
-    def span_for(self, radius):
-        """Largest ln-span of the first figure an edge of mismatch < radius can have."""
-        r = np.asarray(radius, float) / self.w[0]
-        with np.errstate(invalid="ignore"):
-            s = np.where(r >= 2.0, np.inf, 2.0 * np.arctanh(np.clip(r, 0, 2 - 1e-15) / 2.0))
-        return np.minimum(s, self.span[0])
-
     def windows(self, rows, spans, backward=False):
         """Yield (i, j) batches: for each row i, the nodes j within ``spans`` of it."""
         rows = np.asarray(rows, dtype=np.int64)
@@ -195,10 +192,10 @@ class _Space:
         if rows.size == 0:
             return
         if backward:
-            start = np.searchsorted(self.key, self.key[rows] - spans * (1 + 1e-12) - 1e-15, "left")
+            start = np.searchsorted(self.key, self.key[rows] - spans * _WIDER - 1e-12, "left")
             first, count = start, rows - start
         else:
-            end = np.searchsorted(self.key, self.key[rows] + spans * (1 + 1e-12) + 1e-15, "right")
+            end = np.searchsorted(self.key, self.key[rows] + spans * _WIDER + 1e-12, "right")
             first, count = rows + 1, end - rows - 1
         count = np.maximum(count, 0)
         csum = np.cumsum(count)
@@ -217,7 +214,7 @@ class _Space:
             lo_row = hi_row
 
     def candidate_count(self):
-        end = np.searchsorted(self.key, self.key + self.span[0] * (1 + 1e-12) + 1e-15, "right")
+        end = np.searchsorted(self.key, self.key + self.span[0] * _WIDER + 1e-12, "right")
         return int(np.sum(end - np.arange(self.n) - 1))
 
     def all_edges(self):

@@ -174,3 +174,16 @@ def test_time_limit_reports_pairs_found_as_not_proven():
     used = np.concatenate([i, j])
     assert np.unique(used).size == used.size  # still a matching
     assert i.size <= opt.groups_bound <= space.n // 2
+
+
+def test_pairs_at_the_very_edge_of_a_wide_tolerance_are_found():
+    # measure() accepts a difference up to the tolerance plus a 1e-12 relative slack;
+    # at a 100 % tolerance that slack is wider on the ln-span than 1e-12, and the window
+    # search must still reach such a pair (found in review: two components instead of one)
+    tol = 1.0
+    s = 2 * np.arctanh(tol / 2) + 1.2e-12
+    L = np.array([[-0.2], [-0.1], [0.0], [s], [s + 0.1], [s + 0.2]])
+    space = fm._Space(L, L, np.zeros(6), [tol], [1.0])
+    assert space.measure(np.array([2]), np.array([3]))[0][0]
+    i, j, m, opt = fm._solve_matching(space)
+    assert i.size == 3 and opt.exact and opt.stats["components"] == 1
