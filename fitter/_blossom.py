@@ -327,6 +327,14 @@ class BlossomMatching:
                         z[b] -= 2.0 * s
             tj[b] = D
 
+        def park_on(b, entry):
+            """Let an edge from an outer vertex wait on inner blossom b until b's label changes."""
+            p = park[b]
+            if p is None:
+                park[b] = [entry]
+            else:
+                p.append(entry)
+
         def requeue(entries):
             """Queue edges that waited on an inner blossom, now that its label has changed."""
             for a, c, w in entries:
@@ -339,11 +347,7 @@ class BlossomMatching:
                     a, c, ba, bc = c, a, bc, ba
                 lc = label[bc]
                 if lc == INNER:
-                    p = park[bc]
-                    if p is None:
-                        park[bc] = [(a, c, w)]
-                    else:
-                        p.append((a, c, w))
+                    park_on(bc, (a, c, w))
                     continue
                 s = yv(a) + yv(c) - w
                 push(heap, (D + (s if lc == FREE else 0.5 * s), 1, a, c, w))
@@ -368,11 +372,7 @@ class BlossomMatching:
                 elif lu == OUTER:  # both ends fall: rate 2
                     ev.append((half + 0.5 * (y[u] + yoff[bu] - D + tj[bu] - w), 1, v, u, w))
                 else:  # inner: slack stays until u's blossom changes label
-                    p = park[bu]
-                    if p is None:
-                        park[bu] = [(v, u, w)]
-                    else:
-                        p.append((v, u, w))
+                    park_on(bu, (v, u, w))
             if len(ev) <= BATCH:
                 for e in ev:
                     push(heap, e)
@@ -656,11 +656,7 @@ class BlossomMatching:
                 a, c, ba, bc = c, a, bc, ba
             lc = label[bc]
             if lc == INNER:  # wait until c's blossom is no longer inner
-                p = park[bc]
-                if p is None:
-                    park[bc] = [(a, c, w)]
-                else:
-                    p.append((a, c, w))
+                park_on(bc, (a, c, w))
                 continue
             s = yv(a) + yv(c) - w
             if lc == FREE:
