@@ -31,15 +31,21 @@ def _val(text, option):
     return value(text, option)
 
 
+def _positive(text, option, unreadable, what, shown=None):
+    """A positive finite float from ``text``; errors quote ``shown`` (default ``text``)."""
+    shown = text if shown is None else shown
+    try:
+        v = float(text)
+    except ValueError:
+        _fail(f"{option}: cannot read {shown!r}{unreadable}")
+    if not (math.isfinite(v) and v > 0):
+        _fail(f"{option}: must be a positive {what}, got {shown!r}")
+    return v
+
+
 def _percent(text, option):
     s = str(text).strip().rstrip("%").strip()
-    try:
-        v = float(s)
-    except ValueError:
-        _fail(f"{option}: cannot read {text!r}; give a percentage such as 5 or 5%")
-    if not (math.isfinite(v) and v > 0):
-        _fail(f"{option}: must be a positive percentage, got {text!r}")
-    return v
+    return _positive(s, option, "; give a percentage such as 5 or 5%", "percentage", shown=text)
 
 
 def _mapping(text, option, percent=True):
@@ -55,13 +61,7 @@ def _mapping(text, option, percent=True):
 
 
 def _number(text, option):
-    try:
-        v = float(text)
-    except ValueError:
-        _fail(f"{option}: cannot read {text!r} as a number")
-    if not (math.isfinite(v) and v > 0):
-        _fail(f"{option}: must be a positive number, got {text!r}")
-    return v
+    return _positive(text, option, " as a number", "number")
 
 
 def _labels(text):
