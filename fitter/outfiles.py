@@ -31,6 +31,7 @@ import errno
 import hashlib
 import os
 import re
+import stat
 import tempfile
 from pathlib import Path
 from typing import Callable, Iterable
@@ -189,9 +190,14 @@ def write_atomic(path, content: str | bytes | Callable) -> Path:
         the name is too long, the disk is full ...  The old file, if any, is left as it was.
     """
     path = Path(path)
-    if path.is_dir() and not path.is_symlink():
-        raise OutputError(path, "is a folder; give a file name")
     folder = path.parent
+    try:
+        if stat.S_ISDIR(os.lstat(path).st_mode):
+            raise OutputError(path, "is a folder; give a file name")
+    except FileNotFoundError:
+        pass
+    except OSError as e:
+        raise OutputError(path, f"cannot write: {_reason(e)}") from None
     try:
         fd, tmp = tempfile.mkstemp(dir=folder, prefix=".platebook-", suffix=".tmp")
     except OSError as e:
@@ -212,7 +218,7 @@ def write_atomic(path, content: str | bytes | Callable) -> Path:
         except OSError:
             pass
         if isinstance(e, OSError):
-            if isinstance(e, IsADirectoryError) or path.is_dir():
+            if isinstance(e, IsADirectoryError):
                 raise OutputError(path, "is a folder; give a file name") from None
             raise OutputError(path, f"cannot write: {_reason(e)}") from None
         raise
