@@ -151,6 +151,8 @@ def prepare_folder(folder) -> Path:
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except FileExistsError:
+        if folder.is_symlink():
+            raise OutputError(folder, "is a symbolic link to a missing folder") from None
         raise OutputError(folder, "is a file, not a folder") from None
     except NotADirectoryError:
         raise OutputError(folder, "cannot create the folder: part of the path is a file") from None

@@ -237,11 +237,40 @@ def test_permission_denied_folder_is_one_line_error_exit_1(one_unit, tmp_path):
         locked.chmod(0o700)
 
 
+def test_permission_denied_is_one_line_error_exit_1_even_as_root(one_unit, tmp_path, monkeypatch):
+    # root ignores folder modes, so the refusal is simulated at os.mkdir (EACCES, as the
+    # kernel gives it to an ordinary user)
+    def refuse(path, mode=0o777, *a, **k):
+        raise PermissionError(errno.EACCES, "Permission denied", str(path))
+
+    monkeypatch.setattr(os, "mkdir", refuse)
+    r = run("fit", one_unit, "--model", "koren", "--jobs", "1", "--plot", tmp_path / "plots")
+    one_line_error(r, str(tmp_path / "plots"), "cannot create the folder: Permission denied")
+
+
 def test_save_folder_that_is_a_file_is_one_line_error_exit_1(one_unit, tmp_path):
     blocker = tmp_path / "cards"
     blocker.write_text("")
     r = run("fit", one_unit, "--model", "koren", "--jobs", "1", "--save", blocker)
     one_line_error(r, str(blocker), "is a file, not a folder")
+
+
+def test_save_folder_that_is_a_dangling_link_is_one_line_error_exit_1(one_unit, tmp_path):
+    link = tmp_path / "cards"
+    link.symlink_to(tmp_path / "gone")
+    r = run("fit", one_unit, "--model", "koren", "--jobs", "1", "--save", link)
+    one_line_error(r, str(link), "is a symbolic link to a missing folder")
+    assert not (tmp_path / "gone").exists()
+
+
+def test_match_csv_into_a_folder_is_one_line_error_exit_1(tmp_path):
+    folder = tmp_path / "cards"
+    folder.mkdir()
+    for k in range(2):
+        save_card(folder / f"c{k}.json", FittedTriode("koren", dict(KOREN_12AX7, kg1=1060.0 + k), tube=f"T{k}",
+                                                      valid_range={"va": (0.0, 400.0), "vg": (-4.0, 0.0)}))
+    r = run("match", folder, "--va", "250", "--vg", "-2", "--tolerance", "10", "--csv", tmp_path)
+    one_line_error(r, f"--csv {tmp_path}: is a folder")
 
 
 def test_folder_where_file_should_go_is_one_line_error_exit_1(tmp_path):
