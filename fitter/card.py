@@ -34,6 +34,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from .models import get_model
+from .outfiles import unit_stem, write_atomic
 from .triode import FittedTriode
 
 __all__ = ["CardError", "CARD_FORMAT", "CARD_VERSION", "card_dict", "save_card", "load_card",
@@ -87,17 +88,29 @@ def card_dict(
     }
 
 
-def card_filename(triode: FittedTriode) -> str:
-    """A safe file name for a unit's card: ``<tube>[_<section>].<model>.json``."""
-    stem = triode.tube + (f"_{triode.section}" if triode.section else "")
-    stem = re.sub(r"[^A-Za-z0-9._-]+", "-", stem).strip("-") or "unit"
+def card_filename(triode: FittedTriode, stem: str | None = None) -> str:
+    """The file name of a unit's card: ``<stem>.<model>.json``.
+
+    ``stem`` defaults to :func:`fitter.outfiles.unit_stem` of the unit: ``tube`` or
+    ``tube_section`` for plain names, else a sanitised stem with a hash of the exact name,
+    so two different units never share a file.  A run writing several units takes its
+    stems from :func:`fitter.outfiles.unit_stems`, which also separates names that differ
+    only in letter case.
+    """
+    if stem is None:
+        stem = unit_stem(triode.tube, triode.section)
     return f"{stem}.{triode.model.name}.json"
 
 
 def save_card(path, triode: FittedTriode, fit=None, source=None) -> Path:
-    path = Path(path)
-    path.write_text(json.dumps(card_dict(triode, fit, source), indent=2) + "\n")
-    return path
+    """Write the card of ``triode`` to ``path`` atomically (:func:`fitter.outfiles.write_atomic`).
+
+    Raises
+    ------
+    fitter.outfiles.OutputError
+        Naming the path, when it cannot be written.
+    """
+    return write_atomic(path, json.dumps(card_dict(triode, fit, source), indent=2) + "\n")
 
 
 def _need(d, key, where, kind=None):

@@ -52,16 +52,20 @@ CSV
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import io
 import json
 import math
 import re
+import unicodedata
 from dataclasses import dataclass
 from typing import Callable, Mapping
 
 import numpy as np
 
 from .card import card_dict
+from .errors import InputError
+from .text import csv_cell, plain_text, shown
 from .triode import FittedTriode
 
 __all__ = [
@@ -72,6 +76,8 @@ __all__ = [
     "SpiceExpression",
     "spice_expression",
     "spice_name",
+    "spice_comment",
+    "SPICE_NAME",
     "spice_subcircuit",
     "card_json",
     "parse_sweep",
@@ -89,7 +95,20 @@ GRID_KNEE = 0.05
 
 from . import CAUTION as HIGH_VOLTAGE_CAUTION  # noqa: E402  (one wording, in fitter/__init__.py)
 
-_NAME = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.+-]*$")
+#: Subcircuit names: ASCII letters, digits and ``_``, starting with a letter or digit, at
+#: most 32 characters (a leading digit, as in 12AX7, runs in ngspice 39: checked by
+#: tests/test_spice_safety.py).  Matched with ``fullmatch``, so no trailing newline slips by.
+SPICE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_]{0,31}")
+_NAME_MAX = 32
+
+#: Characters a netlist comment may carry: printable ASCII without the backslash (a line
+#: continuation in some SPICE readers), backtick, ``$`` and braces (parameter and shell
+#: syntax).  Anything else, line breaks and control characters first, becomes ``?``.
+_COMMENT_OK = frozenset(
+    "ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789 _.,:;()[]+-=/<>'\"%&!?@~^|#*")
+_COMMENT_MAX = 300
+# control, format, surrogate, private, unassigned, line and paragraph separators
+_CONTROL = frozenset({"Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"})
 
 
 class ExportError(ValueError):
@@ -119,13 +138,36 @@ class SpiceExpression:
 # ---------------------------------------------------------------------------
 
 
+def _finite(x, what: str = "parameter value") -> float:
+    """``x`` as a finite Python float (so only our own formatting reaches a netlist)."""
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        raise ExportError(f"{what} {shown(repr(x))[:40]} is not a number") from None
+    if not math.isfinite(v):
+        raise ExportError(f"{what} {v!r} is not finite")
+    return v
+
+
 def _n(x: float) -> str:
     """A float as SPICE text with every digit kept; negatives parenthesised."""
-    x = float(x)
-    if not math.isfinite(x):
-        raise ExportError(f"parameter value {x!r} is not finite")
+    x = _finite(x)
     s = repr(x)
     return f"({s})" if x < 0 else s
+
+
+def spice_comment(text) -> str:
+    """``text`` made safe for one SPICE comment line.
+
+    One line of printable ASCII from a fixed set (:data:`_COMMENT_OK`): accents are
+    dropped (Zölzer -> Zolzer), line breaks, control characters and anything else become
+    ``?``, and the text is cut to 300 characters.  Text from a card, a CSV or a file name
+    reaches a netlist only through this function or as a validated name.
+    """
+    s = unicodedata.normalize("NFKD", str(text))
+    s = "".join(c for c in s if not unicodedata.combining(c))
+    s = "".join(c if c in _COMMENT_OK else "?" for c in s)
+    return s if len(s) <= _COMMENT_MAX else s[: _COMMENT_MAX - 3] + "..."
 
 
 def _softplus(z: str) -> str:
@@ -214,16 +256,21 @@ def spice_expression(
 
 
 def spice_name(triode: FittedTriode) -> str:
-    """Default subcircuit name: the unit's label with anything but [A-Za-z0-9_] as ``_``."""
-    s = re.sub(r"[^A-Za-z0-9_]+", "_", triode.label).strip("_")
-    return s or "TRIODE"
+    """Default subcircuit name: the unit's label with anything but [A-Za-z0-9_] as ``_``,
+    cut to 32 characters (a cut name ends in a hash of the label, so it stays distinct)."""
+    label = str(triode.label)
+    s = re.sub(r"[^A-Za-z0-9_]+", "_", label).strip("_") or "TRIODE"
+    if len(s) > _NAME_MAX:
+        tag = hashlib.sha256(label.encode("utf-8", "surrogatepass")).hexdigest()[:8]
+        s = s[: _NAME_MAX - 9].rstrip("_") + "_" + tag
+    return s
 
 
-def _check_name(name: str) -> str:
-    if not _NAME.match(name or ""):
+def _check_name(name) -> str:
+    if not (isinstance(name, str) and SPICE_NAME.fullmatch(name)):
         raise ExportError(
-            f"--name: {name!r} is not a usable subcircuit name; use letters, digits and _ . + - "
-            "(no spaces), starting with a letter, digit or _"
+            f"--name: {shown(repr(name))} is not a usable subcircuit name; use letters, digits and _ "
+            f"(no spaces or other characters), starting with a letter or digit, at most {_NAME_MAX} characters"
         )
     return name
 
@@ -231,8 +278,8 @@ def _check_name(name: str) -> str:
 def _check_cap(value, what: str) -> float | None:
     if value is None:
         return None
-    v = float(value)
-    if not math.isfinite(v) or v < 0:
+    v = _finite(value, f"{what}: capacitance")
+    if v < 0:
         raise ExportError(f"{what}: capacitance must be a finite value >= 0, got {value!r}")
     return v if v > 0 else None
 
@@ -241,9 +288,13 @@ def _range_text(triode: FittedTriode) -> list[str]:
     r = triode.valid_range
     if not r:
         return ["fitted range: not recorded on the card"]
-    out = [f"fitted range: va {r['va'][0]:.6g} .. {r['va'][1]:.6g} V, vg {r['vg'][0]:.6g} .. {r['vg'][1]:.6g} V"]
+
+    def g(x, scale=1.0):
+        return f"{scale * _finite(x, 'fitted range value'):.6g}"
+
+    out = [f"fitted range: va {g(r['va'][0])} .. {g(r['va'][1])} V, vg {g(r['vg'][0])} .. {g(r['vg'][1])} V"]
     if "ia" in r:
-        out[0] += f", ia {1e3 * r['ia'][0]:.6g} .. {1e3 * r['ia'][1]:.6g} mA"
+        out[0] += f", ia {g(r['ia'][0], 1e3)} .. {g(r['ia'][1], 1e3)} mA"
     return out
 
 
@@ -290,8 +341,9 @@ def spice_subcircuit(
     name = _check_name(spice_name(triode) if name is None else name)
     caps = {k: _check_cap(v, f"--{k}") for k, v in (("cgk", cgk), ("cga", cga), ("cak", cak))}
     for what, v in (("grid_resistance", grid_resistance), ("grid_knee", grid_knee)):
-        if not (math.isfinite(float(v)) and float(v) > 0):
+        if not _finite(v, what) > 0:
             raise ExportError(f"{what}: must be a positive finite value, got {v!r}")
+    grid_resistance, grid_knee = float(grid_resistance), float(grid_knee)
     va, vg = "V(plate,cathode)", "V(grid,cathode)"
     expr = spice_expression(triode, va, vg)
     model = triode.model
@@ -311,14 +363,14 @@ def spice_subcircuit(
     ]
     for p in model.params:
         e = err.get(p.name)
-        if e is not None:
-            es = f" +- {e:.3g}"
+        if e is not None and math.isfinite(float(e)):
+            es = f" +- {float(e):.3g}"
         elif triode.free and p.name not in triode.free:
             es = " (held fixed in the fit)"
         else:
             es = ""
         unit = f" {p.unit}" if p.unit != "-" else ""
-        head.append(f"  {p.name} = {triode.params[p.name]!r}{unit}{es}")
+        head.append(f"  {p.name} = {_finite(triode.params[p.name])!r}{unit}{es}")
     if expr.grid is None:
         head.append(
             f"grid conduction: generic path Ig = Vs*softplus(vg/Vs)/Rg, Rg = {grid_resistance:g} ohm, "
@@ -330,7 +382,9 @@ def spice_subcircuit(
                 "and fractional powers of negative numbers")
     head.append(HIGH_VOLTAGE_CAUTION)
 
-    lines = ["* " + h for h in head]
+    # every header line is one sanitised comment: a name or path with a line break and a
+    # .control block must not become netlist text (ngspice would run its shell command)
+    lines = ["* " + spice_comment(h) for h in head]
     lines.append(f".subckt {name} plate grid cathode")
     lines.append(f"Bplate plate cathode I={expr.plate}")
     if expr.grid is None:
@@ -343,7 +397,7 @@ def spice_subcircuit(
     for k, c in caps.items():
         if c is not None:
             a, b = pins[k]
-            lines.append(f"C{k[1:]} {a} {b} {c!r}")
+            lines.append(f"C{k[1:]} {a} {b} {_finite(c)!r}")
     lines.append(f".ends {name}")
     return "\n".join(lines) + "\n"
 
@@ -363,7 +417,10 @@ def card_json(triode: FittedTriode, fit=None, source=None, tube: str | None = No
     if tube is not None:
         if not str(tube).strip():
             raise ExportError("--name: the tube name must not be empty")
-        d["tube"] = str(tube)
+        try:
+            d["tube"] = plain_text(str(tube), "--name")
+        except InputError as e:
+            raise ExportError(f"--name: {e.message}") from None
     return json.dumps(d, indent=2) + "\n"
 
 
@@ -484,18 +541,34 @@ def curve_family(triode: FittedTriode, va, vg, tube: str | None = None) -> Curve
 
 
 def curves_csv(family: CurveFamily, card: str | None = None) -> str:
-    """The long-layout CSV text ``tube,section,va,vg,ia_ma`` of a curve family."""
+    """The long-layout CSV text ``tube,section,va,vg,ia_ma`` of a curve family.
+
+    The names go through :func:`fitter.text.csv_cell`, so none can start a spreadsheet
+    formula; a name holding a comma, semicolon (the separator in some locales), quote or
+    control character is refused, since :mod:`fitter.reader` reads plain unquoted cells.
+    The card path in the comment line is one sanitised line without separators.
+    """
     from . import __version__
 
+    cells = []
     for what, v in (("tube", family.tube), ("section", family.section or "")):
-        if re.search(r"[,\r\n\"]", v):
-            raise ExportError(f"--name/{what}: {v!r} cannot go in a CSV cell (comma, quote or newline)")
+        v = str(v)
+        if re.search(r"[,;\"]", v) or any(unicodedata.category(c) in _CONTROL for c in v):
+            raise ExportError(f"--name/{what}: {shown(repr(v))} cannot go in a CSV cell "
+                              "(comma, semicolon, quote or newline/control character)")
+        cells.append(csv_cell(v))
+    tube, sec = cells
     out = io.StringIO()
     out.write(f"# model curves written by Platebook {__version__}, not measurements\n")
     if card:
-        out.write(f"# card: {card}\n")
+        out.write(f"# card: {_csv_comment(card)}\n")
     out.write("tube,section,va,vg,ia_ma\n")
-    sec = family.section or ""
     for a, g, i in zip(family.va, family.vg, family.ia):
-        out.write(f"{family.tube},{sec},{float(a)!r},{float(g)!r},{1e3 * float(i):.12g}\n")
+        out.write(f"{tube},{sec},{_finite(a, 'va')!r},{_finite(g, 'vg')!r},{1e3 * _finite(i, 'ia'):.12g}\n")
     return out.getvalue()
+
+
+def _csv_comment(text) -> str:
+    # a comment line of the CSV: one line, and no comma, semicolon or quote, so a
+    # spreadsheet keeps it in one cell (which starts with '#', not a formula)
+    return re.sub(r"[,;\"]", "?", spice_comment(text))

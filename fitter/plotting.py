@@ -13,6 +13,7 @@ import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
 from .fit import FitResult  # noqa: E402
+from .outfiles import plot_path, write_atomic  # noqa: E402
 
 __all__ = ["plot_fit", "save_fit_plot", "CAUTION"]
 
@@ -90,9 +91,13 @@ def plot_fit(result: FitResult, axes=None):
 
 
 def save_fit_plot(result: FitResult, path) -> Path:
-    path = Path(path)
+    """Save :func:`plot_fit` to ``path`` (PNG, or PDF/SVG by suffix; no suffix adds .png),
+    atomically (:func:`fitter.outfiles.write_atomic`); returns the path written."""
+    path, fmt = plot_path(path)
     ax, _ = plot_fit(result)
     ax.figure.tight_layout(rect=(0, 0.015, 1, 1))
-    ax.figure.savefig(path, dpi=110)
-    plt.close(ax.figure)
+    try:
+        write_atomic(path, lambda fh: ax.figure.savefig(fh, format=fmt, dpi=110))
+    finally:
+        plt.close(ax.figure)
     return path

@@ -15,6 +15,7 @@ from .distortion import Distortion, DistortionSweep, drive_limit  # noqa: E402
 from .stage import (CAUTION, CathodeFollower, CommonCathode, StageResult, Stack,  # noqa: E402
                     operating_point, output_node, quasi_static, stage_title, tube_positions)
 from .stage import _eng as _eng_unit  # noqa: E402
+from .outfiles import plot_path, write_atomic  # noqa: E402
 from .units import format_value  # noqa: E402
 
 __all__ = ["plot_load_lines", "save_load_line_plot", "plot_thd_sweep", "save_thd_plot",
@@ -212,13 +213,22 @@ def _stack_dc_label(st: Stack, pos: str) -> str:
     return f"DC load: Q as the bottom grid bias varies\n(load = {load})"
 
 
+def _save(fig, path) -> Path:
+    """Write ``fig`` atomically (:func:`fitter.outfiles.write_atomic`) to the file
+    :func:`fitter.outfiles.plot_path` gives for ``path`` (``.png`` added when there is no
+    suffix) and return that file's path."""
+    try:
+        path, fmt = plot_path(path)
+        write_atomic(path, lambda fh: fig.savefig(fh, format=fmt, dpi=120))
+    finally:
+        plt.close(fig)
+    return path
+
+
 def save_load_line_plot(result: StageResult, path) -> Path:
     """Save :func:`plot_load_lines` to a PNG file."""
     axes = plot_load_lines(result)
-    path = Path(path)
-    axes[0].figure.savefig(path, dpi=120)
-    plt.close(axes[0].figure)
-    return path
+    return _save(axes[0].figure, path)
 
 
 def plot_thd_sweep(sw: DistortionSweep, ax=None):
@@ -256,11 +266,9 @@ def plot_thd_sweep(sw: DistortionSweep, ax=None):
 
 
 def save_thd_plot(sw: DistortionSweep, path) -> Path:
+    """Save :func:`plot_thd_sweep` (see :func:`_save`); returns the path written."""
     ax = plot_thd_sweep(sw)
-    path = Path(path)
-    ax.figure.savefig(path, dpi=120)
-    plt.close(ax.figure)
-    return path
+    return _save(ax.figure, path)
 
 
 def plot_waveform(d: Distortion, axes=None):
@@ -297,8 +305,6 @@ def plot_waveform(d: Distortion, axes=None):
 
 
 def save_waveform_plot(d: Distortion, path) -> Path:
+    """Save :func:`plot_waveform` (see :func:`_save`); returns the path written."""
     axes = plot_waveform(d)
-    path = Path(path)
-    axes[0].figure.savefig(path, dpi=120)
-    plt.close(axes[0].figure)
-    return path
+    return _save(axes[0].figure, path)

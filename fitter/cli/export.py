@@ -20,6 +20,8 @@ from ..export import (
     spice_name,
     spice_subcircuit,
 )
+from ..outfiles import OutputError, write_atomic
+from ..text import shown
 from . import fail, main, value
 
 
@@ -39,7 +41,7 @@ def _value(text, option: str) -> float | None:
 @click.option("--name", default=None,
               help="Subcircuit name (spice) or tube name written (json, csv). "
                    "Default: the card's tube[_section].")
-@click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
+@click.option("-o", "--output", default=None,
               help="Write to this file instead of standard output.")
 @click.option("--va", "va_spec", default=None, metavar="START:STOP:STEP|LIST",
               help="csv: plate voltages [V], e.g. 0:400:5 (default: the card's fitted range, 41 points).")
@@ -117,9 +119,9 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
         click.echo(text, nl=False)
         return
     try:
-        Path(output).write_text(text)
-    except OSError as e:
-        _fail(f"-o {output}: cannot write: {e.strerror or e}")
-    click.echo(f"wrote {output}: {summary}")
+        write_atomic(output, text)
+    except OutputError as e:
+        _fail(f"-o {e}")
+    click.echo(f"wrote {shown(str(output))}: {shown(summary)}")
     if fmt == "spice":
         click.echo(HIGH_VOLTAGE_CAUTION)

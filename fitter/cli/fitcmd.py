@@ -99,9 +99,9 @@ def _table(rows_by_unit, multi: bool) -> str:
               type=click.Choice(list(MODELS) + ["all"], case_sensitive=False),
               help="Model to fit; 'all' fits every registered model and ranks them by BIC.")
 @click.option("--json", "as_json", is_flag=True, help="Print exactly one JSON object to stdout.")
-@click.option("--save", "save_dir", type=click.Path(file_okay=False, path_type=Path),
+@click.option("--save", "save_dir", type=click.Path(path_type=Path),
               help="Write one model card (JSON) per unit into this folder.")
-@click.option("--plot", "plot_dir", type=click.Path(file_okay=False, path_type=Path),
+@click.option("--plot", "plot_dir", type=click.Path(path_type=Path),
               help="Write one PNG per unit (curves with the fit, and residuals) into this folder.")
 @click.option("--skip-bad", is_flag=True,
               help="Skip bad rows and units (each one reported) instead of rejecting the file.")
@@ -159,21 +159,34 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         fail_input(str(e))
 
     flat = [r for rs in results for r in rs]
-    if save_dir:
-        save_dir.mkdir(parents=True, exist_ok=True)
-        for rs in results:
-            best = rs[0]
-            if best.converged:
-                save_card(save_dir / card_filename(best.triode), best.triode, best.figures(),
-                          [best.unit.source])
-    if plot_dir:
-        from ..plotting import save_fit_plot
+    written: list[str] = []
+    not_saved: list[str] = []
+    if save_dir or plot_dir:
+        from ..outfiles import OutputError, prepare_folder, unit_stems
 
-        plot_dir.mkdir(parents=True, exist_ok=True)
-        for rs in results:
-            best = rs[0]
-            stem = card_filename(best.triode or _dummy(best)).removesuffix(".json")
-            save_fit_plot(best, plot_dir / f"{stem}.png")
+        # one stem per unit of this run, never shared (fitter.outfiles.unit_stems)
+        stems = unit_stems((rs[0].tube, rs[0].section) for rs in results)
+        try:
+            if save_dir:
+                prepare_folder(save_dir)
+                for rs, stem in zip(results, stems):
+                    best = rs[0]
+                    if best.converged:
+                        path = save_dir / card_filename(best.triode, stem)
+                        save_card(path, best.triode, best.figures(), [best.unit.source])
+                        written.append(str(path))
+                    else:
+                        not_saved.append(best.label)
+            if plot_dir:
+                from ..plotting import save_fit_plot
+
+                prepare_folder(plot_dir)
+                for rs, stem in zip(results, stems):
+                    best = rs[0]
+                    written.append(str(save_fit_plot(best, plot_dir / f"{stem}.{best.model.name}.png")))
+        except OutputError as e:
+            done = f" ({len(written)} file(s) written before it)" if written else ""
+            fail_input(f"{e}{done}")
 
     n_failed = sum(not rs[0].converged for rs in results)
     if as_json:
@@ -184,6 +197,7 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
                       "converged": rs[0].converged} for rs in results] if len(models) > 1 else None,
             "skipped": [str(s) for s in skipped],
             "notes": list(read.notes),
+            "written": written,
             "caution": CAUTION,
         }
         click.echo(json.dumps(out, allow_nan=False))
@@ -197,20 +211,17 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         n_out = sum(r.n_outliers for r in flat if r.converged)
         click.echo(f"\n{len(units)} unit(s), {len(flat)} fit(s), {n_failed} unit(s) without a good fit, "
                    f"{n_out} outlier point(s) down-weighted")
-        if save_dir:
-            click.echo(f"model cards written to {save_dir}/")
-        if plot_dir:
-            click.echo(f"plots written to {plot_dir}/")
+        if save_dir or plot_dir:
+            from ..text import shown
+
+            click.echo(f"\n{len(written)} file(s) written:")
+            for w in written:
+                click.echo(f"  {shown(w)}")
+            if not_saved:
+                click.echo("no model card for (fit failed): " + ", ".join(shown(n) for n in not_saved))
         click.echo(CAUTION)
     if n_failed:
         raise SystemExit(2)
-
-
-def _dummy(result):
-    from ..triode import FittedTriode
-
-    return FittedTriode(result.model, {p.name: (p.default if p.default is not None else p.lower)
-                                       for p in result.model.params}, tube=result.tube, section=result.section)
 
 
 def _version():

@@ -324,14 +324,38 @@ def _position(va, vg, bplus, ra, rk, unbypassed, stack, slot, partner, units):
 
 
 def _write_csv(path, rows):
+    """Write the rows as CSV, atomically (fitter.outfiles).  Text cells are quoted and pass
+    through fitter.text.csv_cell, so no label or name can start a spreadsheet formula (even
+    where a semicolon is the separator); numbers are written unquoted and stay numbers."""
+    import io
+
+    from ..outfiles import OutputError, write_atomic
+    from ..text import csv_cell
+
     if not rows:
         rows = [{"group": "", "unit": ""}]
+    out = io.StringIO()
+    w = csv.writer(out, quoting=csv.QUOTE_NONNUMERIC, lineterminator="\n")
+    w.writerow(list(rows[0].keys()))
+    for r in rows:
+        w.writerow([_csv_value(v, csv_cell) for v in r.values()])
     try:
-        with open(path, "w", newline="") as fh:
-            w = csv.DictWriter(fh, fieldnames=list(rows[0].keys()))
-            w.writeheader()
-            for r in rows:
-                w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
-                            for k, v in r.items()})
-    except OSError as e:
-        _fail(f"--csv {path}: cannot write: {e.strerror or e}")
+        write_atomic(path, out.getvalue())
+    except OutputError as e:
+        _fail(f"--csv {e}")
+
+
+def _csv_value(v, csv_cell):
+    import numbers
+
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return str(v).lower()
+    if isinstance(v, numbers.Integral):
+        return int(v)
+    if isinstance(v, numbers.Real):
+        f = float(v)
+        # 6 significant digits, written as a number (QUOTE_NONNUMERIC leaves it unquoted)
+        return float(f"{f:.6g}") if math.isfinite(f) else ""
+    return csv_cell(str(v))

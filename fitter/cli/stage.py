@@ -232,10 +232,17 @@ def _spread_cases(kind, where):
 
 
 def _write_plot(fn, obj, path):
+    """Save a plot; returns the name of the file really written (``.png`` is added to a
+    bare name), escaped for the terminal."""
+    from ..outfiles import OutputError
+    from ..text import shown
+
     try:
-        fn(obj, path)
+        return shown(str(fn(obj, path)))
+    except OutputError as e:
+        _fail(f"--plot: {e}")
     except OSError as e:
-        _fail(f"--plot: cannot write {path}: {e.strerror or e}")
+        _fail(f"--plot: cannot write {shown(str(path))}: {e.strerror or e}")
 
 
 # -- platebook stage --------------------------------------------------------
@@ -275,13 +282,13 @@ def _make_stage_command(kind):
         if o["plot"]:
             from ..plotting_stage import save_load_line_plot
 
-            _write_plot(save_load_line_plot, r, o["plot"])
+            plot_written = _write_plot(save_load_line_plot, r, o["plot"])
         if o["json"]:
             click.echo(json.dumps(r.to_dict(), allow_nan=False))
         else:
             click.echo(r.report())
             if o["plot"]:
-                click.echo(f"\nload-line plot: {o['plot']}")
+                click.echo(f"\nload-line plot: {plot_written}")
 
     command.__doc__ = doc + "\n\nPrints a bench report, or one JSON object with --json."
     extra = [
@@ -331,7 +338,7 @@ def _make_distortion_command(kind):
                 if o["plot"]:
                     from ..plotting_stage import save_thd_plot
 
-                    _write_plot(save_thd_plot, res, o["plot"])
+                    plot_written = _write_plot(save_thd_plot, res, o["plot"])
             else:
                 vin = _val(o["vin"], "--vin")
                 vout = _val(o["vout"], "--vout")
@@ -342,7 +349,7 @@ def _make_distortion_command(kind):
                 if o["plot"]:
                     from ..plotting_stage import save_waveform_plot
 
-                    _write_plot(save_waveform_plot, res, o["plot"])
+                    plot_written = _write_plot(save_waveform_plot, res, o["plot"])
         except StageSolveError as e:
             _fail(f"the stage could not be solved: {e}", 2)
         except ValueError as e:
@@ -352,7 +359,7 @@ def _make_distortion_command(kind):
         else:
             click.echo(res.report())
             if o["plot"]:
-                click.echo(f"\nplot: {o['plot']}")
+                click.echo(f"\nplot: {plot_written}")
 
     command.__doc__ = (doc + "\n\nHarmonics H2..H10 and THD at --vin or --vout (peak volts), or a THD "
                        "sweep up to grid-current onset or cutoff with --sweep.")
