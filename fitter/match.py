@@ -945,7 +945,8 @@ def unit_figures(units: Sequence[FittedTriode], position, errors: bool = False,
             raise MatchError(f"units must be FittedTriode objects, got {type(u).__name__}")
     values = _values(position, units)
     n = len(units)
-    outside = np.array([u.outside_range(values["va"][k], values["vg"][k]) for k, u in enumerate(units)], bool)
+    outside = np.array([u.outside_range(values["va"][k], values["vg"][k], ia=values["ia"][k])
+                        for k, u in enumerate(units)], bool)
     if outside.all() and not extrapolate:
         u = units[0]
         rng = ""

@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import click
+import numpy as np
 
 from ..card import CardError, load_card
 from ..export import (
@@ -21,6 +22,7 @@ from ..export import (
     spice_subcircuit,
 )
 from . import fail, main, value
+from ..text import shown
 
 
 def _fail(message: str) -> None:
@@ -100,7 +102,13 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             else:
                 va, vg = parse_sweep(va_spec, "--va"), parse_sweep(vg_spec, "--vg")
             fam = curve_family(triode, va, vg, tube=name)
-            if triode.outside_range(va, vg):
+            grid_va, grid_vg = np.meshgrid(va, vg)
+            why = (triode.envelope.outside(grid_va, grid_vg, triode.current)
+                   if triode.envelope is not None else None)
+            if why is not None:
+                click.echo(f"warning: the grid reaches outside the measured data ({shown(why)}; "
+                           f"{triode.envelope.describe()}); those points are extrapolated", err=True)
+            elif triode.envelope is None and triode.outside_range(va, vg):
                 r = triode.valid_range
                 click.echo(
                     f"note: the grid reaches outside the fitted data "
