@@ -502,8 +502,12 @@ def load_fits(path) -> tuple[list[FittedTriode], list[dict]]:
         if keep:
             # 'platebook fit --model all --json': several models per unit, ranked; match
             # each unit by its best model (the first of its ranking)
-            fits = [(k, f) for k, f in fits
-                    if isinstance(f, dict) and (f.get("tube"), f.get("section") or None, f.get("model")) in keep]
+            def key(f):  # only text is compared (a wrong type is reported by the checks below)
+                return tuple(v if isinstance(v, str) else repr(v)
+                             for v in (f.get("tube"), f.get("section") or None, f.get("model")))
+
+            keep = {tuple(v if isinstance(v, str) else repr(v) for v in b) for b in keep}
+            fits = [(k, f) for k, f in fits if not isinstance(f, dict) or key(f) in keep]
     units, failed = [], []
     for k, f in fits:
         where = f"fits[{k}]."

@@ -349,3 +349,41 @@ def test_label_shows_control_characters_escaped():
     t = FittedTriode("koren", dict(mu=100.0, ex=1.4, kg1=1060.0, kp=600.0, kvb=300.0),
                      tube="T\x1b[31m", section="\u202eB")
     assert t.label == "T\\x1b[31m:\\u202eB"
+
+
+@pytest.mark.parametrize("kind", ["card", "fits"])
+def test_random_changes_to_a_card_load_or_give_a_card_error(tmp_path, good, fitted, kind):
+    # any JSON value in any place, nested fields included: either the card (or fit file) is
+    # still valid, or the error is a CardError naming the file -- never another exception
+    if kind == "fits":
+        good = {"fits": [json.loads(json.dumps(fitted.to_dict()))], "best": None}
+    read = load_card if kind == "card" else load_fits
+    rng = np.random.default_rng(12)
+    values = [None, True, 0, -1, 1e308, -1e-300, 10**30, "", "x", "\x1b", [], [0], [[0]], {}, {"a": []},
+              [None] * 5, "mu", ["mu"], [0.0, 1.0], [1.0, 0.0]]
+
+    def places(d, path=()):
+        yield path
+        if isinstance(d, dict):
+            for k, v in d.items():
+                yield from places(v, path + (k,))
+        elif isinstance(d, list):
+            for k, v in enumerate(d):
+                yield from places(v, path + (k,))
+
+    spots = [p for p in places(good) if p]
+    refused = 0
+    for _ in range(200):
+        d = copy.deepcopy(good)
+        path = spots[rng.integers(len(spots))]
+        target = d
+        for key in path[:-1]:
+            target = target[key]
+        target[path[-1]] = copy.deepcopy(values[rng.integers(len(values))])
+        p = write(tmp_path, d)
+        try:
+            read(p)
+        except CardError as e:
+            refused += 1
+            assert e.file == str(p)
+    assert refused > 80  # most such changes break the file (a check that the loop does something)
