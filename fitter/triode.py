@@ -222,8 +222,8 @@ class DataEnvelope:
         return None
 
     def describe(self) -> str:
-        """``vg lo..hi V, up to X mA and Y W``: a short summary for messages."""
-        return (f"traced vg {self.vg[0]:.4g}..{self.vg[-1]:.4g} V, va {min(self.va_lo):.4g}.."
+        """``measured vg lo..hi V, va lo..hi V, up to X mA and Y W``: a summary for messages."""
+        return (f"measured vg {self.vg[0]:.4g}..{self.vg[-1]:.4g} V, va {min(self.va_lo):.4g}.."
                 f"{max(self.va_hi):.4g} V, up to {self.ia_max * 1e3:.3g} mA and {self.pa_max:.3g} W")
 
     def to_dict(self) -> dict:
@@ -347,7 +347,7 @@ class FittedTriode:
             why = self.envelope.outside(va, vg, self.current if ia is None else ia, margin)
             if why is None:
                 return None
-            return (f"{self.label}: {why} ({self.envelope.describe()}); the model is extrapolating")
+            return f"{self.label}: {why}; {self.envelope.describe()}; the model is extrapolating"
         if not self.outside_range(va, vg, margin):
             return None
         r = self.valid_range
