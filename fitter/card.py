@@ -219,7 +219,8 @@ def read_json(path, max_bytes: int = MAX_CARD_BYTES, what: str = "model card"):
         size = path.stat().st_size
         if size > max_bytes:
             raise _err(f"is {size} bytes; a {what} is at most {max_bytes} bytes", name)
-        raw = path.read_bytes()
+        with open(path, "rb") as fh:  # never more than the limit (a device or pipe has no size)
+            raw = fh.read(max_bytes + 1)
     except OSError as e:
         raise _err(f"cannot read: {e.strerror or e}", name) from None
     if len(raw) > max_bytes:

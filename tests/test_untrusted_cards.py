@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import copy
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -111,6 +112,21 @@ def test_card_file_over_the_size_limit_is_refused_unread(tmp_path, good):
     p = write(tmp_path, good)
     with pytest.raises(CardError, match=rf"^{p}: is \d+ bytes; a model card is at most 1000000 bytes"):
         load_card(p)
+
+
+@pytest.mark.skipif(not Path("/dev/zero").exists(), reason="needs /dev/zero")
+def test_card_from_an_endless_device_reads_no_more_than_the_limit():
+    # /dev/zero reports size 0 and never ends (POSIX); the reader stops at the limit
+    with pytest.raises(CardError, match=r"^/dev/zero: is over 1000000 bytes"):
+        load_card("/dev/zero")
+
+
+def test_card_with_a_byte_order_mark_loads_and_exports(tmp_path, good):
+    # a UTF-8 byte order mark (EF BB BF, the Unicode standard) is what some editors write
+    p = write(tmp_path, b"\xef\xbb\xbf" + json.dumps(good).encode())
+    assert load_card(p).tube == "V5"
+    r = run("export", p, "--format", "json")
+    assert r.exit_code == 0 and json.loads(r.stdout)["tube"] == "V5"
 
 
 # --------------------------------------------------------------------------

@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import click
 import numpy as np
 
-from ..card import CardError, load_card
+from ..card import CardError, load_card, read_json
 from ..export import (
     GRID_RESISTANCE,
     HIGH_VOLTAGE_CAUTION,
@@ -91,7 +90,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             )
             summary = f"subcircuit {sub_name}, pins plate grid cathode, model {triode.model.name}"
         elif fmt == "json":
-            raw = json.loads(Path(card).read_text())
+            raw = read_json(card)  # already validated by load_card above
             text = card_json(triode, fit=raw.get("fit"), source=raw.get("source"), tube=name)
             summary = f"model card of {name or triode.label}, model {triode.model.name}"
         else:
