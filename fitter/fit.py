@@ -177,10 +177,12 @@ class FitResult:
                             self.unit.tube, self.unit.section, self.valid_range, self.envelope)
 
     @property
-    def envelope(self) -> DataEnvelope:
+    def envelope(self) -> DataEnvelope | None:
         """Where the unit was measured (its points less the outliers, which are glitches and
-        would otherwise stretch the highest current)."""
+        would otherwise stretch the highest current); None for a unit without points."""
         u = self.unit
+        if u.va.size == 0:
+            return None
         keep = np.ones(u.va.size, bool) if self.outliers is None or self.outliers.all() else ~self.outliers
         return DataEnvelope.from_points(u.va[keep], u.vg[keep], u.ia[keep])
 
@@ -248,7 +250,7 @@ class FitResult:
                 "va_v": list(self.valid_range["va"]), "vg_v": list(self.valid_range["vg"]),
                 "ia_ma": [1e3 * x for x in self.valid_range["ia"]],
             },
-            "envelope": self.envelope.to_dict(),
+            "envelope": None if self.envelope is None else self.envelope.to_dict(),
         }
         if self.converged:
             d["free"] = list(self.free)
