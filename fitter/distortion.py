@@ -401,8 +401,10 @@ def analyse(stage, *triodes, vin_peak: float | None = None, vout_peak: float | N
                             "practice), which this model leaves out")
         if np.min(tubes[p]["ia"]) <= 0.01 * op[p + ".ia"]:
             warnings.append(f"{_who(p)} cuts off over part of the cycle")
-        if t.outside_range(tubes[p]["va"], tubes[p]["vgk"]):
-            warnings.append(f"{_who(p)}'s swing leaves the fitted data of {t.label}: extrapolating")
+        if t.outside_range(tubes[p]["va"], tubes[p]["vgk"], ia=tubes[p]["ia"]):
+            warnings.append(f"{_who(p)}'s swing leaves the fitted data of {t.label}: extrapolating"
+                            + (f" ({t.envelope.outside(tubes[p]['va'], tubes[p]['vgk'], tubes[p]['ia'])}; "
+                               f"{t.envelope.describe()})" if t.envelope is not None else ""))
     return Distortion(stage, tuple(triodes), float(vin_peak), float(H[0, 1]), H[0, 1:], float(thd[0]),
                       float(H[0, 0]), theta, vin[0], y[0], tubes, warnings)
 

@@ -43,7 +43,7 @@ from scipy.special import expit
 
 from .models import TriodeModel, _median, get_model, model_names
 from .reader import CurveSet, check_for_model, clean_curves
-from .triode import FittedTriode
+from .triode import DataEnvelope, FittedTriode
 
 __all__ = [
     "FitResult",
@@ -174,7 +174,17 @@ class FitResult:
         if not self.converged:
             return None
         return FittedTriode(self.model, self.params, self.free, self.covariance,
-                            self.unit.tube, self.unit.section, self.valid_range)
+                            self.unit.tube, self.unit.section, self.valid_range, self.envelope)
+
+    @property
+    def envelope(self) -> DataEnvelope | None:
+        """Where the unit was measured (its points less the outliers, which are glitches and
+        would otherwise stretch the highest current); None for a unit without points."""
+        u = self.unit
+        if u.va.size == 0:
+            return None
+        keep = np.ones(u.va.size, bool) if self.outliers is None or self.outliers.all() else ~self.outliers
+        return DataEnvelope.from_points(u.va[keep], u.vg[keep], u.ia[keep])
 
     @property
     def valid_range(self) -> dict:
@@ -240,6 +250,7 @@ class FitResult:
                 "va_v": list(self.valid_range["va"]), "vg_v": list(self.valid_range["vg"]),
                 "ia_ma": [1e3 * x for x in self.valid_range["ia"]],
             },
+            "envelope": None if self.envelope is None else self.envelope.to_dict(),
         }
         if self.converged:
             d["free"] = list(self.free)

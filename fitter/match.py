@@ -945,13 +945,11 @@ def unit_figures(units: Sequence[FittedTriode], position, errors: bool = False,
             raise MatchError(f"units must be FittedTriode objects, got {type(u).__name__}")
     values = _values(position, units)
     n = len(units)
-    outside = np.array([u.outside_range(values["va"][k], values["vg"][k]) for k, u in enumerate(units)], bool)
+    outside = np.array([u.outside_range(values["va"][k], values["vg"][k], ia=values["ia"][k])
+                        for k, u in enumerate(units)], bool)
     if outside.all() and not extrapolate:
-        u = units[0]
-        rng = ""
-        if u.valid_range:
-            rng = (f" (e.g. {u.label} was fitted over va {u.valid_range['va'][0]:.4g}..{u.valid_range['va'][1]:.4g} V, "
-                   f"vg {u.valid_range['vg'][0]:.4g}..{u.valid_range['vg'][1]:.4g} V)")
+        why = units[0].outside_reason(values["va"][0], values["vg"][0], ia=values["ia"][0])
+        rng = f" (e.g. {why})" if why else ""
         raise MatchError(f"the position ({position.describe()}) is outside every unit's fitted data{rng}; "
                          "choose a point inside the measured curves or allow extrapolation")
     problem: list = [None] * n

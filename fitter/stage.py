@@ -1232,13 +1232,23 @@ def _warnings(stage, triodes, fig) -> list[str]:
         if vgk >= 0:
             out.append(f"{name}: grid at {vgk:+.3g} V to its cathode: grid current will flow"
                        + ("" if t.model.grid_current else " (not in this model)"))
-        if t.outside_range(va, vgk):
+        if t.envelope is not None:
+            why = t.envelope.outside(va, vgk, ia)
+            if why is not None:
+                out.append(f"{name}: operating point (Va {va:.4g} V, Vgk {vgk:.4g} V) is outside the measured "
+                           f"data: {why} ({t.envelope.describe()}); the model is extrapolating")
+        elif t.outside_range(va, vgk):
             rg = t.valid_range
             out.append(f"{name}: operating point (Va {va:.4g} V, Vgk {vgk:.4g} V) is outside the fitted "
                        f"data (va {rg['va'][0]:.4g}..{rg['va'][1]:.4g} V, vg {rg['vg'][0]:.4g}..{rg['vg'][1]:.4g} V): "
                        "the model is extrapolating")
         if stage.pa_max is not None and fig[f"{pos}.pa"] > stage.pa_max:
             out.append(f"{name} dissipates {fig[f'{pos}.pa']:.3g} W, over the {stage.pa_max:g} W limit")
+        elif t.envelope is not None and fig[f"{pos}.pa"] > t.envelope.pa_max * (1 + t.envelope.HEADROOM):
+            # no limit given, but the tube was never measured this hot: its data say nothing
+            # about it there (and it may be past the tube's rating)
+            out.append(f"{name} dissipates {fig[f'{pos}.pa']:.3g} W, more than the {t.envelope.pa_max:.3g} W "
+                       "reached anywhere in its measured data; check the tube's rated dissipation")
     vk = [fig[f"{p}.vhk"] + stage.heater for p in tube_positions(stage)]
     over = [p for p in tube_positions(stage) if abs(fig[f"{p}.vhk"]) > stage.vhk_max]
     if over:

@@ -116,20 +116,20 @@ def card_with(tmp_path, fitted, change):
 
 
 @pytest.mark.parametrize("change,message", [
-    (lambda d: d.update(format="something-else"), r"field 'format' is 'something-else'"),
-    (lambda d: d.pop("format"), r"missing field 'format'"),
-    (lambda d: d.update(version=2), r"field 'version' is 2; this Platebook reads version 1"),
+    (lambda d: d.update(format="something-else"), r"field 'format': is 'something-else'"),
+    (lambda d: d.pop("format"), r"field 'format': missing"),
+    (lambda d: d.update(version=2), r"field 'version': is 2; this Platebook reads version 1"),
     (lambda d: d.update(model="pentode"), r"field 'model': unknown model 'pentode'"),
-    (lambda d: d.pop("model"), r"missing field 'model'"),
+    (lambda d: d.pop("model"), r"field 'model': missing"),
     (lambda d: d["params"].update(zeta=1.0), r"field 'params.zeta': model 'koren' has no parameter 'zeta'"),
-    (lambda d: d["params"].update(mu="100"), r"field 'params.mu' must be a finite number"),
+    (lambda d: d["params"].update(mu="100"), r"field 'params.mu': must be a finite number"),
     (lambda d: d["params"].pop("kp"), r"field 'params': model 'koren' needs parameter 'kp'"),
-    (lambda d: d.update(free=["mu", "nope"]), r"field 'free' names unknown parameter 'nope'"),
-    (lambda d: d.update(covariance=[[1.0]]), r"field 'covariance' is \(1, 1\), expected 5x5"),
-    (lambda d: d.update(covariance=[["a"] * 5] * 5), r"field 'covariance' must be a matrix of numbers"),
-    (lambda d: d["valid_range"].update(va_v=[0]), r"field 'valid_range.va_v' must be \[low, high\]"),
-    (lambda d: d.update(tube=""), r"field 'tube' must be a non-empty string"),
-    (lambda d: d.update(section=3), r"field 'section' must be a string or null"),
+    (lambda d: d.update(free=["mu", "nope"]), r"field 'free': names unknown parameter 'nope'"),
+    (lambda d: d.update(covariance=[[1.0]]), r"field 'covariance': is 1x1, expected 5x5"),
+    (lambda d: d.update(covariance=[["a"] * 5] * 5), r"field 'covariance\[0\]\[0\]': must be a finite number"),
+    (lambda d: d["valid_range"].update(va_v=[0]), r"field 'valid_range.va_v': must be a list of 2"),
+    (lambda d: d.update(tube=""), r"field 'tube': must not be empty"),
+    (lambda d: d.update(section=3), r"field 'section': must be text, got int"),
 ])
 def test_bad_card_fields(tmp_path, fitted, change, message):
     # rules.md: bad input gets an error naming the file and the field
@@ -144,7 +144,7 @@ def test_non_finite_parameter_is_refused(tmp_path, fitted, literal):
     text = json.dumps(card_dict(fitted.triode)).replace('"kg1": ', f'"kg1": {literal}, "_x": ', 1)
     p = tmp_path / "nan.json"
     p.write_text(text)
-    with pytest.raises(CardError, match=rf"^{p}: field 'params.kg1' must be a finite number"):
+    with pytest.raises(CardError, match=rf"^{p}: field 'params.kg1': must be a finite number"):
         load_card(p)
 
 
@@ -181,7 +181,7 @@ def test_missing_card_file(tmp_path):
 def test_warns_far_outside_the_fitted_range(tmp_path, fitted, va, vg):
     # issue section 5: "warns when it is asked about points far outside that range"
     t = load_card(saved(tmp_path, fitted))
-    with pytest.warns(OutsideDataWarning, match=r"V3:B: point\(s\) outside the fitted data"):
+    with pytest.warns(OutsideDataWarning, match=r"^V3:B: .* the model is extrapolating$"):
         t.small_signal(va, vg)
     assert t.outside_range(va, vg)
 
@@ -189,7 +189,10 @@ def test_warns_far_outside_the_fitted_range(tmp_path, fitted, va, vg):
 def test_no_warning_inside_the_fitted_range(tmp_path, fitted):
     # issue section 5: warn only FAR outside the data (not inside it)
     # pyproject turns warnings into errors, so a spurious warning fails this test
+    # the measured points themselves are inside the envelope of the data
     t = load_card(saved(tmp_path, fitted))
-    assert not t.outside_range(VA, VG)
+    keep = ~fitted.outliers
+    va, vg = fitted.unit.va[keep], fitted.unit.vg[keep]
+    assert not t.outside_range(va, vg)
     t.small_signal(250.0, -2.0)
-    t.check_range(VA, VG)
+    t.check_range(va, vg)

@@ -165,7 +165,7 @@ def test_point_warns_far_outside_the_data(lot, tmp_path):
     cards = tmp_path / "cards"
     run("fit", path, "--save", cards)
     d = json.loads(run("point", cards / "V2.koren.json", "--va", 1000, "--vg", -2, "--json").stdout)
-    assert len(d["warnings"]) == 1 and "outside the fitted data" in d["warnings"][0]
+    assert len(d["warnings"]) == 1 and "va 1000 V is outside the plate voltages traced" in d["warnings"][0]
     r = run("point", cards / "V2.koren.json", "--va", 1000, "--vg", -2)
     assert "warning:" in r.stderr and "extrapolating" in r.stderr
 

@@ -161,7 +161,7 @@ def test_bad_files(tmp_path):
     p = tmp_path / "bad.json"
     p.write_text('{"fits": [{"tube": "A", "converged": true, "model": "koren", "params": {"mu": "x"}}]}')
     r = run(["match", str(p), "--va", "250", "--vg", "-2"])
-    assert r.exit_code == 1 and "fits[0].params.mu: must be a finite number" in r.output
+    assert r.exit_code == 1 and "field 'fits[0].params.mu': must be a finite number" in r.output
     p.write_text("{not json")
     r = run(["match", str(p), "--va", "250", "--vg", "-2"])
     assert r.exit_code == 1 and "line 1" in r.output

@@ -284,12 +284,14 @@ def test_folder_where_file_should_go_is_one_line_error_exit_1(tmp_path):
 
 
 def test_name_too_long_is_shortened_keeping_the_hash(tmp_path):
-    # NAME_MAX is 255 bytes on the usual Linux file systems (common practice)
-    a, b = "T" * 300 + "1", "T" * 300 + "2"
-    stems = unit_stems([(a, "A"), (b, "A")])
+    # NAME_MAX is 255 bytes on the usual Linux file systems (common practice); names are at
+    # most 64 characters (fitter.text.MAX_NAME), so the longest stem joins two such names
+    a, b, sec = "T" * 63 + "1", "T" * 63 + "2", "S" * 64
+    stems = unit_stems([(a, sec), (b, sec)])
     assert all(len(s) <= MAX_STEM for s in stems) and stems[0] != stems[1]
+    assert unit_stems([("T" * 300, "A")])[0].__len__() <= MAX_STEM
     for t, s in zip((a, b), stems):
-        p = save_card(tmp_path / card_filename(triode(t, "A"), s), triode(t, "A"))
+        p = save_card(tmp_path / card_filename(triode(t, sec), s), triode(t, sec))
         assert load_card(p).tube == t
     assert len(list(tmp_path.iterdir())) == 2
 

@@ -43,8 +43,15 @@ def main():
 
 def fail(message: str, code: int = 1):
     """Print ``error: message`` to stderr and exit: 1 for usage or input errors, 2 when
-    a fit or a solve failed."""
-    click.echo(f"error: {message}", err=True)
+    a fit or a solve failed.
+
+    Messages quote names from files (tube names, file names); control and escape characters
+    in them are shown escaped (:func:`fitter.text.shown`), line by line, so that no file can
+    send a terminal sequence through an error message."""
+    from ..text import shown
+
+    text = "\n".join(shown(line) for line in str(message).split("\n"))
+    click.echo(f"error: {text}", err=True)
     raise SystemExit(code)
 
 

@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import click
+import numpy as np
 
-from ..card import CardError, load_card
+from ..card import CardError, load_card, read_json
 from ..export import (
     GRID_RESISTANCE,
     HIGH_VOLTAGE_CAUTION,
@@ -23,6 +23,7 @@ from ..export import (
 from ..outfiles import OutputError, write_atomic
 from ..text import shown
 from . import fail, main, value
+from ..text import shown
 
 
 def _fail(message: str) -> None:
@@ -91,7 +92,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             )
             summary = f"subcircuit {sub_name}, pins plate grid cathode, model {triode.model.name}"
         elif fmt == "json":
-            raw = json.loads(Path(card).read_text())
+            raw = read_json(card)  # already validated by load_card above
             text = card_json(triode, fit=raw.get("fit"), source=raw.get("source"), tube=name)
             summary = f"model card of {name or triode.label}, model {triode.model.name}"
         else:
@@ -102,7 +103,13 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             else:
                 va, vg = parse_sweep(va_spec, "--va"), parse_sweep(vg_spec, "--vg")
             fam = curve_family(triode, va, vg, tube=name)
-            if triode.outside_range(va, vg):
+            grid_va, grid_vg = np.meshgrid(va, vg)
+            why = (triode.envelope.outside(grid_va, grid_vg, triode.current)
+                   if triode.envelope is not None else None)
+            if why is not None:
+                click.echo(f"warning: the grid reaches outside the measured data ({shown(why)}; "
+                           f"{triode.envelope.describe()}); those points are extrapolated", err=True)
+            elif triode.envelope is None and triode.outside_range(va, vg):
                 r = triode.valid_range
                 click.echo(
                     f"note: the grid reaches outside the fitted data "

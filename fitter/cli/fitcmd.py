@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import sys
 import warnings
 from pathlib import Path
@@ -15,6 +16,7 @@ from ..card import CardError, load_card, save_card, card_filename
 from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
 from ..models import MODELS, get_model
 from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
+from ..text import shown
 from ..triode import OutsideDataWarning
 
 
@@ -62,6 +64,11 @@ def _progress(total: int, enabled: bool):
     return click.progressbar(length=total, label="fitting", file=sys.stderr, show_pos=True)
 
 
+def _lines(text) -> str:
+    """``text`` with control characters escaped line by line (names come from files)."""
+    return "\n".join(shown(line) for line in str(text).split("\n"))
+
+
 def _fmt(x, spec=".4g"):
     return "-" if x is None else format(x, spec)
 
@@ -72,9 +79,9 @@ def _table(rows_by_unit, multi: bool) -> str:
     lines = [head, "-" * len(head)]
     for results in rows_by_unit:
         for rank, r in enumerate(results):
-            name = r.label if rank == 0 else ""
+            name = shown(r.label) if rank == 0 else ""
             if not r.converged:
-                lines.append(f"{name:<16} {r.model.name:<9} {r.n_points:>4} {'':>3} {'FAILED':>8}  {r.failure}")
+                lines.append(f"{name:<16} {r.model.name:<9} {r.n_points:>4} {'':>3} {'FAILED':>8}  {shown(r.failure)}")
                 continue
             mark = "*" if multi and rank == 0 else " "
             others = "  ".join(
@@ -143,9 +150,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     if problems:
         fail_input(str(CurveReadError(problems)))
     for s in skipped:
-        click.echo(f"skipped: {s}", err=True)
+        click.echo(f"skipped: {_lines(s)}", err=True)
     for n in read.notes:
-        click.echo(f"note: {n}", err=True)
+        click.echo(f"note: {_lines(n)}", err=True)
     if not units:
         fail_input("no units left to fit" + (" after skipping bad input (listed above)" if skipped else ""))
 
@@ -241,6 +248,9 @@ def point_command(card, va, vg, as_json):
     Gives plate current, transconductance gm, plate resistance rp and mu = gm·rp,
     each with its standard error propagated from the fit covariance.
     """
+    for option, v in (("--va", va), ("--vg", vg)):
+        if not math.isfinite(v):
+            fail_input(f"{option}: must be a finite voltage, got {v!r}")
     try:
         triode = load_card(card)
     except CardError as e:

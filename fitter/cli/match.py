@@ -11,16 +11,14 @@ from __future__ import annotations
 import csv
 import json
 import math
-from pathlib import Path
 
 import click
 
-from ..card import CardError, load_cards
+from ..card import CardError, load_fits
 from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchError, StackedSlot,
                      assign_stacks, match_units, select_units)
-from ..models import get_model
-from ..triode import FittedTriode
 from . import fail, main, value
+from ..text import shown as _shown
 
 
 def _fail(message: str, code: int = 1):
@@ -83,91 +81,13 @@ def _grades(text):
 # -- reading the fitted units ------------------------------------------------
 
 
-def _range(vr, where):
-    if not vr:
-        return None
-    out = {}
-    for key, name, scale in (("va_v", "va", 1.0), ("vg_v", "vg", 1.0), ("ia_ma", "ia", 1e-3)):
-        v = vr.get(key)
-        if v is None:
-            continue
-        if not (isinstance(v, list) and len(v) == 2 and all(isinstance(x, (int, float)) for x in v)):
-            _fail(f"{where}.valid_range.{key}: must be [low, high]")
-        out[name] = (float(v[0]) * scale, float(v[1]) * scale)
-    return out if {"va", "vg"} <= set(out) else None
-
-
 def read_fits(path):
-    """(units, failed) from a ``platebook fit --json`` file or a folder of model cards."""
-    p = Path(path)
-    if p.is_dir():
-        try:
-            return load_cards(p), []
-        except CardError as e:
-            _fail(str(e))
+    """(units, failed) from a ``platebook fit --json`` file or a folder of model cards,
+    read by the card validator (:func:`fitter.card.load_fits`)."""
     try:
-        text = p.read_text()
-    except OSError as e:
-        _fail(f"{path}: cannot read: {e.strerror or e}")
-    try:
-        d = json.loads(text)
-    except json.JSONDecodeError as e:
-        _fail(f"{path}: line {e.lineno}, column {e.colno}: not valid JSON: {e.msg}")
-    if not isinstance(d, dict) or not isinstance(d.get("fits"), list):
-        _fail(f"{path}: expected the JSON of 'platebook fit --json', an object with a list 'fits'")
-    fits = list(enumerate(d["fits"]))
-    best = d.get("best")
-    if isinstance(best, list) and best:
-        # 'platebook fit --model all --json': several models per unit, ranked; match
-        # each unit by its best model (the first of its ranking)
-        keep = {(b.get("tube"), b.get("section"), b.get("model")) for b in best if isinstance(b, dict)}
-        fits = [(k, f) for k, f in fits
-                if isinstance(f, dict) and (f.get("tube"), f.get("section"), f.get("model")) in keep]
-    units, failed = [], []
-    for k, f in fits:
-        where = f"{path}: fits[{k}]"
-        if not isinstance(f, dict):
-            _fail(f"{where}: must be an object")
-        tube = f.get("tube")
-        if not isinstance(tube, str) or not tube:
-            _fail(f"{where}.tube: must be a non-empty string")
-        section = f.get("section")
-        if section is not None and not isinstance(section, str):
-            _fail(f"{where}.section: must be a string or null")
-        label = f"{tube}:{section}" if section else tube
-        if f.get("converged") is not True:
-            why = f.get("failure") or f.get("message") or "no reason given"
-            failed.append({"unit": label, "reason": f"fit did not converge ({why})"})
-            continue
-        try:
-            model = get_model(f.get("model", ""))
-        except ValueError as e:
-            _fail(f"{where}.model: {e}")
-        params = f.get("params")
-        if not isinstance(params, dict):
-            _fail(f"{where}.params: must be an object of parameter values")
-        for name, v in params.items():
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-                _fail(f"{where}.params.{name}: must be a finite number, got {v!r}")
-        free = tuple(f.get("free") or ())
-        cov = f.get("covariance")
-        if cov is not None:
-            try:
-                import numpy as np
-
-                cov = np.array([[np.nan if x is None else float(x) for x in row] for row in cov])
-                if cov.shape != (len(free), len(free)) or not np.all(np.isfinite(cov)):
-                    cov = None
-            except (TypeError, ValueError):
-                _fail(f"{where}.covariance: must be a matrix of numbers")
-        try:
-            units.append(FittedTriode(model, params, free if cov is not None else (), cov, tube, section or None,
-                                      _range(f.get("valid_range"), where)))
-        except ValueError as e:
-            _fail(f"{where}.params: {e}")
-    if not units and not failed:
-        _fail(f"{path}: 'fits' is empty: no units to match")
-    return units, failed
+        return load_fits(path)
+    except CardError as e:
+        _fail(str(e))
 
 
 # -- the command ---------------------------------------------------------------
@@ -232,7 +152,7 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
     except MatchError as e:
         _fail(str(e))
     if not units:
-        _fail(f"{fits}: no fitted unit converged; nothing to match")
+        _fail(f"{_shown(fits)}: no fitted unit converged; nothing to match")
     stack = None
     if stack_kind:
         from ..stage import Stack
