@@ -34,7 +34,6 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import math
-import re
 from pathlib import Path
 from typing import Any, Mapping
 

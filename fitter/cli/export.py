@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import click
 import numpy as np
@@ -23,7 +22,6 @@ from ..export import (
 from ..outfiles import OutputError, write_atomic
 from ..text import shown
 from . import fail, main, value
-from ..text import shown
 
 
 def _fail(message: str) -> None:
