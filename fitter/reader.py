@@ -226,7 +226,8 @@ def robust_full_scale(current) -> float:
     a = a[np.isfinite(a)]
     if a.size == 0:
         return 0.0
-    q = float(np.quantile(a, 0.9))
+    k = int(0.9 * (a.size - 1))
+    q = float(np.partition(a, k)[k])
     if q <= 0:
         return float(a.max())
     return float(a[a <= 10.0 * q].max())
@@ -548,11 +549,11 @@ _INNER_BLANK_OR_COMMENT = re.compile(r"\n[ \t\r]*(?:#|\n)")
 def _fast_columns(data: str, ctx: _Context, kinds: list[str]):
     """Parse the data rows column-wise with numpy's C reader.
 
-    ``kinds`` gives each field "f" (number) or "s" (text).  Returns (columns, first
-    line number) or None whenever anything is unusual, so that the row-by-row path
-    finds and locates it: non-ASCII text, a blank or comment line inside the data, a
-    cell that is not a finite number, a row of the wrong width, text with both decimal
-    commas and points.
+    ``kinds`` gives each field "f" (number) or "s" (text).  Returns (columns, line
+    numbers) or None whenever anything is unusual, so that the row-by-row path finds
+    and locates it: non-ASCII text, a blank or comment line inside the data, a cell
+    that is not a finite number, a row of the wrong width, text with both decimal
+    commas and decimal points.
     """
     body = data.rstrip()
     if not body or not body.isascii() or _INNER_BLANK_OR_COMMENT.search("\n" + body):
@@ -565,46 +566,62 @@ def _fast_columns(data: str, ctx: _Context, kinds: list[str]):
     raw = body.encode("ascii")
     if comma:
         raw = raw.replace(b",", b".")
-    extra: list[str] = []
-    result = None
-    # rows written with the trailing empty fields of the header, or without them
-    for width in dict.fromkeys((len(kinds) + ctx.trailing, len(kinds))):
-        types = kinds + ["s"] * (width - len(kinds))
-        dtype = [(f"c{j}", object if k == "s" else np.float64) for j, k in enumerate(types)]
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                arr = np.loadtxt(io.BytesIO(raw), delimiter=ctx.sep, dtype=dtype, comments=None,
-                                 quotechar='"' if ctx.quoted else None, ndmin=1, encoding=None)
-        except (ValueError, TypeError, IndexError):
-            continue
-        if arr.shape != (nrows,):
-            return None
-        result = arr
-        extra = types[len(kinds):]
-        break
-    if result is None:
+    # Every row has exactly `width` fields (the header's, with or without its trailing
+    # empty ones): loadtxt refuses a row too short for the last column it is asked
+    # for, and the separator count then rules out a row that is too long.
+    seps = raw.count(ctx.sep.encode())
+    width = next((w for w in (len(kinds) + ctx.trailing, len(kinds)) if seps == nrows * (w - 1)), None)
+    if width is None:
         return None
-    cols = []
-    for j, k in enumerate(kinds):
-        c = result[f"c{j}"]
-        if k == "f":
-            c = np.ascontiguousarray(c)
-            if not np.all(np.isfinite(c)):
-                return None
-        else:
-            c = np.asarray(c, dtype=object)
-            if comma:
-                c = np.array([s.replace(".", ",") for s in c.tolist()], dtype=object) if any(
-                    "." in s for s in set(c.tolist())) else c
-        cols.append(c)
-    for j in range(len(kinds), len(kinds) + len(extra)):
-        if any(s.strip() for s in set(result[f"c{j}"].tolist())):
-            return None
-    del result
+    numbers = [j for j, k in enumerate(kinds) if k == "f"]
+    texts = [j for j, k in enumerate(kinds) if k == "s"] + list(range(len(kinds), width))
+    if width - 1 not in numbers and width - 1 not in texts:
+        return None
+    kw = dict(delimiter=ctx.sep, comments=None, quotechar='"' if ctx.quoted else None, encoding=None)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            num = np.loadtxt(io.BytesIO(raw), usecols=numbers, ndmin=2, **kw)
+            txt = np.loadtxt(io.BytesIO(raw), usecols=texts, dtype=object, ndmin=2, **kw) if texts else None
+    except (ValueError, TypeError, IndexError):
+        return None
+    del raw
+    if num.shape != (nrows, len(numbers)) or (txt is not None and txt.shape != (nrows, len(texts))):
+        return None
+    if not np.all(np.isfinite(num)):
+        return None
+    cols: list = [None] * len(kinds)
+    for k, j in enumerate(numbers):
+        cols[j] = np.ascontiguousarray(num[:, k])
+    del num
+    for k, j in enumerate(texts):
+        c = np.ascontiguousarray(txt[:, k])
+        if j >= len(kinds):
+            if any(v.strip() for v in set(c.tolist())):
+                return None  # a value under an empty header cell
+            continue
+        if comma:
+            # the text columns went through the comma -> point swap too; no point was
+            # in the file, so every point in them was a comma
+            starts = _run_starts(c)
+            if any("." in v for v in c[starts].tolist()):
+                c = np.array([v.replace(".", ",") for v in c.tolist()], dtype=object)
+        cols[j] = c
     if comma:
         ctx.dialect.append("decimal commas")
     return cols, np.arange(first, first + nrows, dtype=np.int64)
+
+
+def _run_starts(*keys) -> np.ndarray:
+    """Indices where any of the key arrays changes value (0 included)."""
+    n = next(k.size for k in keys if k is not None)
+    change = np.zeros(n, dtype=bool)
+    if n:
+        change[0] = True
+    for k in keys:
+        if k is not None and n > 1:
+            change[1:] |= k[1:] != k[:-1]
+    return np.flatnonzero(change)
 
 
 def _slow_rows(data: str, ctx: _Context, names: list[str], issues: list, directives: dict):
@@ -718,9 +735,9 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
         va, vg = column("va"), column("vg")
         ia = column(ia_col) * _SCALE[ia_col[3:]]
         ig = column(ig_col) * _SCALE[ig_col[3:]] if ig_col else None
-        tubes = _keys(column("tube")) if "tube" in seen else None
-        sections = _keys(column("section")) if "section" in seen else None
-        if tubes is not None and np.any(tubes == ""):
+        tubes = column("tube") if "tube" in seen else None
+        sections = column("section") if "section" in seen else None
+        if tubes is not None and any(not t.strip() for t in tubes[_run_starts(tubes)].tolist()):
             fast = None  # an empty tube name: the row-by-row path reports it
         else:
             issues = []
@@ -757,15 +774,6 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
                    current_column=ia_col)
 
 
-def _keys(col: np.ndarray) -> np.ndarray:
-    """Stripped text keys; the stripping is done once per distinct value."""
-    distinct = set(col.tolist())
-    if all(s == s.strip() for s in distinct):
-        return col
-    table = {s: s.strip() for s in distinct}
-    return np.array([table[s] for s in col.tolist()], dtype=object)
-
-
 def _check_currents(ia, lines, bad, issues, file, col):
     """Clip small negative currents (instrument offset) with a note; larger ones are errors.
 
@@ -800,24 +808,19 @@ def _groups(idx: np.ndarray, tubes, sections, default_tube, default_section):
     """Rows of each (tube, section), in the order of first appearance.
 
     Rows of one unit usually come in one run, so the keys are compared run by run
-    (vectorised), and only the runs go through a dictionary.
+    (vectorised), and only the runs go through a dictionary (which also strips the
+    keys' blanks).
     """
     if tubes is None and sections is None:
         return {(default_tube, default_section): idx}
     n = idx.size
     t = tubes[idx] if tubes is not None else None
     s = sections[idx] if sections is not None else None
-    change = np.zeros(n, dtype=bool)
-    change[0] = True
-    if t is not None:
-        change[1:] |= t[1:] != t[:-1]
-    if s is not None:
-        change[1:] |= s[1:] != s[:-1]
-    starts = np.flatnonzero(change)
+    starts = _run_starts(t, s)
     ends = np.append(starts[1:], n)
     runs: dict = {}
     for a, b in zip(starts.tolist(), ends.tolist()):
-        key = (t[a] if t is not None else default_tube, s[a] if s is not None else "")
+        key = (t[a].strip() if t is not None else default_tube, s[a].strip() if s is not None else "")
         runs.setdefault(key, []).append(idx[a:b])
     return {(tube, section or None): (r[0] if len(r) == 1 else np.concatenate(r)) for (tube, section), r in runs.items()}
 
