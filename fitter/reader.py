@@ -966,7 +966,7 @@ def clean_curves(unit: CurveSet, model=None) -> CurveSet:
     outside = va < 0
     if outside.any():
         k = int(outside.sum())
-        notes.append(f"{k} point(s) with negative plate voltage dropped ({100 * k / va.size:.0f} % of {va.size}; "
+        notes.append(f"{k} point(s) with negative plate voltage dropped ({100 * k / va.size:.3g} % of {va.size}; "
                      "outside the model's domain)")
         keep = ~outside
         va, vg, ia = va[keep], vg[keep], ia[keep]
