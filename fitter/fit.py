@@ -46,7 +46,7 @@ from scipy.optimize import leastsq
 from scipy.special import expit
 
 from .models import TriodeModel, _median, get_model, model_names
-from .reader import CurveSet, check_for_model, clean_curves, robust_full_scale
+from .reader import CurveSet, check_data, check_for_model, clean_curves, robust_full_scale
 from .triode import FittedTriode
 
 __all__ = [
@@ -588,7 +588,9 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         except ValueError as e:
             raise FitInputError(str(e)) from None
     u = clean_curves(unit, m)
-    issue = check_for_model(u, m)
+    # the data checks see the points as given (cleaning drops negative plate voltages,
+    # which would hide "no plate voltage above 0 V") and as cleaned
+    issue = check_data(unit) or check_for_model(u, m)
     if issue is not None:
         raise FitInputError(str(issue))
 

@@ -1026,6 +1026,12 @@ def data_notes(unit: CurveSet, current_column: str | None = None) -> list[str]:
             notes.append(f"plate currents look like the wrong unit: the largest is {shown:.3g} under an "
                          f"'{current_column}' header, i.e. {in_ma:.3g} mA, where a triode family's largest current "
                          f"is typically {lo:g} .. {hi:g} mA{guess}")
+    wild = np.abs(unit.ia) > 10.0 * full
+    if wild.any():
+        k = int(np.argmax(np.abs(unit.ia)))
+        where = f" at line {int(unit.lines[k])}" if unit.lines is not None else ""
+        notes.append(f"{int(wild.sum())} reading(s) more than 10x the rest of the currents (the largest "
+                     f"{unit.ia[k] * 1e3:.3g} mA{where}): an overflow or a typing slip?")
     vg = unit.vg
     if vg.size and float(vg.min()) > 0:
         notes.append(f"every grid voltage is positive ({float(vg.min()):g} .. {float(vg.max()):g} V): plate curves are "
