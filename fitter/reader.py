@@ -280,17 +280,26 @@ def _float_cells(cells: list[str], lines: np.ndarray, col: str, file: str, issue
         vals = np.array(cells, dtype=float)
     except ValueError:
         vals = np.empty(len(cells))
-        for i, c in enumerate(cells):
+        block = 4096
+        for base in range(0, len(cells), block):
+            # blocks that convert in one go are done so; only the others cell by cell
             try:
-                vals[i] = float(c)
+                vals[base:base + block] = np.array(cells[base:base + block], dtype=float)
+                continue
             except ValueError:
-                vals[i] = np.nan
-                s = c.strip()
-                if s == "" and allow_empty:
-                    continue
-                msg = "empty value" if s == "" else f"non-numeric value {s[:40]!r}"
-                issues.append(ReadIssue(file, int(lines[i]), col, msg))
-                bad[i] = True
+                pass
+            for i in range(base, min(base + block, len(cells))):
+                c = cells[i]
+                try:
+                    vals[i] = float(c)
+                except ValueError:
+                    vals[i] = np.nan
+                    s = c.strip()
+                    if s == "" and allow_empty:
+                        continue
+                    msg = "empty value" if s == "" else f"non-numeric value {s[:40]!r}"
+                    issues.append(ReadIssue(file, int(lines[i]), col, msg))
+                    bad[i] = True
     nonfinite = ~np.isfinite(vals) & ~bad
     if allow_empty:
         empties = np.array([c.strip() == "" for c in cells]) if nonfinite.any() else nonfinite
@@ -624,28 +633,41 @@ def _run_starts(*keys) -> np.ndarray:
     return np.flatnonzero(change)
 
 
+def _skipped_lines(sep: str):
+    """Blank lines, comment lines, and a spreadsheet's empty rows (";;;")."""
+    return re.compile(rf"^[^\S\n]*(?:#[^\n]*|(?:{re.escape(sep)}[^\S\n]*)*)$", re.M)
+
+
 def _slow_rows(data: str, ctx: _Context, names: list[str], issues: list, directives: dict):
     """Split the data rows one by one: columns of strings and their line numbers.
 
     Blank lines, comment lines and rows of empty fields are skipped (comment lines may
     carry directives); a row of the wrong width is an issue naming the first missing
-    or extra field.
+    or extra field.  Rows of the right width (nearly all) are split in one go: a
+    ``split`` over the joined text is several times faster than one per line.
     """
-    ncol = ctx.width
-    good_rows, numbers = [], []
-    other = [s for s in ("\t", ";", ",") if s != ctx.sep]
-    for k, raw in enumerate(data.split("\n")):
-        no = ctx.header_line + 1 + k
-        line = raw.rstrip("\r")
-        s = line.strip()
-        if not s:
-            continue
-        if s.startswith("#"):
-            m = _DIRECTIVE.match(s)
-            if m:
-                directives[m.group(1).lower()] = m.group(2)
-            continue
-        fields = _split_fields(line, ctx.sep, ctx.quoted)
+    ncol, sep = ctx.width, ctx.sep
+    lines = data.split("\n")
+    if "\r" in data:
+        lines = [line.rstrip("\r") for line in lines]
+    use = np.ones(len(lines), dtype=bool)
+    k, last = 0, 0
+    for m in _skipped_lines(sep).finditer(data):  # blank and comment lines: few, found by one scan
+        k += data.count("\n", last, m.start())
+        last = m.start()
+        use[k] = False
+        d = _DIRECTIVE.match(m.group().strip())
+        if d:
+            directives[d.group(1).lower()] = d.group(2)
+    counts = np.fromiter((line.count(sep) for line in lines), dtype=np.int64, count=len(lines))
+    regular = use & (counts == ncol - 1)
+    if ctx.quoted:
+        regular &= np.fromiter(('"' not in line for line in lines), dtype=bool, count=len(lines))
+    other = [o for o in ("\t", ";", ",") if o != sep]
+    extra_rows, extra_numbers = [], []
+    for i in np.flatnonzero(use & ~regular):
+        line, no = lines[i], ctx.header_line + 1 + int(i)
+        fields = _split_fields(line, sep, ctx.quoted)
         if len(fields) > ncol and not any(f.strip() for f in fields[ncol:]):
             fields = fields[:ncol]
         if not any(f.strip() for f in fields):
@@ -653,20 +675,30 @@ def _slow_rows(data: str, ctx: _Context, names: list[str], issues: list, directi
         found = len(fields)
         if found != ncol:
             if found > ncol:
-                extra = next(j for j in range(ncol, found) if fields[j].strip())
-                col, what = f"{extra + 1}", "unexpected extra field(s)"
+                first_extra = next(j for j in range(ncol, found) if fields[j].strip())
+                col, what = f"{first_extra + 1}", "unexpected extra field(s)"
             else:
                 col = _col(found + 1, names[found]) if names else f"{found + 1}"
                 what = "missing value(s)"
             hint = next((f" (is the separator {_SEP_NAME[o]}?)" for o in other if o in line), "")
             issues.append(ReadIssue(ctx.file, no, col, f"{what}: expected {ncol} fields, found {found}{hint}"))
             continue
-        good_rows.append(fields)
-        numbers.append(no)
-    lines = np.array(numbers, dtype=np.int64)
-    if not good_rows:
-        return [[] for _ in range(ncol)], lines
-    return [list(c) for c in zip(*good_rows)], lines
+        extra_rows.append(fields)
+        extra_numbers.append(no)
+    idx = np.flatnonzero(regular)
+    numbers = idx + ctx.header_line + 1
+    if idx.size:
+        good = lines if idx.size == len(lines) else [lines[i] for i in idx.tolist()]
+        flat = sep.join(good).split(sep)
+        cols = [flat[j::ncol] for j in range(ncol)]
+    else:
+        cols = [[] for _ in range(ncol)]
+    if extra_rows:
+        numbers = np.concatenate([numbers, np.array(extra_numbers, dtype=np.int64)])
+        order = np.argsort(numbers, kind="stable")
+        numbers = numbers[order]
+        cols = [[(c + list(e))[i] for i in order.tolist()] for c, e in zip(cols, zip(*extra_rows))]
+    return cols, numbers.astype(np.int64)
 
 
 def _comma_decimal(ctx: _Context, cols: list[list[str]]) -> bool:
