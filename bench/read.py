@@ -9,8 +9,7 @@ voltages 10..400 V, grid voltages 0..-4.5 V, currents uniform in 0..10 mA; writt
 once into a temporary folder.  Each measurement runs in its own Python process, so
 that its peak resident memory (``ru_maxrss``) belongs to that read alone; the figure
 "baseline" is the same process importing the reader without reading anything.  Also
-shown: numpy's share of the peak by ``tracemalloc`` (numpy reports its buffers to it),
-the spreadsheet dialect (';' and decimal commas) of the same rows, and how long the
+shown: the spreadsheet dialect (';' and decimal commas) of the same rows, and how long the
 row-by-row path takes to reject the same file with one bad cell on its last line.
 
 Run:  python bench/read.py [--rows N] [--repeat K]
@@ -33,13 +32,11 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 CHILD = r"""
-import json, resource, sys, time, tracemalloc
+import json, resource, sys, time
 from fitter.reader import CurveReadError, read_curves
 path, mode = sys.argv[1], sys.argv[2]
 out = {}
 if mode != "baseline":
-    if mode == "traced":
-        tracemalloc.start()
     t0 = time.perf_counter()
     try:
         res = read_curves(path)
@@ -48,8 +45,6 @@ if mode != "baseline":
     except CurveReadError as e:
         out["error"] = str(e.issues[0])
     out["seconds"] = time.perf_counter() - t0
-    if mode == "traced":
-        out["traced_peak_mb"] = tracemalloc.get_traced_memory()[1] / 1e6
 out["maxrss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 print(json.dumps(out))
 """
@@ -91,8 +86,8 @@ def main():
     ap.add_argument("--repeat", type=int, default=3)
     args = ap.parse_args()
     digest = hashlib.sha1((ROOT / "fitter" / "reader.py").read_bytes()).hexdigest()[:10]
-    print(f"Platebook reader benchmark: {args.rows:,} rows, long layout (median of {args.repeat} runs, "
-          "each in its own process)")
+    print(f"Platebook reader benchmark: {args.rows:,} rows, long layout (median and best of {args.repeat} "
+          "runs, each in its own process)")
     print(f"engine file (sha1): reader.py {digest}")
     print("load average at start: " + " ".join(f"{x:.2f}" for x in os.getloadavg()) + f" ({os.cpu_count()} cores)")
     with tempfile.TemporaryDirectory() as tmp:
@@ -107,17 +102,16 @@ def main():
         base = child(files["plain CSV"], "baseline")["maxrss_mb"]
         print(f"baseline (python + numpy + reader imported, nothing read): {base:.0f} MB resident")
         print()
-        print(f"{'file':<42} {'MB':>5} {'read s':>7} {'peak MB':>8} {'numpy/tracemalloc MB':>21}  result")
+        print(f"{'file':<42} {'MB':>5} {'read s':>7} {'best s':>7} {'peak MB':>8}  result")
         for name, path in files.items():
             runs = [child(path, "plain") for _ in range(args.repeat)]
-            traced = child(path, "traced")
             secs = statistics.median(r["seconds"] for r in runs)
             peak = max(r["maxrss_mb"] for r in runs)
             r = runs[0]
             what = (f"{r['units']} units, {r['points']:,} points" if "units" in r
                     else "error: " + r["error"].replace(str(path), path.name))
-            print(f"{name:<42} {path.stat().st_size / 1e6:5.0f} {secs:7.3f} {peak:8.0f} "
-                  f"{traced['traced_peak_mb']:21.0f}  {what}")
+            best = min(r["seconds"] for r in runs)
+            print(f"{name:<42} {path.stat().st_size / 1e6:5.0f} {secs:7.3f} {best:7.3f} {peak:8.0f}  {what}")
     print()
     print("goal: plain CSV read <= 1 s and peak <= 250 MB (resident, whole process)")
     print("load average at end: " + " ".join(f"{x:.2f}" for x in os.getloadavg()))

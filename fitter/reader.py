@@ -53,6 +53,7 @@ import csv
 import io
 import os
 import re
+import sys
 import warnings
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -372,9 +373,10 @@ def read_curves(paths, skip_bad: bool = False, max_rows: int | None = None) -> R
             continue
         try:
             dialect: list[str] = []
-            text = _decode(raw, str(p), dialect)
+            # an ASCII file goes on as bytes (the fast path parses them without a copy)
+            source = raw if raw.isascii() else _decode(raw, str(p), dialect)
             del raw
-            out.extend(_read(text, str(p), p.stem, skip_bad, limit, dialect))
+            out.extend(_read(source, str(p), p.stem, skip_bad, limit, dialect))
         except CurveReadError as e:
             errors.extend(e.issues)
         except MemoryError:
@@ -394,7 +396,7 @@ def read_text(text: str, file: str = "<text>", default_tube: str = "unit", skip_
     """Read curve data from a string; see :func:`read_curves`."""
     if not isinstance(text, str):
         raise CurveReadError([ReadIssue(file, None, None, "input is not text")])
-    dialect = []
+    dialect: list[str] = []
     if text.startswith("\ufeff"):
         text = text[1:]
         dialect.append("UTF-8 byte-order mark")
@@ -495,19 +497,70 @@ def _canonical(i: int, original: str, file: str, header_line: int, issues: list)
     return None, False
 
 
-def _read(text: str, file: str, default_tube: str, skip_bad: bool, limit: int, dialect: list) -> ReadResult:
-    if "\r" in text and "\n" not in text:
-        text = text.replace("\r", "\n")
-        dialect.append("CR line ends")
-    header, header_line, start, directives = _preamble(text)
+class _Data:
+    """The data part of a file, after its header line.
+
+    ``source`` is the whole file as ASCII bytes (read from an ASCII file) or as text;
+    ``start`` is where the data begin in it.  The fast path reads the bytes in place;
+    the row-by-row path asks for ``text``.
+    """
+
+    def __init__(self, source, start: int):
+        self.source, self.start = source, start
+        end = len(source)
+        while end > start and source[end - 1:end].isspace():
+            end -= 1
+        self.end = end  # trailing blank lines and spaces left out
+        self._text = None
+
+    @property
+    def text(self) -> str:
+        if self._text is None:
+            part = self.source[self.start:]
+            self._text = part.decode("ascii") if isinstance(part, bytes) else part
+        return self._text
+
+    def rows(self) -> int:
+        nl = b"\n" if isinstance(self.source, bytes) else "\n"
+        return self.source.count(nl, self.start, self.end) + 1 if self.end > self.start else 0
+
+    def has(self, char: str) -> bool:
+        c = char.encode() if isinstance(self.source, bytes) else char
+        return self.source.find(c, self.start, self.end) >= 0
+
+    def ascii_bytes(self):
+        """(bytes, start, end) of the data with a newline just before ``start``; None
+        when the data are not ASCII (those go the row-by-row way)."""
+        if isinstance(self.source, bytes):
+            return self.source, self.start, self.end
+        part = self.source[self.start:self.end]
+        if not part.isascii():
+            return None
+        return b"\n" + part.encode("ascii"), 1, len(part) + 1
+
+
+def _read(source, file: str, default_tube: str, skip_bad: bool, limit: int, dialect: list) -> ReadResult:
+    if isinstance(source, bytes):
+        if b"\r" in source and b"\n" not in source:
+            source = source.replace(b"\r", b"\n")
+            dialect.append("CR line ends")
+        prefix = source[:1 << 16].decode("ascii")
+        header, header_line, start, directives = _preamble(prefix)
+        if header is None or start >= len(prefix) and len(source) > len(prefix):
+            header, header_line, start, directives = _preamble(source.decode("ascii"))
+    else:
+        if "\r" in source and "\n" not in source:
+            source = source.replace("\r", "\n")
+            dialect.append("CR line ends")
+        header, header_line, start, directives = _preamble(source)
     if header is None:
         raise CurveReadError([ReadIssue(file, None, None, "no header row (file is empty or only comments)")])
-    data = text[start:]
-    rows = data.rstrip().count("\n") + 1
+    data = _Data(source, start)
+    rows = data.rows()
     if rows > limit:
         raise CurveReadError([ReadIssue(file, None, None, _too_big(f"{rows:,} lines after the header", limit))])
     sep = _separator(header)
-    quoted = '"' in header or '"' in data
+    quoted = '"' in header or data.has('"')
     cells = _split_fields(header, sep, quoted)
     originals = [c.strip() for c in cells]
     trailing = 0
@@ -528,7 +581,7 @@ def _read(text: str, file: str, default_tube: str, skip_bad: bool, limit: int, d
                                         f"only one column found in the header: {hint}")])
     ctx = _Context(file, header_line, sep, quoted, len(originals), trailing, dialect, limit)
     if any(_WIDE_HINT.search(_normalise(o)) for o in originals):
-        res = _read_wide(originals, ctx, data, directives, default_tube, skip_bad)
+        res = _read_wide(originals, ctx, data.text, directives, default_tube, skip_bad)
     else:
         res = _read_long(originals, ctx, data, default_tube, skip_bad)
     if ctx.dialect:
@@ -552,10 +605,12 @@ class _Context:
 # Rows: the fast column-wise path and the row-by-row validating path
 # ---------------------------------------------------------------------------
 
-_INNER_BLANK_OR_COMMENT = re.compile(r"\n[ \t\r]*(?:#|\n)")
 
 
-def _fast_columns(data: str, ctx: _Context, kinds: list[str]):
+_INNER_BLANK_OR_COMMENT = re.compile(rb"\n[ \t\r\f\v]*(?:#|\n)")
+
+
+def _fast_columns(data: _Data, ctx: _Context, kinds: list[str]):
     """Parse the data rows column-wise with numpy's C reader.
 
     ``kinds`` gives each field "f" (number) or "s" (text).  Returns (columns, line
@@ -564,37 +619,45 @@ def _fast_columns(data: str, ctx: _Context, kinds: list[str]):
     that is not a finite number, a row of the wrong width, text with both decimal
     commas and decimal points.
     """
-    body = data.rstrip()
-    if not body or not body.isascii() or _INNER_BLANK_OR_COMMENT.search("\n" + body):
+    got = data.ascii_bytes()
+    if got is None:
+        return None
+    raw, a, b = got
+    if b <= a or _INNER_BLANK_OR_COMMENT.search(raw, a - 1, b):
         return None
     first = ctx.header_line + 1
-    nrows = body.count("\n") + 1
-    comma = ctx.sep != "," and "," in body
-    if comma and "." in body:
+    nrows = raw.count(b"\n", a, b) + 1
+    comma = ctx.sep != "," and raw.find(b",", a, b) >= 0
+    if comma and raw.find(b".", a, b) >= 0:
         return None
-    raw = body.encode("ascii")
-    if comma:
-        raw = raw.replace(b",", b".")
     # Every row has exactly `width` fields (the header's, with or without its trailing
     # empty ones): loadtxt refuses a row too short for the last column it is asked
     # for, and the separator count then rules out a row that is too long.
-    seps = raw.count(ctx.sep.encode())
+    seps = raw.count(ctx.sep.encode(), a, b)
     width = next((w for w in (len(kinds) + ctx.trailing, len(kinds)) if seps == nrows * (w - 1)), None)
     if width is None:
         return None
     numbers = [j for j, k in enumerate(kinds) if k == "f"]
     texts = [j for j, k in enumerate(kinds) if k == "s"] + list(range(len(kinds), width))
-    if width - 1 not in numbers and width - 1 not in texts:
-        return None
-    kw = dict(delimiter=ctx.sep, comments=None, quotechar='"' if ctx.quoted else None, encoding=None)
+    if comma:
+        raw, a, b = raw[a:b].replace(b",", b"."), 0, b - a
+    elif raw[b:].strip(b"\r\n"):
+        raw, a, b = raw[a:b], 0, b - a  # trailing spaces: loadtxt would take them for a row
+
+    def stream():
+        f = io.BytesIO(raw)
+        f.seek(a)
+        return f
+
+    kw = dict(delimiter=ctx.sep, comments=None, quotechar='"' if ctx.quoted else None, encoding=None, ndmin=2)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            num = np.loadtxt(io.BytesIO(raw), usecols=numbers, ndmin=2, **kw)
-            txt = np.loadtxt(io.BytesIO(raw), usecols=texts, dtype=object, ndmin=2, **kw) if texts else None
+            num = np.loadtxt(stream(), usecols=numbers, **kw)
+            # text keys repeat: interned, each distinct name is stored once
+            txt = np.loadtxt(stream(), usecols=texts, dtype=object, converters=sys.intern, **kw) if texts else None
     except (ValueError, TypeError, IndexError):
         return None
-    del raw
     if num.shape != (nrows, len(numbers)) or (txt is not None and txt.shape != (nrows, len(texts))):
         return None
     if not np.all(np.isfinite(num)):
@@ -604,16 +667,15 @@ def _fast_columns(data: str, ctx: _Context, kinds: list[str]):
         cols[j] = np.ascontiguousarray(num[:, k])
     del num
     for k, j in enumerate(texts):
-        c = np.ascontiguousarray(txt[:, k])
+        c = txt[:, k]
         if j >= len(kinds):
-            if any(v.strip() for v in set(c.tolist())):
+            if any(v.strip() for v in c[_run_starts(c)].tolist()):
                 return None  # a value under an empty header cell
             continue
         if comma:
             # the text columns went through the comma -> point swap too; no point was
             # in the file, so every point in them was a comma
-            starts = _run_starts(c)
-            if any("." in v for v in c[starts].tolist()):
+            if any("." in v for v in c[_run_starts(c)].tolist()):
                 c = np.array([v.replace(".", ",") for v in c.tolist()], dtype=object)
         cols[j] = c
     if comma:
@@ -778,7 +840,7 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
                 return _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tubes, sections,
                                notes, current_column=ia_col)
     issues = []
-    cols, lines = _slow_rows(data, ctx, list(originals), issues, {})
+    cols, lines = _slow_rows(data.text, ctx, list(originals), issues, {})
     if len(lines) > ctx.limit:
         raise CurveReadError([ReadIssue(file, None, None, _too_big(f"{len(lines):,} data rows", ctx.limit))])
     n = lines.size
