@@ -449,3 +449,41 @@ def test_fuzz_arbitrary_bytes_in_a_file(tmp_path, data):
     p = tmp_path / "fuzz.csv"
     p.write_bytes(data)
     _only_reader_errors(lambda: read_curves(p))
+
+
+# --------------------------------------------------------------------------
+# the fast column-wise path and the row-by-row path agree
+# --------------------------------------------------------------------------
+
+
+def test_fast_and_row_by_row_paths_give_the_same_units(tmp_path, monkeypatch, synth, write_long):
+    # the row-by-row path is the reference (it is what locates every error); the fast
+    # path must give exactly its numbers, line numbers and notes
+    import fitter.reader as reader
+
+    units = [synth("koren", dict(mu=21.5, ex=1.3, kg1=1180.0, kp=84.0, kvb=300.0), grid_voltages=[0, -4, -8],
+                   va_step=25.0, seed=s, tube=f"U{s}", section="AB"[s % 2]) for s in range(3)]
+    p = write_long(tmp_path / "lot.csv", units)
+    text = p.read_text().splitlines()
+    text[5] = text[5].rsplit(",", 1)[0] + ",-0.0001"  # a small offset reading: clipped, with a note
+    p.write_text("\n".join(text) + "\n")
+    taken = []
+    real = reader._fast_columns
+    monkeypatch.setattr(reader, "_fast_columns", lambda *a, **k: taken.append(real(*a, **k)) or taken[-1])
+    fast = read_curves(p)
+    assert taken and taken[0] is not None  # this file did go the fast way
+    monkeypatch.setattr(reader, "_fast_columns", lambda *a, **k: None)
+    slow = read_curves(p)
+    assert [u.label for u in fast.units] == [u.label for u in slow.units] == ["U0:A", "U1:B", "U2:A"]
+    for f, s in zip(fast.units, slow.units):
+        for a in ("va", "vg", "ia", "lines"):
+            np.testing.assert_array_equal(getattr(f, a), getattr(s, a))
+        assert f.notes == s.notes
+    assert fast.notes == slow.notes and any("clipped" in n for n in fast.notes)
+
+
+def test_comment_and_blank_lines_inside_the_data_keep_line_numbers():
+    # such files take the row-by-row path; line numbers still count every line
+    text = "va,vg,ia_ma\n100,0,2\n# a remark\n\n200,0,4\n100,-1,1\n"
+    (u,) = read_text(text, "c.csv").units
+    np.testing.assert_array_equal(u.lines, [2, 5, 6])
