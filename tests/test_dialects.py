@@ -14,6 +14,8 @@ import re
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from fitter.fit import fit_curves
 from fitter.reader import CurveReadError, read_curves, read_text
@@ -200,3 +202,50 @@ def test_value_under_an_empty_trailing_header_is_an_error():
 def test_spreadsheet_empty_rows_are_skipped():
     res = read_text("va;vg;ia_ma\n100;0;1\n;;\n200;0;2\n100;-1;0,5\n", "r.csv")
     np.testing.assert_array_equal(res.units[0].lines, [2, 4, 5])
+
+
+# --------------------------------------------------------------------------
+# fuzzing the dialect handling: nothing but the reader's own error, ever
+# --------------------------------------------------------------------------
+
+HEADERS = ["va", "Va (V)", "VA [V]", "vg", "Vg (V)", "ia_ma", "Ia [mA]", "Ia (A)", "Ia [µA]", "Ia", "tube",
+           "section", "Vg=-2V", "Ia [mA] @ Vg=0V", "ia_ma@vg=-1,5", "", "Ig (mA)", "Va (kV)"]
+CELLS = ["100", "0", "-1", "2,5", "2.5", "1.234,5", '"3,1"', '"x"', "", " ", "nan", "1e38", "-0,01", "T1", "A",
+         '"', "#", "µ"]
+
+
+@st.composite
+def sheet_like(draw):
+    sep = draw(st.sampled_from([",", ";", "\t"]))
+    header = draw(st.lists(st.sampled_from(HEADERS), min_size=1, max_size=5))
+    if draw(st.booleans()):
+        header = [f'"{h}"' for h in header]
+    rows = [[draw(st.sampled_from(CELLS)) if draw(st.integers(0, 3)) == 0
+             else draw(st.sampled_from(["100", "200", "0", "-2", "1,5", "3.5"]))
+             for _ in range(len(header) + draw(st.sampled_from([0, 0, 0, 1, -1])))]
+            for _ in range(draw(st.integers(0, 8)))]
+    lines = [sep.join(header)] + [sep.join(r) for r in rows]
+    if draw(st.booleans()):
+        lines.insert(0, draw(st.sampled_from(["# current: mA", "# tube: Q", "#"])))
+    text = draw(st.sampled_from(["\n", "\r\n", "\r"])).join(lines)
+    return ("\ufeff" if draw(st.booleans()) else "") + text
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(text=sheet_like(), skip=st.booleans(), as_bytes=st.sampled_from(["str", "utf-8", "utf-16"]))
+def test_fuzz_spreadsheet_like_text_raises_only_reader_errors(tmp_path, text, skip, as_bytes):
+    # issue 8, section 8: every input gets the reader's own error or units that are sane
+    try:
+        if as_bytes == "str":
+            res = read_text(text, "fuzz.csv", skip_bad=skip)
+        else:
+            p = tmp_path / "fuzz.csv"
+            p.write_bytes(text.encode(as_bytes))
+            res = read_curves(p, skip_bad=skip)
+    except CurveReadError as e:
+        assert e.issues and all(str(i) for i in e.issues)
+        return
+    for u in res.units:
+        assert u.va.shape == u.vg.shape == u.ia.shape == u.lines.shape
+        assert np.all(np.isfinite(u.va)) and np.all(np.isfinite(u.vg)) and np.all(np.isfinite(u.ia))
+        assert u.n_curves >= 2
