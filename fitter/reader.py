@@ -757,9 +757,12 @@ def _slow_rows(data: str, ctx: _Context, names: list[str], issues: list, directi
     idx = np.flatnonzero(regular)
     numbers = idx + ctx.header_line + 1
     if idx.size:
-        good = lines if idx.size == len(lines) else [lines[i] for i in idx.tolist()]
-        flat = sep.join(good).split(sep)
+        joined = sep.join(lines if idx.size == len(lines) else [lines[i] for i in idx.tolist()])
+        del lines  # before the split: the cells take several times the lines' memory
+        flat = joined.split(sep)
+        del joined
         cols = [flat[j::ncol] for j in range(ncol)]
+        del flat
     else:
         cols = [[] for _ in range(ncol)]
     if extra_rows:
