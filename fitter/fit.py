@@ -5,7 +5,9 @@ The procedure for one unit and one model (``fit_curves``):
 1. **Clean** the points (:func:`fitter.reader.clean_curves`): sort, average repeats,
    drop points outside the model's domain.  Each change is a note.
 2. **Weight.** Residuals are relative with a floor: r = (Ia_model - Ia) / (|Ia| + f),
-   f = ``floor`` x the unit's largest current (default 2 %).  Currents span three
+   f = ``floor`` x the unit's largest current (default 2 %), where "largest" ignores
+   absurd readings (:func:`fitter.reader.robust_full_scale`), so that one 1e38 mA
+   reading cannot flatten the weights of all the others.  Currents span three
    decades on a plate-curve plot; a plain absolute residual lets the top of the
    family dominate and ignores the bias region where the tube works.
 3. **Start** from the model's data-driven guess (:mod:`fitter.models`: a closed-form
@@ -23,8 +25,10 @@ The procedure for one unit and one model (``fit_curves``):
 7. **Sanity.** The fit is declared failed, with the reason, when: the optimiser did
    not converge; a free parameter ran to its bound; the model is flat (near zero)
    where the data carry current; the robust scatter is too large for the model to
-   describe the data; or too many points were rejected.  A failed fit is never
-   reported as a result.
+   describe the data; or too many points were rejected; or the parameter covariance
+   is singular, or a parameter never moved from its start and has no error bar (the
+   data do not determine it).  Each reason says what the user can check.  A failed
+   fit is never reported as a result.
 """
 
 from __future__ import annotations
@@ -42,7 +46,7 @@ from scipy.optimize import leastsq
 from scipy.special import expit
 
 from .models import TriodeModel, _median, get_model, model_names
-from .reader import CurveSet, check_for_model, clean_curves
+from .reader import CurveSet, check_data, check_for_model, clean_curves, robust_full_scale
 from .triode import DataEnvelope, FittedTriode
 
 __all__ = [
@@ -65,6 +69,31 @@ MAX_OUTLIER_FRACTION = 0.2
 #: about 1 % (common practice), so several percent means the model misses the tube's
 #: shape somewhere (positive grid, the knee), even though it is not a failure.
 LOOSE_FIT_REL_RMS = 0.05
+
+
+#: What to check when a parameter runs to a bound, by parameter name (common practice:
+#: mu is set by the grid voltages against the plate voltages, so a wrong sign or scale
+#: of vg, or two sections' curves mixed into one unit, drive it to a bound; the
+#: current-scale parameters by the current's unit; the exponents and knee parameters by
+#: the shape of the curves).
+_BOUND_HINTS = {
+    "mu": "check the grid voltages' sign and scale, and that the file holds one tube section",
+    "K": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
+    "G": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
+    "kg1": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
+    "n": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
+    "gamma": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
+    "ex": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
+    "vc": "check the grid voltages' sign and offset (a constant added to vg?)",
+}
+_BOUND_HINT_OTHER = "check the data's units and that the file holds one tube section; or fix the parameter (--fix)"
+_GRID_HINT = "check the grid-current column's unit and sign"
+
+
+def _hint(model: TriodeModel, name: str) -> str:
+    if name in _BOUND_HINTS:
+        return _BOUND_HINTS[name]
+    return _GRID_HINT if model.spec(name).grid else _BOUND_HINT_OTHER
 
 
 class FitFailed(RuntimeError):
@@ -313,12 +342,13 @@ class _Problem:
     def __init__(self, model: TriodeModel, unit: CurveSet, floor: float, with_grid: bool):
         self.model = model
         self.va, self.vg, self.ia = unit.va, unit.vg, unit.ia
-        scale = max(float(np.max(np.abs(self.ia))), 1e-9)
+        scale = max(robust_full_scale(self.ia), 1e-9)
+        self.full_scale = scale
         self.w = 1.0 / (np.abs(self.ia) + floor * scale)
         self.with_grid = with_grid
         if with_grid:
             self.ig = unit.ig
-            gscale = max(float(np.max(np.abs(self.ig))), 1e-9)
+            gscale = max(robust_full_scale(self.ig), 1e-9)
             self.wg = 1.0 / (np.abs(self.ig) + floor * gscale)
         self.mask = None  # inlier mask for the polish
         # The noise scale is judged on the points well above the floor, where the
@@ -569,7 +599,9 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         except ValueError as e:
             raise FitInputError(str(e)) from None
     u = clean_curves(unit, m)
-    issue = check_for_model(u, m)
+    # the data checks see the points as given (cleaning drops negative plate voltages,
+    # which would hide "no plate voltage above 0 V") and as cleaned
+    issue = check_data(unit) or check_for_model(u, m)
     if issue is not None:
         raise FitInputError(str(issue))
 
@@ -584,7 +616,10 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         raise FitInputError("every parameter is fixed: nothing to fit")
     prob = _Problem(m, u, opts.floor, with_grid)
 
-    first = m.guess(u.va, u.vg, u.ia)
+    # the data-driven start from the readings that are not absurd (an overflow reading
+    # would otherwise set the scale of the linearised guess)
+    sane = np.abs(u.ia) <= prob.full_scale
+    first = m.guess(u.va[sane], u.vg[sane], u.ia[sane]) if sane.sum() >= 4 else m.guess(u.va, u.vg, u.ia)
     if with_grid:
         first.update(_grid_guess(u))
     bounds = {sp.name: tuple(opts.bounds.get(sp.name, (sp.lower, sp.upper))) for sp in m.params}
@@ -598,9 +633,9 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
             lo, hi = bounds[k]
             span = hi - lo
             if lo != 0.0 and values[k] - lo <= 1e-6 * span:
-                return f"parameter {k} ran to its lower bound {lo:g}"
+                return f"parameter {k} ran to its lower bound {lo:g}: {_hint(m, k)}"
             if hi - values[k] <= 1e-6 * span:
-                return f"parameter {k} ran to its upper bound {hi:g}"
+                return f"parameter {k} ran to its upper bound {hi:g}: {_hint(m, k)}"
         return None
 
     if not opts.expr:
@@ -625,6 +660,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
             return prob.values(r.params), scale, bool(r.success)
 
     best = None
+    best_start: dict = {}
     tried = 0
     candidates = [first]
     alt_added = False
@@ -643,6 +679,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         ok = ok and bound_hit(values) is None
         if best is None or (ok and not best[2]) or (ok == best[2] and scale < best[1]):
             best = (values, scale, ok)
+            best_start = start
         # alternative starts only when the first did not reach a sane minimum
         if not alt_added and (not ok or scale > 0.05) and m.alternative_starts is not None:
             alt_added = True
@@ -734,20 +771,49 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     if failure is None and not np.all(np.isfinite(model_ia)):
         failure = "model currents are not finite at the solution"
     if failure is None:
-        big = inl & (u.ia > 0.05 * np.max(u.ia))
+        big = inl & (u.ia > 0.05 * prob.full_scale)
         flat = big & (model_ia < 0.01 * u.ia)
         if big.any() and flat.sum() > 0.05 * big.sum():
             failure = (f"the model is flat at zero current at {int(flat.sum())} point(s) where the "
-                       "data carry current (a spurious flat minimum)")
+                       "data carry current (a spurious flat minimum): check that va and vg are the plate and "
+                       "grid voltages in V, and the plate current's unit")
     robust_scatter = _robust_scale(wres, prob.scale_points[: u.n_points][inl])
     if failure is None and robust_scatter > MAX_ROBUST_SCATTER:
         failure = (f"residuals too large (robust scatter {100 * robust_scatter:.1f} % of the current): "
-                   f"the {m.name} model does not describe these data")
+                   f"the {m.name} model does not describe these data; check that the file holds one tube "
+                   "section, and the columns' units")
     if failure is None and outliers.mean() > MAX_OUTLIER_FRACTION:
         failure = (f"{int(outliers.sum())} of {u.n_points} points rejected as outliers: "
-                   "too many for a trustworthy fit")
-    if failure is None and cov is None:
-        u = u.with_notes("parameter covariance could not be estimated (singular); errors are unknown")
+                   "too many for a trustworthy fit; check for a second tube or section mixed into the unit, "
+                   "and for a column in the wrong unit")
+    if failure is None and cov is not None and k > 1 and all(stderr[name] for name in free_fitted):
+        # Numerically singular: the correlation matrix's condition number beyond 1e10
+        # leaves fewer than 6 of double precision's 16 digits (LAPACK eps 2.2e-16) in
+        # the covariance; converged fits of plate curves sit at 1e2..1e4.  The
+        # eigenvector of the smallest eigenvalue names the parameters that trade off.
+        d = np.sqrt(np.diag(cov))
+        w, vecs = np.linalg.eigh(cov / np.outer(d, d))
+        if w[0] < 1e-10 * w[-1]:
+            v = np.abs(vecs[:, 0])
+            which = [free_fitted[i] for i in np.argsort(-v) if v[i] > 0.3][:3]
+            failure = ("the parameter covariance is singular: the data do not determine "
+                       + " and ".join(which) + " separately; check that the data cover several plate voltages "
+                       "on each of several grid curves, and that va and vg are the right columns")
+    if failure is None and k and (cov is None or any(stderr[name] is None for name in free_fitted)):
+        # A singular (or non-finite) covariance means some combination of the free
+        # parameters is not determined by the data: a fit whose error bars are unknown
+        # is not a good fit.
+        unmoved = [name for name in free_fitted if stderr[name] is None and name in best_start
+                   and _unmoved(values[name], best_start[name], bounds[name])]
+        if unmoved:
+            name = unmoved[0]
+            failure = (f"parameter {name} did not move from its starting value {values[name]:.4g} and has no "
+                       f"error bar: the data do not determine it; {_hint(m, name)}")
+        else:
+            which = [name for name in free_fitted if stderr[name] is None]
+            failure = ("the parameter covariance is singular: the data do not determine "
+                       + (", ".join(which) if which and cov is not None else "the parameters")
+                       + " (too few distinct grid or plate voltages?); check that va and vg are the right columns")
     rel_rms = float(np.sqrt(np.mean(wres**2))) if wres.size else float("nan")
     if failure is None and rel_rms > LOOSE_FIT_REL_RMS:
         u = u.with_notes(f"loose fit: relative rms {100 * rel_rms:.1f} % is well above the ~1 % scatter of "
@@ -763,6 +829,13 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         robust_scatter=robust_scatter, r2=r2, aic=aic, bic=bic,
         nfev=nfev, starts_tried=tried, message=message, elapsed_ms=elapsed(), optimizer=fin,
     )
+
+
+def _unmoved(value: float, start: float, bounds) -> bool:
+    """True when a parameter ended where it started (to 1e-6 of its range or value)."""
+    lo, hi = bounds
+    span = hi - lo if np.isfinite(hi - lo) else abs(start) + 1.0
+    return abs(value - start) <= 1e-6 * max(min(span, abs(start) + 1e-12), 1e-300)
 
 
 def _grid_guess(u: CurveSet) -> dict:

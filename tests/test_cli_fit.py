@@ -195,7 +195,7 @@ def test_bad_input_exits_1_with_file_line_column_on_stderr(tmp_path):
     for extra in ([], ["--json"]):
         r = run("fit", p, *extra)
         assert r.exit_code == 1
-        assert f"{p}, line 4, column ia_ma: non-numeric value 'abc'" in r.stderr
+        assert f"{p}, line 4, column 3 ('ia_ma'): non-numeric value 'abc'" in r.stderr  # column: index and header text
         assert r.stdout == ""  # nothing half-written on stdout, JSON or not
 
 
@@ -212,7 +212,7 @@ def test_skip_bad_reports_skipped_rows_and_fits_the_rest(lot, tmp_path):
     r = run("fit", bad, "--skip-bad", "--json")
     assert r.exit_code == 0
     doc = json.loads(r.stdout)
-    assert doc["skipped"] == [f"{bad}, line {line}, column ia_ma: non-numeric value 'oops'"]
+    assert doc["skipped"] == [f"{bad}, line {line}, column 5 ('ia_ma'): non-numeric value 'oops'"]
     assert f"skipped: {bad}, line {line}" in r.stderr
     assert [f["n_points"] for f in doc["fits"]] == [units[0].n_points, units[1].n_points - 1, units[2].n_points]
 
@@ -362,5 +362,5 @@ def test_skip_bad_lists_what_it_skipped_even_when_nothing_is_left(tmp_path):
     p.write_text("tube,va,vg,ia_ma\nX,100,-1,1.0\nX,150,-1,2.0\nX,100,-2,x\n")
     r = run("fit", p, "--skip-bad")
     assert r.exit_code == 1
-    assert f"skipped: {p}, line 4, column ia_ma: non-numeric value 'x'" in r.stderr
+    assert f"skipped: {p}, line 4, column 4 ('ia_ma'): non-numeric value 'x'" in r.stderr
     assert "no units left to fit" in r.stderr

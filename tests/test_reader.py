@@ -130,11 +130,12 @@ def test_missing_required_column(tmp_path, header, missing):
 def test_duplicate_column(tmp_path):
     # issue section 1: duplicate columns are an error
     p = write(tmp_path, "va,vg,VA,ia_ma\n1,2,3,4\n")
-    assert_names(read_error(p), p, 1, "3 ('va')", r"duplicate column 'va'")
+    # the column is named as the file writes it (its 1-based index and header text)
+    assert_names(read_error(p), p, 1, "3 ('VA')", r"duplicate column 'va'")
 
 
 @pytest.mark.parametrize("header,col,message", [
-    ("va,vg,ia_kA", "3 ('ia_ka')", r"unknown current unit 'ka'"),
+    ("va,vg,ia_kA", "3 ('ia_kA')", r"unknown current unit 'ka'"),
     ("va,vg,ia_ma,ig_mv", "4 ('ig_mv')", r"unknown current unit 'mv'"),
     ("va,vg,ia_ma,temperature", "4 ('temperature')", r"unknown column"),
 ])
@@ -147,7 +148,7 @@ def test_unknown_unit_or_column(tmp_path, header, col, message):
 def test_plate_current_in_two_units_is_refused(tmp_path):
     # issue section 1: plate current as exactly ONE of ia_ma, ia_a, ia_ua
     p = write(tmp_path, "va,vg,ia_ma,ia_ua\n100,0,1,1000\n")
-    assert_names(read_error(p), p, 1, "ia_ma, ia_ua", r"more than one column")
+    assert_names(read_error(p), p, 1, "3 ('ia_ma'), 4 ('ia_ua')", r"more than one column")
 
 
 @pytest.mark.parametrize("cell,message", [
@@ -173,7 +174,8 @@ def test_every_error_of_a_file_is_listed(tmp_path):
     # issue section 1: "a bad file is rejected with all of its errors listed"
     p = write(tmp_path, "va,vg,ia_ma\nx,0,1\n100,y,1\n100,-1,z\n200,-1,1\n")
     err = read_error(p)
-    assert [(i.line, i.column) for i in err.issues] == [(2, "va"), (3, "vg"), (4, "ia_ma")]
+    # columns by 1-based index and header text
+    assert [(i.line, i.column) for i in err.issues] == [(2, "1 ('va')"), (3, "2 ('vg')"), (4, "3 ('ia_ma')")]
     assert str(err).startswith("3 errors in input")
 
 
@@ -259,11 +261,11 @@ def test_skip_bad_reports_each_skipped_row(tmp_path):
     np.testing.assert_array_equal(res.units[0].lines, [2, 4, 6])
     where = sorted((i.line, i.column) for i in res.skipped)
     # line 3 and 5: bad values; line 8: bad value; unit B left with one curve (line 7)
-    assert where == [(3, "ia_ma"), (5, "ia_ma"), (7, "vg"), (8, "ia_ma")]
+    assert where == [(3, "4 ('ia_ma')"), (5, "4 ('ia_ma')"), (7, "vg"), (8, "4 ('ia_ma')")]
     assert all(i.file == str(p) for i in res.skipped)
     # without the option the same file is rejected with those errors
     err = read_error(p)
-    assert {(i.line, i.column) for i in err.issues} >= {(3, "ia_ma"), (5, "ia_ma"), (8, "ia_ma")}
+    assert {(i.line, i.column) for i in err.issues} >= {(3, "4 ('ia_ma')"), (5, "4 ('ia_ma')"), (8, "4 ('ia_ma')")}
 
 
 # --------------------------------------------------------------------------
@@ -447,3 +449,41 @@ def test_fuzz_arbitrary_bytes_in_a_file(tmp_path, data):
     p = tmp_path / "fuzz.csv"
     p.write_bytes(data)
     _only_reader_errors(lambda: read_curves(p))
+
+
+# --------------------------------------------------------------------------
+# the fast column-wise path and the row-by-row path agree
+# --------------------------------------------------------------------------
+
+
+def test_fast_and_row_by_row_paths_give_the_same_units(tmp_path, monkeypatch, synth, write_long):
+    # the row-by-row path is the reference (it is what locates every error); the fast
+    # path must give exactly its numbers, line numbers and notes
+    import fitter.reader as reader
+
+    units = [synth("koren", dict(mu=21.5, ex=1.3, kg1=1180.0, kp=84.0, kvb=300.0), grid_voltages=[0, -4, -8],
+                   va_step=1.0, seed=s, tube=f"U{s}", section="AB"[s % 2]) for s in range(3)]
+    p = write_long(tmp_path / "lot.csv", units)
+    text = p.read_text().splitlines()
+    text[5] = text[5].rsplit(",", 1)[0] + ",-0.0001"  # a small offset reading: clipped, with a note
+    p.write_text("\n".join(text) + "\n")
+    taken = []
+    real = reader._fast_columns
+    monkeypatch.setattr(reader, "_fast_columns", lambda *a, **k: taken.append(real(*a, **k)) or taken[-1])
+    fast = read_curves(p)
+    assert taken and taken[0] is not None  # this file did go the fast way
+    monkeypatch.setattr(reader, "_fast_columns", lambda *a, **k: None)
+    slow = read_curves(p)
+    assert [u.label for u in fast.units] == [u.label for u in slow.units] == ["U0:A", "U1:B", "U2:A"]
+    for f, s in zip(fast.units, slow.units):
+        for a in ("va", "vg", "ia", "lines"):
+            np.testing.assert_array_equal(getattr(f, a), getattr(s, a))
+        assert f.notes == s.notes
+    assert fast.notes == slow.notes and any("clipped" in n for n in fast.notes)
+
+
+def test_comment_and_blank_lines_inside_the_data_keep_line_numbers():
+    # such files take the row-by-row path; line numbers still count every line
+    text = "va,vg,ia_ma\n100,0,2\n# a remark\n\n200,0,4\n100,-1,1\n"
+    (u,) = read_text(text, "c.csv").units
+    np.testing.assert_array_equal(u.lines, [2, 5, 6])

@@ -120,8 +120,10 @@ def _table(rows_by_unit, multi: bool) -> str:
 @click.option("--jobs", type=click.IntRange(1, 256), default=None,
               help="Worker processes (default: all cores).")
 @click.option("--residuals", is_flag=True, help="With --json, include every point's residual.")
+@click.option("--max-rows", type=click.IntRange(1, None), default=None,
+              help="Refuse a file with more data rows than this (default 5,000,000, or $PLATEBOOK_MAX_ROWS).")
 def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_items, floor, plain, jobs,
-                residuals):
+                residuals, max_rows):
     """Fit triode models to the plate curves in FILE(s).
 
     FILE is CSV in the long layout (tube, section, va, vg, ia_ma / ia_a / ia_ua, optional
@@ -133,7 +135,7 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
     fix = _parse_fix(fix_items, models)
     try:
-        read = read_curves(files, skip_bad=skip_bad)
+        read = read_curves(files, skip_bad=skip_bad, max_rows=max_rows)
     except CurveReadError as e:
         fail_input(str(e))
     skipped: list[ReadIssue] = list(read.skipped)
@@ -151,8 +153,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         fail_input(str(CurveReadError(problems)))
     for s in skipped:
         click.echo(f"skipped: {_lines(s)}", err=True)
-    for n in read.notes:
-        click.echo(f"note: {_lines(n)}", err=True)
+    if as_json:  # the text output lists them with the table
+        for n in read.notes:
+            click.echo(f"note: {_lines(n)}", err=True)
     if not units:
         fail_input("no units left to fit" + (" after skipping bad input (listed above)" if skipped else ""))
 
@@ -210,6 +213,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         click.echo(json.dumps(out, allow_nan=False))
     else:
         click.echo(_table(results, len(models) > 1))
+        notes = _notes(results, read.notes)
+        if notes:
+            click.echo("\n" + notes)
         if len(models) > 1:
             click.echo("\n* best model for the unit (lowest BIC among converged fits)")
         if any(r.converged and r.rel_rms > LOOSE_FIT_REL_RMS for r in flat):
@@ -229,6 +235,16 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         click.echo(CAUTION)
     if n_failed:
         raise SystemExit(2)
+
+
+def _notes(rows_by_unit, file_notes) -> str:
+    """The notes of reading, cleaning and fitting, under the table: the files' first,
+    then each unit's (once per unit, whichever of its models' fits carried them)."""
+    lines = [f"note: {_lines(n)}" for n in file_notes]
+    for results in rows_by_unit:
+        seen = dict.fromkeys(n for r in results for n in r.notes)
+        lines.extend(f"note: {results[0].label}: {_lines(n)}" for n in seen)
+    return "\n".join(lines)
 
 
 def _version():
