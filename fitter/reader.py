@@ -62,6 +62,9 @@ from typing import Iterable
 
 import numpy as np
 
+from .errors import InputError
+from .text import plain_text, shown
+
 __all__ = [
     "CurveSet",
     "ReadIssue",
@@ -848,7 +851,7 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
             notes = _check_currents(ia, lines, bad, issues, file, label[ia_col])
             if not issues:
                 return _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tubes, sections,
-                               notes, current_column=ia_col)
+                               notes, current_column=ia_col, labels=label)
     issues = []
     cols, lines = _slow_rows(data.text, ctx, list(originals), issues, {})
     if len(lines) > ctx.limit:
@@ -875,7 +878,7 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
                 bad[i] = True
     notes = _check_currents(ia, lines, bad, issues, file, label[ia_col])
     return _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tubes, sections, notes,
-                   current_column=ia_col)
+                   current_column=ia_col, labels=label)
 
 
 def _check_currents(ia, lines, bad, issues, file, col):
@@ -930,7 +933,7 @@ def _groups(idx: np.ndarray, tubes, sections, default_tube, default_section):
 
 
 def _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tubes, sections, notes,
-            default_section=None, current_column=None):
+            default_section=None, current_column=None, labels=None):
     result = ReadResult(notes=list(notes))
     issues.sort(key=lambda i: (i.line or 0))
     if issues and not skip_bad:
@@ -947,6 +950,13 @@ def _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tu
     errors = []
     for (tube, section), m in groups.items():
         label = f"{tube}:{section}" if section else tube
+        name_issue = _name_issue(file, tube, section, int(lines[m].min()), tubes is None, labels or {})
+        if name_issue is not None:
+            if skip_bad:
+                result.skipped.append(name_issue)
+            else:
+                errors.append(name_issue)
+            continue
         curves = np.unique(vg[m])
         if curves.size < 2:
             issue = ReadIssue(
@@ -967,6 +977,24 @@ def _finish(file, default_tube, issues, skip_bad, bad, lines, va, vg, ia, ig, tu
     if errors:
         raise CurveReadError(errors)
     return result
+
+
+def _name_issue(file, tube, section, line, tube_from_file_name, labels):
+    """A tube or section name that is not plain text (control characters, or longer than a
+    card or the ledger keeps) is an input error: names travel on to terminals, cards, netlists
+    and spreadsheets, so they are checked once, here."""
+    for column, name in (("tube", tube), ("section", section)):
+        if name is None:
+            continue
+        try:
+            plain_text(name, column)
+        except InputError as e:
+            if column == "tube" and tube_from_file_name:
+                return ReadIssue(file, None, None,
+                                 f"the tube name '{shown(name)}' (from a '# tube:' line or the file name) {e.message}; "
+                                 "give a plain name in a 'tube' column or a '# tube: NAME' line")
+            return ReadIssue(file, line, labels.get(column, column), f"{column} name '{shown(name)}' {e.message}")
+    return None
 
 
 # ---------------------------------------------------------------------------

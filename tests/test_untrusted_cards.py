@@ -334,21 +334,32 @@ def test_match_reads_a_good_fit_json_into_the_same_unit_as_the_card(tmp_path, fi
 # --------------------------------------------------------------------------
 
 
-def test_fit_never_sends_an_escape_from_a_tube_name_to_the_terminal(tmp_path, synth, tube_types, write_long):
-    # ESC [ 2 J clears a terminal (ECMA-48); the CSV reader lets it through in a tube name
+def test_tube_name_with_an_escape_is_refused_where_it_is_and_never_sent_raw(tmp_path, synth, tube_types, write_long):
+    # ESC [ 2 J clears a terminal (ECMA-48): the reader refuses such a name with its line and
+    # column, and the message shows it escaped
     u = synth(tube_types["12AX7"], seed=4, tube="V\x1b[2J", section="A")
     path = write_long(tmp_path / "esc.csv", [u])
-    cards = tmp_path / "cards"
-    r = run("fit", path, "--save", cards)
-    assert r.exit_code == 0, r.output
+    r = run("fit", path, "--save", tmp_path / "cards")
+    assert r.exit_code == 1, r.output
     assert "\x1b" not in r.stdout and "\x1b" not in r.stderr
-    assert "V\\x1b[2J:A" in r.stdout  # shown escaped, still recognisable
-    card = next(cards.glob("*.json"))
-    assert "\x1b" not in card.read_text()
-    r = run("point", card, "--va", 250, "--vg", -2)
-    assert r.exit_code == 0 and "\x1b" not in r.output and "V\\x1b[2J:A" in r.stdout
+    assert "column 1 ('tube')" in r.stderr and "V\\x1b[2J" in r.stderr and "control character" in r.stderr
+    assert not (tmp_path / "cards").exists() or not any((tmp_path / "cards").iterdir())
     r = run("fit", path, "--json")
-    assert "\x1b" not in r.stdout
+    assert r.exit_code == 1 and "\x1b" not in r.stdout + r.stderr
+
+
+def test_tube_name_longer_than_a_card_keeps_is_refused(tmp_path, synth, tube_types, write_long):
+    u = synth(tube_types["12AX7"], seed=4, tube="T" * 65, section="A")
+    r = run("fit", write_long(tmp_path / "long.csv", [u]))
+    assert r.exit_code == 1 and "at most 64" in r.stderr
+
+
+def test_label_of_a_triode_built_in_python_shows_control_characters_escaped_in_tables(tmp_path):
+    from fitter.triode import FittedTriode
+    from fitter.models import get_model
+    t = FittedTriode(get_model("koren"), {"mu": 100, "ex": 1.4, "kg1": 1060, "kp": 600, "kvb": 300},
+                     tube="V\x1b[2J", section="A")
+    assert "\x1b" not in t.label and "V\\x1b[2J:A" == t.label
 
 
 def test_error_messages_escape_control_characters_in_file_names(tmp_path):
