@@ -1,0 +1,14 @@
+"""Platebook's service layer: the one door to the engine for every front end.
+
+Each use case is a function that takes a plain specification with field names (a stage, a
+position, a tolerance, a file) and returns a result object with ``to_dict()``.  The command
+line (:mod:`fitter.cli`) and the web front end (:mod:`web`) parse their input into such a
+specification, call the function, and render the result; neither holds numerics or file
+handling of its own.  Errors are :class:`fitter.errors.InputError` carrying the field they are
+about; each front end names that field its own way (``--ra``, a form field) from one table.
+
+Modules:
+
+* :mod:`fitter.service.stock`: the stock ledger's use cases (import, re-test, grade, match
+  from stock, reserve, back up).
+"""
