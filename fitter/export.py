@@ -62,6 +62,7 @@ from typing import Callable, Mapping
 import numpy as np
 
 from .card import card_dict
+from .units import parse_value
 from .triode import FittedTriode
 
 __all__ = [
@@ -400,7 +401,7 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
         if len(parts) != 3:
             raise ExportError(f"{what}: {text!r} should be start:stop:step, e.g. 0:400:5")
         try:
-            a, b, h = (float(x) for x in parts)
+            a, b, h = (parse_value(x, what) for x in parts)
         except ValueError:
             raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
         if not all(map(math.isfinite, (a, b, h))):
@@ -413,10 +414,10 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
             raise ExportError(f"{what}: the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}")
         n = int(math.floor((b - a) / h + 1e-9)) + 1
         if n > 100_000:
-            raise ExportError(f"{what}: {text!r} gives {n} points; at most 100000")
+            raise ExportError(f"{what}: {text!r} gives {n:.3g} points; at most 100000")
         return np.round(a + h * np.arange(n), 12)
     try:
-        vals = np.array([float(x) for x in s.split(",") if x.strip() != ""])
+        vals = np.array([parse_value(x, what) for x in s.split(",") if x.strip() != ""])
     except ValueError:
         raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
     if vals.size == 0 or not np.all(np.isfinite(vals)):

@@ -10,6 +10,7 @@ from pathlib import Path
 import click
 
 from . import fail, main
+from .options import OptionError, Value, number
 from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
 from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
@@ -32,9 +33,10 @@ def _parse_fix(items, model_names):
         name, value = item.split("=", 1)
         name = name.strip()
         try:
-            fix[name] = float(value)
-        except ValueError:
-            fail_input(f"--fix {item!r}: {value!r} is not a number")
+            fix[name] = number(value, f"--fix {name}")
+        except OptionError as e:
+            finite = "not a finite number" in e.format_message()
+            fail_input(f"--fix {item!r}: {value!r} is not a {'finite ' if finite else ''}number")
         known = {p.name for m in model_names for p in get_model(m).params}
         if name not in known:
             fail_input(f"--fix {item!r}: no model being fitted has a parameter {name!r} "
@@ -107,7 +109,7 @@ def _table(rows_by_unit, multi: bool) -> str:
               help="Skip bad rows and units (each one reported) instead of rejecting the file.")
 @click.option("--fix", "fix_items", multiple=True, metavar="NAME=VALUE",
               help="Hold a parameter at a value, e.g. --fix n=1.5 or --fix mu=100. Repeatable.")
-@click.option("--floor", default=0.02, show_default=True, type=click.FloatRange(1e-6, 1.0),
+@click.option("--floor", default=0.02, show_default=True, type=Value(1e-6, 1.0),
               help="Floor of the relative weighting, as a fraction of each unit's largest current.")
 @click.option("--plain", is_flag=True, help="Plain weighted least squares (no robust loss, no outliers).")
 @click.option("--jobs", type=click.IntRange(1, 256), default=None,
@@ -221,8 +223,8 @@ def _version():
 
 @main.command("point")
 @click.argument("card", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--va", type=float, required=True, help="Plate-to-cathode voltage [V].")
-@click.option("--vg", type=float, required=True, help="Grid-to-cathode voltage [V].")
+@click.option("--va", type=Value(), required=True, help="Plate-to-cathode voltage [V], e.g. 250 or 250V.")
+@click.option("--vg", type=Value(), required=True, help="Grid-to-cathode voltage [V], e.g. -2 or -2V.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
 def point_command(card, va, vg, as_json):
     """Small-signal figures of a fitted unit (model CARD) at one operating point.

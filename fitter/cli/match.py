@@ -21,6 +21,7 @@ from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchErr
 from ..models import get_model
 from ..triode import FittedTriode
 from . import fail, main, value
+from .options import OptionError, Value, number
 
 
 def _fail(message: str, code: int = 1):
@@ -35,10 +36,10 @@ def _positive(text, option, unreadable, what, shown=None):
     """A positive finite float from ``text``; errors quote ``shown`` (default ``text``)."""
     shown = text if shown is None else shown
     try:
-        v = float(text)
-    except ValueError:
+        v = number(text, option)
+    except OptionError:
         _fail(f"{option}: cannot read {shown!r}{unreadable}")
-    if not (math.isfinite(v) and v > 0):
+    if not v > 0:
         _fail(f"{option}: must be a positive {what}, got {shown!r}")
     return v
 
@@ -212,7 +213,8 @@ def read_fits(path):
 @click.option("--bottle-balance", default=None, help="Only bottles whose sections agree within this [%].")
 @click.option("--extrapolate", is_flag=True, help="Let units whose data do not cover the position take part.")
 @click.option("--errors", is_flag=True, help="Propagate fit covariances to each unit's figures.")
-@click.option("--time-limit", default=60.0, show_default=True, help="Solver time limit [s].")
+@click.option("--time-limit", default=60.0, show_default=True, type=Value(0, low_open=True, what="time"),
+              help="Solver time limit [s].")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
 @click.option("--csv", "csv_path", default=None, help="Write a CSV (one row per unit) for labelling.")
 def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid, stages, slot, partner,

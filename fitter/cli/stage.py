@@ -17,6 +17,7 @@ import click
 from ..card import CardError, load_card, load_cards
 from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
 from . import fail, main, value
+from .options import OptionError, number
 
 
 #: engine field names -> the options that set them, so errors name what the user typed
@@ -56,10 +57,9 @@ def _val(text, option, optional=True):
 
 
 def _pct(text, option):
-    s = str(text).strip()
     try:
-        v = float(s[:-1]) if s.endswith("%") else float(s)
-    except ValueError:
+        v = number(text, option, percent=True)
+    except OptionError:
         _fail(f"{option}: cannot read {text!r}; give a percentage such as 1 or 1%")
     if not (0 < v < 100):
         _fail(f"{option}: must lie between 0 and 100 %, got {text!r}")
