@@ -128,7 +128,7 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
     fix = _parse_fix(fix_items, models)
     try:
-        read = read_curves(files, skip_bad=skip_bad)
+        read = _read_inputs(files, skip_bad)
     except CurveReadError as e:
         fail_input(str(e))
     skipped: list[ReadIssue] = list(read.skipped)
@@ -204,8 +204,52 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
         if plot_dir:
             click.echo(f"plots written to {plot_dir}/")
         click.echo(CAUTION)
-    if n_failed:
+    dropped = [s for s in skipped if _drops_whole_unit(s)]
+    if dropped:
+        click.echo(f"error: --skip-bad left out {len(dropped)} whole unit(s) or file(s) (listed above as "
+                   "skipped); the results cover only the rest", err=True)
+    if n_failed or dropped:
         raise SystemExit(2)
+
+
+def _drops_whole_unit(issue: ReadIssue) -> bool:
+    """Whether a skipped issue dropped a whole unit (too few points or curves) or a whole
+    file (no usable rows), not just a row: the reader and ``check_for_model`` word those
+    as ``unit '...' has ...`` and ``no (usable) data rows``."""
+    return issue.message.startswith("unit ") or issue.message in ("no data rows", "no usable data rows")
+
+
+def _read_inputs(files, skip_bad):
+    """Read the curve files; ``-`` is standard input.  A file given twice, or the same unit
+    (tube and section) in two files, is an input error: both would be fitted and the second
+    model card would overwrite the first."""
+    from ..reader import ReadResult, read_text
+
+    seen = {}
+    for f in files:
+        key = "-" if str(f) == "-" else str(Path(f).resolve())
+        if key in seen:
+            fail_input(f"{f}: given twice (as argument {seen[key]} and {len(seen) + 1})"
+                       if key != "-" else "-: standard input given twice")
+        seen[key] = len(seen) + 1
+    paths = [f for f in files if str(f) != "-"]
+    read = read_curves(paths, skip_bad=skip_bad) if paths else ReadResult()
+    if "-" in seen:
+        raw = sys.stdin.buffer.read() if hasattr(sys.stdin, "buffer") else sys.stdin.read().encode()
+        try:
+            text = raw.decode("utf-8-sig")
+        except UnicodeDecodeError as e:
+            line = raw[: e.start].count(b"\n") + 1
+            raise CurveReadError([ReadIssue("<stdin>", line, None, "not UTF-8 text (is this a CSV file?)")]) from None
+        read.extend(read_text(text, "<stdin>", default_tube="stdin", skip_bad=skip_bad))
+    where = {}
+    for u in read.units:
+        key = (u.tube, u.section)
+        if key in where and where[key] != u.source:
+            fail_input(f"unit {u.label!r} is in both {where[key]} and {u.source}; give each unit once "
+                       "(or name the tube apart with a '# tube:' line)")
+        where.setdefault(key, u.source)
+    return read
 
 
 def _dummy(result):

@@ -254,6 +254,12 @@ def _make_stage_command(kind):
     opts, builder, doc = _KIND[kind]
 
     def command(**o):
+        if o["spread"]:
+            ignored = [opt for key, opt in (("tube", "--tube"), ("bottom", "--bottom"), ("top", "--top"),
+                                            ("plot", "--plot")) if o.get(key) is not None]
+            if ignored:
+                _fail(f"--spread takes its tubes from {o['spread']} and draws no plot; "
+                      f"leave out {', '.join(ignored)}")
         st = builder(o)
         try:
             if o["spread"]:
