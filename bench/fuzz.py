@@ -549,6 +549,10 @@ def build_case(seed: int, i: int, seeds: dict) -> Case:
         invalid = None if not (invalid and invalid2) else True
     if data == base:
         invalid = False
+    if invalid is False and name == "export csv" and "valid_range" in label:
+        invalid = None  # without a fitted range, export csv asks for --va/--vg by design
+    if invalid is False and label == "csv-swap-columns" and layout == "wide":
+        invalid = None  # the wide layout's first column must be va
     return Case(i, name, layout, label, invalid, args, data)
 
 
@@ -669,29 +673,45 @@ class Summary:
             lines.append(f"  {k:<10} {cls[k]:>5}")
         fails = self.failures
         lines.append(f"cases with a failure: {len(fails)} of {n}")
+        known = collections.Counter(c.invalid for c in self.cases)
+        refused = collections.Counter(c.mutation for c in self.cases if c.invalid is False and c.exit_code == 1)
+        lines.append(f"inputs the fuzzer knows are invalid: {known[True]}, valid: {known[False]}, "
+                     f"cannot tell: {known[None]}")
+        lines.append(f"valid inputs refused with exit 1 (not a failure; watch for over-strict readers): "
+                     f"{sum(refused.values())}" + (" (" + ", ".join(f"{k} {v}" for k, v in refused.most_common(8)) + ")"
+                                                   if refused else ""))
         if fails:
             lines.append("")
             lines.append("failures by class, command and mutation:")
             grouped = collections.Counter((f, c.command, c.mutation) for c in fails for f in c.failures)
             for (f, cmd, mut), k in sorted(grouped.items(), key=lambda x: (x[0][0], -x[1], x[0][1:])):
                 lines.append(f"  {f:<10} {cmd:<22} {mut:<34} {k:>5}")
-            exc = collections.Counter()
-            for c in fails:
-                if "traceback" in c.failures:
-                    m = re.findall(r"^(\w+(?:Error|Exception|Exit)\w*)(?::|$)", c.output, re.MULTILINE)
-                    exc[m[-1] if m else "?"] += 1
+            exc = collections.Counter(_traceback_place(c.output) for c in fails if "traceback" in c.failures)
             if exc:
-                lines.append("tracebacks by exception: " + ", ".join(f"{k} {v}" for k, v in exc.most_common()))
+                lines.append("")
+                lines.append("tracebacks by exception and the last Platebook line it passed:")
+                for k, v in exc.most_common():
+                    lines.append(f"  {v:>5}  {k}")
             lines.append("")
             lines.append(f"first {min(shown, len(fails))} failures (rerun one with --seed {seed} --case N --show):")
             for c in fails[:shown]:
                 head = [s for s in c.output.splitlines() if s.strip()]
-                tail = head[-1:] if "traceback" in c.failures and len(head) > 3 else []
+                if "traceback" in c.failures:
+                    exc = [s for s in head if re.match(r"^\w+(Error|Exception)\w*(:|$)", s)]
+                    head = [_traceback_place(c.output)] + exc[-1:]
                 lines.append(f"  case {c.case}: {','.join(c.failures)}; {c.command}; {c.layout} {c.mutation}; "
                              f"exit {c.exit_code}")
-                for s in head[:3] + tail:
+                for s in head[:3]:
                     lines.append("      " + _printable(s)[:160])
         return "\n".join(lines)
+
+
+def _traceback_place(output: str) -> str:
+    """``ExceptionName at fitter/card.py:123 (load_card)`` for a traceback in ``output``."""
+    names = re.findall(r"^(\w+(?:Error|Exception|Exit|Interrupt)\w*)(?::|$)", output, re.MULTILINE)
+    frames = re.findall(r'File "[^"]*?/(fitter/[^"]+)", line (\d+), in (\w+)', output)
+    where = f" at {frames[-1][0]}:{frames[-1][1]} ({frames[-1][2]})" if frames else ""
+    return (names[-1] if names else "?") + where
 
 
 def _printable(s: str) -> str:
@@ -721,10 +741,21 @@ def run_fuzz(count: int, seed: int = 1, processes: int | None = None, limit: flo
         return Summary(cases)
     ctx = multiprocessing.get_context("fork")
     with ctx.Pool(nproc, initializer=_worker_init, initargs=(seeds, limit, seed), maxtasksperchild=500) as pool:
-        for c in pool.imap_unordered(_worker_run, ids, chunksize=4):
-            cases.append(c)
-            if progress:
-                progress(len(cases))
+        it = pool.imap_unordered(_worker_run, ids)  # chunksize 1: only its iterator has next(timeout)
+        try:
+            for _ in ids:
+                # the alarm inside a case cannot stop a loop in C code; this guard can
+                cases.append(it.next(timeout=4 * limit + 60))
+                if progress:
+                    progress(len(cases))
+        except multiprocessing.TimeoutError:
+            pool.terminate()
+            done = {c.case for c in cases}
+            for i in ids:
+                if i not in done:
+                    c = build_case(seed, i, seeds)
+                    c.failures, c.output = ["hang"], "(a worker stopped answering; this case was not finished)"
+                    cases.append(c)
     cases.sort(key=lambda c: c.case)
     return Summary(cases)
 
