@@ -257,3 +257,61 @@ def test_numbers_next_to_options_are_not_taken_for_options(card):
     r = run("point", card, "--vg", "-2V", "--va", "200")
     assert r.exit_code == 0 and "vg -2 V" in r.stdout
     assert np.isfinite(parse_value("-0"))
+
+
+# -- whole numbers, options that do not apply, engine names ----------------------------
+
+
+@pytest.mark.parametrize("args, option", [
+    (["fit", "{lot}", "--jobs", "0"], "--jobs"),
+    (["fit", "{lot}", "--jobs", "1.5"], "--jobs"),
+    (["fit", "{lot}", "--jobs", "nan"], "--jobs"),
+])
+def test_whole_number_options_give_one_line_errors(lot, args, option):
+    one_line_error(run(*[a.format(lot=lot) for a in args]), option)
+
+
+def test_distortion_levels_out_of_range_is_one_line(card):
+    r = run("distortion", "common-cathode", "--tube", card, "--bplus", "300", "--ra", "100k", "--rk", "1.5k",
+            "--sweep", "--levels", "1")
+    one_line_error(r, "--levels", "from 2 to 400")
+
+
+@pytest.fixture
+def pair_folder(tmp_path):
+    folder = tmp_path / "pair"
+    folder.mkdir()
+    for sec, kg1 in (("A", 1060.0), ("B", 1070.0)):
+        save_card(folder / f"HX_{sec}.koren.json",
+                  FittedTriode("koren", dict(KOREN_12AX7, kg1=kg1), tube="HX", section=sec))
+    return folder
+
+
+@pytest.mark.parametrize("extra, named", [
+    (["--target-split", "60"], "--target-split"),
+    (["--target-ma", "1"], "--target-ma"),
+    (["--same-bottle"], "--same-bottle"),
+])
+def test_match_refuses_stack_assignment_options_without_stages(pair_folder, extra, named):
+    # they used to be ignored silently for a fixed-bias match
+    one_line_error(run("match", pair_folder, "--va", "250", "--vg", "-2", *extra), named, "--stages")
+
+
+@pytest.mark.parametrize("stages, words", [("0", "of at least 1"), ("1.5", "whole number")])
+def test_match_stages_must_be_a_whole_number(pair_folder, stages, words):
+    r = run("match", pair_folder, "--stack", "srpp", "--bplus", "300", "--rk", "1.5k", "--r-top", "1.5k",
+            "--stages", stages)
+    one_line_error(r, "--stages", words)
+
+
+def test_match_target_split_is_a_percentage_below_100(pair_folder):
+    r = run("match", pair_folder, "--stack", "srpp", "--bplus", "300", "--rk", "1.5k", "--r-top", "1.5k",
+            "--stages", "1", "--target-split", "150")
+    one_line_error(r, "--target-split", "between 0 and 100 %")
+
+
+def test_stage_swing_error_names_the_option(card):
+    r = run("stage", "common-cathode", "--tube", card, "--bplus", "300", "--ra", "100k", "--rk", "1.5k",
+            "--swing", "-5")
+    one_line_error(r, "--swing")
+    assert "slew_vpeak" not in r.stderr

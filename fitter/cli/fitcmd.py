@@ -10,7 +10,7 @@ from pathlib import Path
 import click
 
 from . import fail, main
-from .options import OptionError, Value, number
+from .options import Count, OptionError, Value, number
 from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
 from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
@@ -112,7 +112,7 @@ def _table(rows_by_unit, multi: bool) -> str:
 @click.option("--floor", default=0.02, show_default=True, type=Value(1e-6, 1.0),
               help="Floor of the relative weighting, as a fraction of each unit's largest current.")
 @click.option("--plain", is_flag=True, help="Plain weighted least squares (no robust loss, no outliers).")
-@click.option("--jobs", type=click.IntRange(1, 256), default=None,
+@click.option("--jobs", type=Count(1, 256), default=None,
               help="Worker processes (default: all cores).")
 @click.option("--residuals", is_flag=True, help="With --json, include every point's residual.")
 def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_items, floor, plain, jobs,

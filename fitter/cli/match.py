@@ -21,7 +21,7 @@ from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchErr
 from ..models import get_model
 from ..triode import FittedTriode
 from . import fail, main, value
-from .options import OptionError, Value, number
+from .options import Count, OptionError, Value, number
 
 
 def _fail(message: str, code: int = 1):
@@ -186,7 +186,7 @@ def read_fits(path):
               help="A stacked stage: SRPP or mu follower (with --bplus, --rk, --r-top, --r-mid).")
 @click.option("--r-top", default=None, help="Stack: resistor from the top cathode to the mid node [ohm].")
 @click.option("--r-mid", default=None, help="Mu follower: load resistor between the tubes [ohm].")
-@click.option("--stages", type=int, default=None,
+@click.option("--stages", type=Count(1), default=None,
               help="Stacked assignment: fill this many identical stacks (2 for left/right channels).")
 @click.option("--slot", type=click.Choice(["bottom", "top"]), default=None,
               help="Match units for one slot of the stack, with --partner in the other slot.")
@@ -252,10 +252,19 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
                 stack = Stack.mu_follower(b_plus=b, rk=k, r_top=t, r_mid=m)
         except ValueError as e:
             _fail(f"--stack: {e}")
+    if stages is None:
+        source = click.get_current_context().get_parameter_source("target_split")
+        stray = [opt for opt, given in (("--target-ma", target_ma is not None),
+                                        ("--target-split", source == click.core.ParameterSource.COMMANDLINE),
+                                        ("--same-bottle", same_bottle)) if given]
+        if stray:
+            _fail(f"{', '.join(stray)}: only for a stacked assignment (--stack with --stages N)")
     if stages is not None:
         if stack is None:
             _fail("--stages: give the stacked stage with --stack (and --bplus, --rk, --r-top)")
         split = _percent(target_split, "--target-split")
+        if split >= 100:
+            _fail(f"--target-split: must lie between 0 and 100 %, got {target_split!r}")
         tm = None if target_ma is None else _number(target_ma, "--target-ma")
         try:
             res = assign_stacks(units, stack, stages, target_ma=tm, target_split=split / 100.0,

@@ -18,7 +18,7 @@ import click
 
 from ..units import parse_value
 
-__all__ = ["OptionError", "Value", "number", "option_name"]
+__all__ = ["OptionError", "Value", "Count", "number", "option_name"]
 
 
 class OptionError(click.ClickException):
@@ -114,3 +114,24 @@ class Value(click.ParamType):
     def convert(self, value, param, ctx):
         return number(value, option_name(param), low=self.low, high=self.high, low_open=self.low_open,
                       high_open=self.high_open, percent=self.percent, what=self.what)
+
+
+class Count(click.ParamType):
+    """A click type for a whole number within a range (``--jobs``, ``--levels``), with the
+    same one-line errors as :class:`Value`."""
+
+    name = "integer"
+
+    def __init__(self, low: int | None = None, high: int | None = None):
+        self.low, self.high = low, high
+
+    def convert(self, value, param, ctx):
+        option = option_name(param)
+        v = number(value, option)
+        if v != int(v):
+            raise OptionError(f"{option}: must be a whole number, got {_shown(value)!r}")
+        if (self.low is not None and v < self.low) or (self.high is not None and v > self.high):
+            span = (f"from {self.low} to {self.high}" if self.low is not None and self.high is not None
+                    else f"of at least {self.low}" if self.low is not None else f"of at most {self.high}")
+            raise OptionError(f"{option}: must be a whole number {span}, got {_shown(value)!r}")
+        return int(v)

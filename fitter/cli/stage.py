@@ -17,7 +17,7 @@ import click
 from ..card import CardError, load_card, load_cards
 from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
 from . import fail, main, value
-from .options import OptionError, number
+from .options import Count, OptionError, number
 
 
 #: engine field names -> the options that set them, so errors name what the user typed
@@ -28,7 +28,7 @@ _OPTION_OF = {
     "vhk_max": "--vhk-max", "vneg": "--vneg", "r_upper": "--r-upper", "r_lower": "--r-lower",
     "r_top": "--r-top", "r_mid": "--r-mid", "top_grid": "--top-grid", "rg_top": "--rg-top",
     "c_top": "--c-top", "output": "--output", "vin_peak": "--vin", "vout_peak": "--vout",
-    "levels": "--levels", "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset",
+    "levels": "--levels", "thd_limit": "--thd-limit", "slew_vpeak": "--swing", "n_samples": "--samples", "grid_onset": "--grid-onset",
 }
 
 
@@ -366,12 +366,12 @@ def _make_distortion_command(kind):
         click.option("--vin", default=None, help="Input grid amplitude [V peak]."),
         click.option("--vout", default=None, help="Output fundamental amplitude [V peak]."),
         click.option("--sweep", is_flag=True, help="Sweep THD against output level."),
-        click.option("--levels", default=30, show_default=True, type=click.IntRange(2, 400),
+        click.option("--levels", default=30, show_default=True, type=Count(2, 400),
                      help="Levels in the sweep."),
         click.option("--thd-limit", default="1%", show_default=True, help="THD threshold for the headroom."),
         click.option("--grid-onset", default="0", show_default=True,
                      help="Grid-cathode voltage taken as grid-current onset [V]."),
-        click.option("--samples", default=256, show_default=True, type=click.IntRange(32, 8192),
+        click.option("--samples", default=256, show_default=True, type=Count(32, 8192),
                      help="Samples per period."),
         click.option("--plot", default=None,
                      help="Save a PNG: THD against level (--sweep) or the waveform and spectrum."),
