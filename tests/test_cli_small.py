@@ -315,3 +315,15 @@ def test_stage_swing_error_names_the_option(card):
             "--swing", "-5")
     one_line_error(r, "--swing")
     assert "slew_vpeak" not in r.stderr
+
+
+def test_stage_spread_refuses_a_unit_counted_twice(tmp_path):
+    # the same card under two file names would weigh twice in min/median/max
+    folder = tmp_path / "dup"
+    folder.mkdir()
+    t = FittedTriode("koren", KOREN_12AX7, tube="HX", section="A")
+    save_card(folder / "a.json", t)
+    save_card(folder / "b.json", t)
+    save_card(folder / "c.json", FittedTriode("koren", dict(KOREN_12AX7, kg1=1100.0), tube="HY", section="A"))
+    r = run("stage", "common-cathode", "--bplus", "300", "--ra", "100k", "--rk", "1.5k", "--spread", folder)
+    one_line_error(r, "--spread", "'HX:A' appears 2 times")

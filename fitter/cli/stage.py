@@ -10,7 +10,7 @@ from __future__ import annotations
 import glob
 import json
 import re
-from collections import defaultdict
+from collections import Counter, defaultdict
 
 import click
 
@@ -216,6 +216,12 @@ def _spread_cases(kind, where):
             units = load_cards(where)
     except CardError as e:
         _fail(f"--spread: {e}")
+    labels = Counter(u.label for u in units)
+    twice = sorted(k for k, n in labels.items() if n > 1)
+    if twice:
+        _fail(f"--spread: unit {twice[0]!r} appears {labels[twice[0]]} times in {where}"
+              + (f" (and {len(twice) - 1} more unit(s))" if len(twice) > 1 else "")
+              + "; each unit once, or the spread counts it twice")
     if kind != "stack":
         return units, None, ""
     by_tube = defaultdict(list)
