@@ -327,3 +327,23 @@ def test_stage_spread_refuses_a_unit_counted_twice(tmp_path):
     save_card(folder / "c.json", FittedTriode("koren", dict(KOREN_12AX7, kg1=1100.0), tube="HY", section="A"))
     r = run("stage", "common-cathode", "--bplus", "300", "--ra", "100k", "--rk", "1.5k", "--spread", folder)
     one_line_error(r, "--spread", "'HX:A' appears 2 times")
+
+
+def test_export_output_dash_is_standard_output(card, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    r = run("export", card, "--format", "spice", "-o", "-")
+    assert r.exit_code == 0 and r.stdout.startswith("* Platebook SPICE model")
+    assert not (tmp_path / "-").exists()  # no file named '-'
+
+
+def test_match_refuses_csv_to_standard_output(pair_folder, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    one_line_error(run("match", pair_folder, "--va", "250", "--vg", "-2", "--csv", "-"), "--csv")
+    assert not (tmp_path / "-").exists()
+
+
+def test_point_prints_no_negative_zero(card):
+    # at a negative plate voltage the Koren current is cut off: 0 mA/V, not '-0'
+    r = run("point", card, "--va", "-100", "--vg", "0")
+    assert r.exit_code == 0
+    assert "= -0 " not in r.stdout and "gm = 0" in r.stdout

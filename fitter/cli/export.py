@@ -113,7 +113,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
     except ExportError as e:
         _fail(str(e))
 
-    if output is None:
+    if output is None or output == "-":  # '-': standard output, as for most command-line tools
         click.echo(text, nl=False)
         return
     try:

@@ -296,6 +296,7 @@ def point_command(card, va, vg, as_json):
     def pm(v, e, unit, spec=".4g"):
         if v is None:
             return "-"
+        v += 0.0  # -0.0 (cut off) prints as 0
         return (f"{v:{spec}} ± {e:.2g} {unit}" if e is not None else f"{v:{spec}} {unit}").rstrip()
 
     click.echo(f"{triode.label} ({triode.model.name}) at va {va:g} V, vg {vg:g} V")

@@ -228,6 +228,8 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
     --stack with --slot and --partner (one slot of a stacked stage).  With --stack and
     --stages N, assign units to the bottom and top of N identical stacks instead.
     """
+    if csv_path == "-":
+        _fail("--csv -: give a file name (the table or the JSON goes to standard output)")
     units, failed = read_fits(fits)
     try:
         units = select_units(units, _labels(only), _labels(exclude)) if units else units
