@@ -124,6 +124,13 @@ def make_seeds(folder: Path) -> dict:
     if r.exit_code != 0:
         raise RuntimeError(f"the fuzzer's seed fit --json failed (exit {r.exit_code}):\n{r.output}")
     seeds["fitjson"] = r.stdout.encode()
+    # the same bytes on every run, so that a seed and a case id name one input: no temporary
+    # folder name, no time of creation
+    card = json.loads(seeds["card"])
+    card["created"] = "2026-12-01T00:00:00+00:00"
+    seeds["card"] = (json.dumps(card, indent=2) + "\n").encode()
+    for k in ("card", "fitjson"):
+        seeds[k] = seeds[k].replace(str(folder).encode(), b"fuzz")
     return seeds
 
 
@@ -193,7 +200,8 @@ def m_non_utf8(rng, data):
 
 
 def m_latin1(rng, data):
-    return data.decode("utf-8", "replace").replace("F1", "Fü").replace("W1", "Wü").encode("latin-1", "replace"), "latin-1", None
+    text = data.decode("utf-8", "replace").replace("F1", "Fü").replace("W1", "Wü")
+    return text.encode("latin-1", "replace"), "latin-1", None
 
 
 def m_bom(rng, data):
@@ -765,8 +773,9 @@ def save_failures(summary: Summary, folder: Path, seed: int) -> None:
     for c in summary.failures:
         suffix = ".csv" if c.layout in ("long", "wide") else ".json"
         (folder / f"case{c.case}{suffix}").write_bytes(c.data)
+        command = " ".join(a.replace("{f}", f"case{c.case}{suffix}") for a in c.args)
         (folder / f"case{c.case}.txt").write_text(
-            f"seed {seed} case {c.case}\ncommand: platebook {' '.join(a.replace('{f}', f'case{c.case}{suffix}') for a in c.args)}\n"
+            f"seed {seed} case {c.case}\ncommand: platebook {command}\n"
             f"mutation: {c.mutation} (input known invalid: {c.invalid})\nexit: {c.exit_code}\n"
             f"failures: {', '.join(c.failures)}\n\n{c.output}\n", errors="replace")
 

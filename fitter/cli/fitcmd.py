@@ -121,7 +121,8 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
 
     FILE is CSV in the long layout (tube, section, va, vg, ia_ma / ia_a / ia_ua, optional
     ig_*) or the wide layout (va, then ia_ma@vg=<V> columns). Each (tube, section) is
-    one unit. Exit status: 0 all fits good, 1 input error, 2 one or more fits failed.
+    one unit; FILE '-' is standard input. Exit status: 0 all fits good, 1 input error, 2 one
+    or more fits failed (or --skip-bad left out a whole unit).
     """
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")

@@ -28,7 +28,8 @@ _OPTION_OF = {
     "vhk_max": "--vhk-max", "vneg": "--vneg", "r_upper": "--r-upper", "r_lower": "--r-lower",
     "r_top": "--r-top", "r_mid": "--r-mid", "top_grid": "--top-grid", "rg_top": "--rg-top",
     "c_top": "--c-top", "output": "--output", "vin_peak": "--vin", "vout_peak": "--vout",
-    "levels": "--levels", "thd_limit": "--thd-limit", "slew_vpeak": "--swing", "n_samples": "--samples", "grid_onset": "--grid-onset",
+    "levels": "--levels", "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset",
+    "slew_vpeak": "--swing",
 }
 
 
