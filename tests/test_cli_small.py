@@ -191,10 +191,13 @@ def test_stage_spread_refuses_bottom_and_top(card, tmp_path):
 # -- --skip-bad ----------------------------------------------------------------------
 
 
-def test_skip_bad_dropping_a_unit_exits_2(tmp_path, synth, tube_types, write_long):
+@pytest.mark.parametrize("grid, va_max", [
+    ([-1.0], 400.0),  # one grid curve: the reader drops the unit (mu cannot be identified)
+    ([-1.0, -2.0], 30.0),  # 6 points: fewer than the Koren model's 5 parameters need (check_for_model)
+])
+def test_skip_bad_dropping_a_unit_exits_2(tmp_path, synth, tube_types, write_long, grid, va_max):
     good = synth(tube_types["12AX7"], seed=1, tube="V1", section="A")
-    # a unit traced at one grid voltage only: --skip-bad drops it whole (mu cannot be identified)
-    lone = synth(tube_types["12AX7"], seed=2, tube="V9", section="A", grid_voltages=[-1.0])
+    lone = synth("koren", KOREN_12AX7, grid_voltages=grid, va_max=va_max, seed=2, tube="V9", section="A")
     path = write_long(tmp_path / "lot.csv", [good, lone])
     r = run("fit", path, "--skip-bad", "--jobs", "1")
     assert r.exit_code == 2, r.output
