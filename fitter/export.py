@@ -412,10 +412,14 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
             raise ExportError(f"{what}: stop is below start in {text!r}")
         if b > a and h > b - a:
             raise ExportError(f"{what}: the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}")
-        n = int(math.floor((b - a) / h + 1e-9)) + 1
-        if n > 100_000:
-            raise ExportError(f"{what}: {text!r} gives {n:.3g} points; at most 100000")
-        return np.round(a + h * np.arange(n), 12)
+        steps = (b - a) / h  # inf when the range or the ratio is beyond a float
+        if not steps < 100_000:
+            raise ExportError(f"{what}: {text!r} gives too many points; at most 100000")
+        n = int(math.floor(steps + 1e-9)) + 1
+        with np.errstate(over="ignore", invalid="ignore"):
+            raw = a + h * np.arange(n)
+            grid = np.round(raw, 12)  # (rounding scales by 1e12: keep the raw value where that overflows)
+        return np.where(np.isfinite(grid), grid, raw)
     try:
         vals = np.array([parse_value(x, what) for x in s.split(",") if x.strip() != ""])
     except ValueError:

@@ -350,3 +350,22 @@ def test_point_prints_no_negative_zero(card):
     r = run("point", card, "--va", "-100", "--vg", "0")
     assert r.exit_code == 0
     assert "= -0 " not in r.stdout and "gm = 0" in r.stdout
+
+
+# -- finite but absurd numbers: no inf figure, no dashes passed off as a result ---------
+
+
+def test_point_far_outside_any_tube_is_a_failure_not_dashes(card):
+    # at 1e308 V the Koren current overflows: no figures, exit 2 (a failed computation)
+    r = run("point", card, "--va", "1e308", "--vg", "0")
+    assert r.exit_code == 2 and "no finite plate current" in r.stderr
+    assert "ia = -" not in r.stdout
+
+
+def test_export_grid_that_overflows_the_model_prints_no_inf(card):
+    r = run("export", card, "--format", "csv", "--va", "0:1e300:1e296", "--vg", "0")
+    assert r.exit_code == 2 and "no finite plate current" in r.stderr
+    assert "inf" not in r.stdout and "Warning" not in r.stderr
+    # a range wider than a float (1e308 - -1e308 overflows): refused, not a traceback
+    one_line_error(run("export", card, "--format", "csv", "--va=-1e308:1e308:1e307", "--vg", "0"),
+                   "--va", "at most 100000")

@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import click
+import numpy as np
 
 from ..card import CardError, load_card
 from ..export import (
@@ -99,7 +100,12 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
                 va, vg = default_sweep(triode)
             else:
                 va, vg = parse_sweep(va_spec, "--va"), parse_sweep(vg_spec, "--vg")
-            fam = curve_family(triode, va, vg, tube=name)
+            with np.errstate(all="ignore"):  # overflow far out is caught on the result just below
+                fam = curve_family(triode, va, vg, tube=name)
+            if not np.all(np.isfinite(fam.ia)):
+                bad = int(np.argmax(~np.isfinite(fam.ia)))
+                fail(f"--va/--vg: the model gives no finite plate current at va {fam.va[bad]:g} V, "
+                     f"vg {fam.vg[bad]:g} V; choose a grid within a tube's range", 2)
             if triode.outside_range(va, vg):
                 r = triode.valid_range
                 click.echo(

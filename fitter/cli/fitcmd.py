@@ -281,11 +281,18 @@ def point_command(card, va, vg, as_json):
         triode = load_card(card)
     except CardError as e:
         fail_input(str(e))
-    with warnings.catch_warnings(record=True) as caught:
+    import numpy as np
+
+    with warnings.catch_warnings(record=True) as caught, np.errstate(all="ignore"):
+        # numpy's overflow far outside any tube is caught on the figures below, not printed
         warnings.simplefilter("always", OutsideDataWarning)
         ss = triode.small_signal(va, vg)
     notes = [str(w.message) for w in caught if issubclass(w.category, OutsideDataWarning)]
     d = ss.to_dict()
+    if d["ia_ma"] is None or d["gm_ms"] is None:
+        # no finite current (e.g. --va 1e308): not a result, so not exit 0 with dashes
+        fail(f"{triode.label}: the model gives no finite plate current at va {va:g} V, vg {vg:g} V; "
+             "no figures there", 2)
     if as_json:
         d.update({"tube": triode.tube, "section": triode.section, "model": triode.model.name,
                   "warnings": notes})
