@@ -6,7 +6,8 @@ deleted/duplicated/swapped lines, random bytes, non-UTF-8, BOM, CR line ends, hu
 non-finite numbers, negative zero, deep JSON nesting, wrong JSON types in every card field,
 extra fields, very long strings, control characters in names, swapped columns, empty files)
 and runs the commands that read them, in-process (click's test runner), on a pool of worker
-processes.
+processes.  About one case in seven instead gives valid inputs and one numeric option an odd
+value (nan, 1e400, a unicode minus, 1e308, 1e-320, -0, an empty string, 2V, 5%, ...).
 
 Each case is classified; these are failures:
 
@@ -18,7 +19,8 @@ accepted
     bad input accepted: exit 0 although the fuzzer knows the mutation made the input
     invalid (a non-finite or out-of-bounds parameter, a wrong-type card field, a name with
     control characters, a broken covariance, a non-finite or unreadable number in a data
-    row of a CSV file read without --skip-bad, a row dropped by --skip-bad without a word);
+    row of a CSV file read without --skip-bad, a row dropped by --skip-bad without a word,
+    an option value that is not a finite number);
 nan
     ``nan`` or ``inf`` printed as a figure (a token the input did not contain);
 control
@@ -509,6 +511,29 @@ COMMANDS = [
     ("match", "fitjson", ["match", "{f}", "--va", "200", "--vg", "-1.5"]),
 ]
 
+_STAGE = ["--tube", "{f}", "--bplus", "300", "--ra", "100k", "--rk", "1.5k"]
+#: valid inputs, one numeric option given an odd value X: (name, input, arguments)
+OPTION_COMMANDS = [
+    ("point --va X", "card", ["point", "{f}", "--va", "{x}", "--vg", "-1.5"]),
+    ("point --vg X", "card", ["point", "{f}", "--va", "200", "--vg", "{x}"]),
+    ("fit --floor X", "long", ["fit", "{f}", "--jobs", "1", "--floor", "{x}"]),
+    ("fit --fix kvb=X", "long", ["fit", "{f}", "--jobs", "1", "--fix", "kvb={x}"]),
+    ("stage --bplus X", "card", ["stage", "common-cathode", *_STAGE[:3], "{x}", *_STAGE[4:]]),
+    ("stage --rk X", "card", ["stage", "common-cathode", *_STAGE[:7], "{x}"]),
+    ("export csv --va X", "card", ["export", "{f}", "--format", "csv", "--va", "0:{x}:50", "--vg", "-2,0"]),
+    ("export csv --vg X", "card", ["export", "{f}", "--format", "csv", "--va", "0:400:50", "--vg", "{x},0"]),
+    ("export spice --cgk X", "card", ["export", "{f}", "--format", "spice", "--cgk", "{x}"]),
+    ("match --vg X", "fitjson", ["match", "{f}", "--va", "200", "--vg", "{x}"]),
+    ("match --tolerance X", "fitjson", ["match", "{f}", "--va", "200", "--vg", "-1.5", "--tolerance", "{x}"]),
+    ("distortion --vout X", "card", ["distortion", "common-cathode", *_STAGE, "--vout", "{x}"]),
+]
+#: option values every command must refuse (not finite, or not a number at all)
+_OPTION_BAD = ["nan", "NaN", "inf", "-inf", "Infinity", "1e400", "-1e400", "9" * 400, "abc", "0x10", "1e",
+               "\u22122", "2 V V"]
+#: odd values the fuzzer cannot judge in general (huge, tiny, signed zero, suffixes, blanks)
+_OPTION_ODD = ["1e308", "-1e308", "1e-320", "-0", "0", "", " 5 ", "+3", "2V", "1K5", "4.7m", "1e6", "-1e6",
+               "5%", "1,5"]
+
 
 class CaseTimeout(BaseException):
     """Raised by the alarm in a case that ran past the wall-clock limit."""
@@ -536,6 +561,13 @@ class Case:
 def build_case(seed: int, i: int, seeds: dict) -> Case:
     """Case ``i`` of run ``seed``: the command, the mutated input and the verdict on it."""
     rng = random.Random(f"platebook-fuzz:{seed}:{i}")
+    if rng.random() < 0.15:
+        name, layout, args = OPTION_COMMANDS[rng.randrange(len(OPTION_COMMANDS))]
+        bad = rng.random() < 0.5
+        x = rng.choice(_OPTION_BAD if bad else _OPTION_ODD)
+        args = [a.replace("{x}", x) for a in args]
+        return Case(i, name, layout, f"option-{'bad' if bad else 'odd'}", True if bad else None, args,
+                    seeds[layout])
     name, kind, args = COMMANDS[rng.randrange(len(COMMANDS))]
     if kind == "csv":
         layout = rng.choice(["long", "wide"])
@@ -670,8 +702,8 @@ class Summary:
             by_cmd[c.command]["hang" if c.exit_code is None else f"exit {c.exit_code}"] += 1
         lines.append("")
         lines.append(f"{'command':<22} {'cases':>6}  exit codes")
-        for cmd, _, _ in COMMANDS:
-            cnt = by_cmd.get(cmd, collections.Counter())
+        for cmd in [c for c, _, _ in COMMANDS + OPTION_COMMANDS if c in by_cmd]:
+            cnt = by_cmd[cmd]
             lines.append(f"{cmd:<22} {sum(cnt.values()):>6}  " + ", ".join(f"{k}: {v}" for k, v in sorted(cnt.items())))
         cls = self.counts()
         lines.append("")
