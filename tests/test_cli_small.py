@@ -367,3 +367,11 @@ def test_export_grid_that_overflows_the_model_prints_no_inf(card):
     # a range wider than a float (1e308 - -1e308 overflows): refused, not a traceback
     one_line_error(run("export", card, "--format", "csv", "--va=-1e308:1e308:1e307", "--vg", "0"),
                    "--va", "at most 100000")
+
+
+def test_skip_bad_dropping_a_whole_file_exits_2(lot, tmp_path):
+    junk = tmp_path / "junk.csv"
+    junk.write_text("tube,section,va,vg,ia_ma\nV7,A,x,y,z\nV7,A,1,2,oops\n")  # no usable row at all
+    r = run("fit", lot, junk, "--skip-bad", "--jobs", "1")
+    assert r.exit_code == 2, r.output
+    assert "junk.csv" in r.stderr and "no usable data rows" in r.stderr and "left out 1 whole" in r.stderr
