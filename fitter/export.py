@@ -66,6 +66,7 @@ import numpy as np
 from .card import card_dict
 from .errors import InputError
 from .text import csv_cell, plain_text, shown
+from .units import parse_value
 from .triode import FittedTriode
 
 __all__ = [
@@ -457,7 +458,7 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
         if len(parts) != 3:
             raise ExportError(f"{what}: {text!r} should be start:stop:step, e.g. 0:400:5")
         try:
-            a, b, h = (float(x) for x in parts)
+            a, b, h = (parse_value(x, what) for x in parts)
         except ValueError:
             raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
         if not all(map(math.isfinite, (a, b, h))):
@@ -468,12 +469,16 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
             raise ExportError(f"{what}: stop is below start in {text!r}")
         if b > a and h > b - a:
             raise ExportError(f"{what}: the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}")
-        n = int(math.floor((b - a) / h + 1e-9)) + 1
-        if n > 100_000:
-            raise ExportError(f"{what}: {text!r} gives {n} points; at most 100000")
-        return np.round(a + h * np.arange(n), 12)
+        steps = (b - a) / h  # inf when the range or the ratio is beyond a float
+        if not steps < 100_000:
+            raise ExportError(f"{what}: {text!r} gives too many points; at most 100000")
+        n = int(math.floor(steps + 1e-9)) + 1
+        with np.errstate(over="ignore", invalid="ignore"):
+            raw = a + h * np.arange(n)
+            grid = np.round(raw, 12)  # (rounding scales by 1e12: keep the raw value where that overflows)
+        return np.where(np.isfinite(grid), grid, raw)
     try:
-        vals = np.array([float(x) for x in s.split(",") if x.strip() != ""])
+        vals = np.array([parse_value(x, what) for x in s.split(",") if x.strip() != ""])
     except ValueError:
         raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
     if vals.size == 0 or not np.all(np.isfinite(vals)):

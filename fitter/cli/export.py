@@ -100,10 +100,16 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
                 va, vg = default_sweep(triode)
             else:
                 va, vg = parse_sweep(va_spec, "--va"), parse_sweep(vg_spec, "--vg")
-            fam = curve_family(triode, va, vg, tube=name)
+            with np.errstate(all="ignore"):  # overflow far out is caught on the result just below
+                fam = curve_family(triode, va, vg, tube=name)
+            if not np.all(np.isfinite(fam.ia)):
+                bad = int(np.argmax(~np.isfinite(fam.ia)))
+                fail(f"--va/--vg: the model gives no finite plate current at va {fam.va[bad]:g} V, "
+                     f"vg {fam.vg[bad]:g} V; choose a grid within a tube's range", 2)
             grid_va, grid_vg = np.meshgrid(va, vg)
-            why = (triode.envelope.outside(grid_va, grid_vg, triode.current)
-                   if triode.envelope is not None else None)
+            with np.errstate(all="ignore"):
+                why = (triode.envelope.outside(grid_va, grid_vg, triode.current)
+                       if triode.envelope is not None else None)
             if why is not None:
                 click.echo(f"warning: the grid reaches outside the measured data ({shown(why)}; "
                            f"{triode.envelope.describe()}); those points are extrapolated", err=True)
@@ -120,7 +126,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
     except ExportError as e:
         _fail(str(e))
 
-    if output is None:
+    if output is None or output == "-":  # '-': standard output, as for most command-line tools
         click.echo(text, nl=False)
         return
     try:

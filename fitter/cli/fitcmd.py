@@ -11,6 +11,7 @@ from pathlib import Path
 import click
 
 from . import fail, main
+from .options import Count, OptionError, Value, number
 from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
 from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
@@ -34,9 +35,10 @@ def _parse_fix(items, model_names):
         name, value = item.split("=", 1)
         name = name.strip()
         try:
-            fix[name] = float(value)
-        except ValueError:
-            fail_input(f"--fix {item!r}: {value!r} is not a number")
+            fix[name] = number(value, f"--fix {name}")
+        except OptionError as e:
+            finite = "not a finite number" in e.format_message()
+            fail_input(f"--fix {item!r}: {value!r} is not a {'finite ' if finite else ''}number")
         known = {p.name for m in model_names for p in get_model(m).params}
         if name not in known:
             fail_input(f"--fix {item!r}: no model being fitted has a parameter {name!r} "
@@ -114,10 +116,10 @@ def _table(rows_by_unit, multi: bool) -> str:
               help="Skip bad rows and units (each one reported) instead of rejecting the file.")
 @click.option("--fix", "fix_items", multiple=True, metavar="NAME=VALUE",
               help="Hold a parameter at a value, e.g. --fix n=1.5 or --fix mu=100. Repeatable.")
-@click.option("--floor", default=0.02, show_default=True, type=click.FloatRange(1e-6, 1.0),
+@click.option("--floor", default=0.02, show_default=True, type=Value(1e-6, 1.0),
               help="Floor of the relative weighting, as a fraction of each unit's largest current.")
 @click.option("--plain", is_flag=True, help="Plain weighted least squares (no robust loss, no outliers).")
-@click.option("--jobs", type=click.IntRange(1, 256), default=None,
+@click.option("--jobs", type=Count(1, 256), default=None,
               help="Worker processes (default: all cores).")
 @click.option("--residuals", is_flag=True, help="With --json, include every point's residual.")
 @click.option("--max-rows", type=click.IntRange(1, None), default=None,
@@ -128,14 +130,15 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
 
     FILE is CSV in the long layout (tube, section, va, vg, ia_ma / ia_a / ia_ua, optional
     ig_*) or the wide layout (va, then ia_ma@vg=<V> columns). Each (tube, section) is
-    one unit. Exit status: 0 all fits good, 1 input error, 2 one or more fits failed.
+    one unit; FILE '-' is standard input. Exit status: 0 all fits good, 1 input error, 2 one
+    or more fits failed (or --skip-bad left out a whole unit).
     """
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
     fix = _parse_fix(fix_items, models)
     try:
-        read = read_curves(files, skip_bad=skip_bad, max_rows=max_rows)
+        read = _read_inputs(files, skip_bad, max_rows)
     except CurveReadError as e:
         fail_input(str(e))
     skipped: list[ReadIssue] = list(read.skipped)
@@ -233,7 +236,11 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
             if not_saved:
                 click.echo("no model card for (fit failed): " + ", ".join(shown(n) for n in not_saved))
         click.echo(CAUTION)
-    if n_failed:
+    dropped = [s for s in skipped if _drops_whole_unit(s)]
+    if dropped:
+        click.echo(f"error: --skip-bad left out {len(dropped)} whole unit(s) or file(s) (listed above as "
+                   "skipped); the results cover only the rest", err=True)
+    if n_failed or dropped:
         raise SystemExit(2)
 
 
@@ -247,6 +254,47 @@ def _notes(rows_by_unit, file_notes) -> str:
     return "\n".join(lines)
 
 
+def _drops_whole_unit(issue: ReadIssue) -> bool:
+    """Whether a skipped issue dropped a whole unit (too few points or curves) or a whole
+    file (no usable rows), not just a row: the reader and ``check_for_model`` word those
+    as ``unit '...' has ...`` and ``no (usable) data rows``."""
+    return issue.message.startswith("unit ") or issue.message in ("no data rows", "no usable data rows")
+
+
+def _read_inputs(files, skip_bad, max_rows=None):
+    """Read the curve files; ``-`` is standard input.  A file given twice, or the same unit
+    (tube and section) in two files, is an input error: both would be fitted and the second
+    model card would overwrite the first."""
+    from ..reader import ReadResult, read_text
+
+    seen = {}
+    for f in files:
+        key = "-" if str(f) == "-" else str(Path(f).resolve())
+        if key in seen:
+            fail_input(f"{f}: given twice (as argument {seen[key]} and {len(seen) + 1})"
+                       if key != "-" else "-: standard input given twice")
+        seen[key] = len(seen) + 1
+    paths = [f for f in files if str(f) != "-"]
+    read = read_curves(paths, skip_bad=skip_bad, max_rows=max_rows) if paths else ReadResult()
+    if "-" in seen:
+        raw = sys.stdin.buffer.read() if hasattr(sys.stdin, "buffer") else sys.stdin.read().encode()
+        try:
+            text = raw.decode("utf-8-sig")
+        except UnicodeDecodeError as e:
+            line = raw[: e.start].count(b"\n") + 1
+            raise CurveReadError([ReadIssue("<stdin>", line, None, "not UTF-8 text (is this a CSV file?)")]) from None
+        read.extend(read_text(text, "<stdin>", default_tube="stdin", skip_bad=skip_bad, max_rows=max_rows))
+    where = {}
+    for u in read.units:
+        key = (u.tube, u.section)
+        if key in where and where[key] != u.source:
+            fail_input(f"unit {u.label!r} is in both {where[key]} and {u.source}; give each unit once "
+                       "(or name the tube apart with a '# tube:' line)")
+        where.setdefault(key, u.source)
+    return read
+
+
+
 def _version():
     from .. import __version__
 
@@ -255,8 +303,8 @@ def _version():
 
 @main.command("point")
 @click.argument("card", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--va", type=float, required=True, help="Plate-to-cathode voltage [V].")
-@click.option("--vg", type=float, required=True, help="Grid-to-cathode voltage [V].")
+@click.option("--va", type=Value(), required=True, help="Plate-to-cathode voltage [V], e.g. 250 or 250V.")
+@click.option("--vg", type=Value(), required=True, help="Grid-to-cathode voltage [V], e.g. -2 or -2V.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
 def point_command(card, va, vg, as_json):
     """Small-signal figures of a fitted unit (model CARD) at one operating point.
@@ -271,11 +319,18 @@ def point_command(card, va, vg, as_json):
         triode = load_card(card)
     except CardError as e:
         fail_input(str(e))
-    with warnings.catch_warnings(record=True) as caught:
+    import numpy as np
+
+    with warnings.catch_warnings(record=True) as caught, np.errstate(all="ignore"):
+        # numpy's overflow far outside any tube is caught on the figures below, not printed
         warnings.simplefilter("always", OutsideDataWarning)
         ss = triode.small_signal(va, vg)
     notes = [str(w.message) for w in caught if issubclass(w.category, OutsideDataWarning)]
     d = ss.to_dict()
+    if d["ia_ma"] is None or d["gm_ms"] is None:
+        # no finite current (e.g. --va 1e308): not a result, so not exit 0 with dashes
+        fail(f"{triode.label}: the model gives no finite plate current at va {va:g} V, vg {vg:g} V; "
+             "no figures there", 2)
     if as_json:
         d.update({"tube": triode.tube, "section": triode.section, "model": triode.model.name,
                   "warnings": notes})
@@ -287,6 +342,7 @@ def point_command(card, va, vg, as_json):
     def pm(v, e, unit, spec=".4g"):
         if v is None:
             return "-"
+        v += 0.0  # -0.0 (cut off) prints as 0
         return (f"{v:{spec}} ± {e:.2g} {unit}" if e is not None else f"{v:{spec}} {unit}").rstrip()
 
     click.echo(f"{triode.label} ({triode.model.name}) at va {va:g} V, vg {vg:g} V")

@@ -19,6 +19,7 @@ from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchErr
                      assign_stacks, match_units, select_units)
 from . import fail, main, value
 from ..text import shown as _shown
+from .options import Count, OptionError, Value, number
 
 
 def _fail(message: str, code: int = 1):
@@ -33,10 +34,10 @@ def _positive(text, option, unreadable, what, shown=None):
     """A positive finite float from ``text``; errors quote ``shown`` (default ``text``)."""
     shown = text if shown is None else shown
     try:
-        v = float(text)
-    except ValueError:
+        v = number(text, option)
+    except OptionError:
         _fail(f"{option}: cannot read {shown!r}{unreadable}")
-    if not (math.isfinite(v) and v > 0):
+    if not v > 0:
         _fail(f"{option}: must be a positive {what}, got {shown!r}")
     return v
 
@@ -105,7 +106,7 @@ def read_fits(path):
               help="A stacked stage: SRPP or mu follower (with --bplus, --rk, --r-top, --r-mid).")
 @click.option("--r-top", default=None, help="Stack: resistor from the top cathode to the mid node [ohm].")
 @click.option("--r-mid", default=None, help="Mu follower: load resistor between the tubes [ohm].")
-@click.option("--stages", type=int, default=None,
+@click.option("--stages", type=Count(1), default=None,
               help="Stacked assignment: fill this many identical stacks (2 for left/right channels).")
 @click.option("--slot", type=click.Choice(["bottom", "top"]), default=None,
               help="Match units for one slot of the stack, with --partner in the other slot.")
@@ -132,7 +133,8 @@ def read_fits(path):
 @click.option("--bottle-balance", default=None, help="Only bottles whose sections agree within this [%].")
 @click.option("--extrapolate", is_flag=True, help="Let units whose data do not cover the position take part.")
 @click.option("--errors", is_flag=True, help="Propagate fit covariances to each unit's figures.")
-@click.option("--time-limit", default=60.0, show_default=True, help="Solver time limit [s].")
+@click.option("--time-limit", default=60.0, show_default=True, type=Value(0, low_open=True, what="time"),
+              help="Solver time limit [s].")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
 @click.option("--csv", "csv_path", default=None, help="Write a CSV (one row per unit) for labelling.")
 def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid, stages, slot, partner,
@@ -146,6 +148,8 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
     --stack with --slot and --partner (one slot of a stacked stage).  With --stack and
     --stages N, assign units to the bottom and top of N identical stacks instead.
     """
+    if csv_path == "-":
+        _fail("--csv -: give a file name (the table or the JSON goes to standard output)")
     units, failed = read_fits(fits)
     try:
         units = select_units(units, _labels(only), _labels(exclude)) if units else units
@@ -170,10 +174,19 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
                 stack = Stack.mu_follower(b_plus=b, rk=k, r_top=t, r_mid=m)
         except ValueError as e:
             _fail(f"--stack: {e}")
+    if stages is None:
+        source = click.get_current_context().get_parameter_source("target_split")
+        stray = [opt for opt, given in (("--target-ma", target_ma is not None),
+                                        ("--target-split", source == click.core.ParameterSource.COMMANDLINE),
+                                        ("--same-bottle", same_bottle)) if given]
+        if stray:
+            _fail(f"{', '.join(stray)}: only for a stacked assignment (--stack with --stages N)")
     if stages is not None:
         if stack is None:
             _fail("--stages: give the stacked stage with --stack (and --bplus, --rk, --r-top)")
         split = _percent(target_split, "--target-split")
+        if split >= 100:
+            _fail(f"--target-split: must lie between 0 and 100 %, got {target_split!r}")
         tm = None if target_ma is None else _number(target_ma, "--target-ma")
         try:
             res = assign_stacks(units, stack, stages, target_ma=tm, target_split=split / 100.0,

@@ -10,13 +10,14 @@ from __future__ import annotations
 import glob
 import json
 import re
-from collections import defaultdict
+from collections import Counter, defaultdict
 
 import click
 
 from ..card import CardError, load_card, load_cards
 from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
 from . import fail, main, value
+from .options import Count, OptionError, number
 
 
 #: engine field names -> the options that set them, so errors name what the user typed
@@ -28,6 +29,7 @@ _OPTION_OF = {
     "r_top": "--r-top", "r_mid": "--r-mid", "top_grid": "--top-grid", "rg_top": "--rg-top",
     "c_top": "--c-top", "output": "--output", "vin_peak": "--vin", "vout_peak": "--vout",
     "levels": "--levels", "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset",
+    "slew_vpeak": "--swing",
 }
 
 
@@ -56,10 +58,9 @@ def _val(text, option, optional=True):
 
 
 def _pct(text, option):
-    s = str(text).strip()
     try:
-        v = float(s[:-1]) if s.endswith("%") else float(s)
-    except ValueError:
+        v = number(text, option, percent=True)
+    except OptionError:
         _fail(f"{option}: cannot read {text!r}; give a percentage such as 1 or 1%")
     if not (0 < v < 100):
         _fail(f"{option}: must lie between 0 and 100 %, got {text!r}")
@@ -216,6 +217,12 @@ def _spread_cases(kind, where):
             units = load_cards(where)
     except CardError as e:
         _fail(f"--spread: {e}")
+    labels = Counter(u.label for u in units)
+    twice = sorted(k for k, n in labels.items() if n > 1)
+    if twice:
+        _fail(f"--spread: unit {twice[0]!r} appears {labels[twice[0]]} times in {where}"
+              + (f" (and {len(twice) - 1} more unit(s))" if len(twice) > 1 else "")
+              + "; each unit once, or the spread counts it twice")
     if kind != "stack":
         return units, None, ""
     by_tube = defaultdict(list)
@@ -261,6 +268,12 @@ def _make_stage_command(kind):
     opts, builder, doc = _KIND[kind]
 
     def command(**o):
+        if o["spread"]:
+            ignored = [opt for key, opt in (("tube", "--tube"), ("bottom", "--bottom"), ("top", "--top"),
+                                            ("plot", "--plot")) if o.get(key) is not None]
+            if ignored:
+                _fail(f"--spread takes its tubes from {o['spread']} and draws no plot; "
+                      f"leave out {', '.join(ignored)}")
         st = builder(o)
         try:
             if o["spread"]:
@@ -367,12 +380,12 @@ def _make_distortion_command(kind):
         click.option("--vin", default=None, help="Input grid amplitude [V peak]."),
         click.option("--vout", default=None, help="Output fundamental amplitude [V peak]."),
         click.option("--sweep", is_flag=True, help="Sweep THD against output level."),
-        click.option("--levels", default=30, show_default=True, type=click.IntRange(2, 400),
+        click.option("--levels", default=30, show_default=True, type=Count(2, 400),
                      help="Levels in the sweep."),
         click.option("--thd-limit", default="1%", show_default=True, help="THD threshold for the headroom."),
         click.option("--grid-onset", default="0", show_default=True,
                      help="Grid-cathode voltage taken as grid-current onset [V]."),
-        click.option("--samples", default=256, show_default=True, type=click.IntRange(32, 8192),
+        click.option("--samples", default=256, show_default=True, type=Count(32, 8192),
                      help="Samples per period."),
         click.option("--plot", default=None,
                      help="Save a PNG: THD against level (--sweep) or the waveform and spectrum."),
