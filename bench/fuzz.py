@@ -280,8 +280,10 @@ def m_csv_missing_field(rng, data, layout):
 def m_csv_extra_field(rng, data, layout):
     ls, head, rows = _csv_rows(data)
     i = rng.choice(rows)
-    ls[i] += "," + rng.choice(["1", "", "x"])
-    return "\n".join(ls).encode(), "csv-extra-field", True
+    extra = rng.choice(["1", "", "x"])
+    ls[i] += "," + extra
+    # an empty trailing cell carries nothing (spreadsheets write them); the reader may take it
+    return "\n".join(ls).encode(), "csv-extra-field", True if extra else None
 
 
 def m_csv_swap_columns(rng, data, layout):
@@ -330,8 +332,9 @@ _TYPES = {"null": None, "list": [1, 2], "dict": {"a": 1}, "string": "zz", "numbe
 _CARD_OK = {
     "format": set(), "version": set(), "model": set(), "params": set(), "free": set(),
     "tube": {"string"}, "section": {"string", "null"}, "covariance": {"null"},
-    "valid_range": {"null", "dict"}, "reference": {"string"}, "created": set(), "platebook": {"string"},
-    "source": set(), "fit": set(), "stderr": set(),
+    "valid_range": {"null"}, "reference": {"string"}, "created": set(), "platebook": {"string"},
+    # one source name as text is what a fit entry holds, and cards accept it too
+    "source": {"string"}, "fit": set(), "stderr": set(),
 }
 #: which wrong types the fuzzer cannot judge: an informational field left out may be fine
 _CARD_UNSURE = {"created": {"string", "null"}, "fit": {"null", "dict"}, "source": {"null", "list"},
