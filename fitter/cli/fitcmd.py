@@ -12,7 +12,6 @@ import click
 from . import fail, main
 from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
-from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
 from ..models import MODELS, get_model
 from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
 from ..triode import OutsideDataWarning
@@ -68,6 +67,8 @@ def _fmt(x, spec=".4g"):
 
 def _table(rows_by_unit, multi: bool) -> str:
     """The readable fit table."""
+    from ..fit import LOOSE_FIT_REL_RMS
+
     head = f"{'unit':<16} {'model':<9} {'pts':>4} {'out':>3} {'rms mA':>8} {'rel %':>6} {'mu':>9}  parameters"
     lines = [head, "-" * len(head)]
     for results in rows_by_unit:
@@ -121,6 +122,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     ig_*) or the wide layout (va, then ia_ma@vg=<V> columns). Each (tube, section) is
     one unit. Exit status: 0 all fits good, 1 input error, 2 one or more fits failed.
     """
+    # the engine (scipy.optimize) only when fitting: `fit --help` and `point` stay quick
+    from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
+
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
