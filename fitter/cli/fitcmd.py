@@ -171,13 +171,17 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
                 save_card(save_dir / card_filename(best.triode), best.triode, best.figures(),
                           [best.unit.source])
     if plot_dir:
-        from ..plotting import save_fit_plot
+        from ..plotting import save_fit_plots
 
         plot_dir.mkdir(parents=True, exist_ok=True)
-        for rs in results:
-            best = rs[0]
-            stem = card_filename(best.triode or _dummy(best)).removesuffix(".json")
-            save_fit_plot(best, plot_dir / f"{stem}.png")
+        best = [rs[0] for rs in results]
+        paths = [plot_dir / (card_filename(b.triode or _dummy(b)).removesuffix(".json") + ".png") for b in best]
+        # progress on stderr when it is a terminal (never with --json, whose terminal shows one object)
+        show = sys.stderr.isatty() and not as_json and len(best) > 1
+        bar = (click.progressbar(length=len(best), label="plotting", file=sys.stderr, show_pos=True)
+               if show else _progress(0, False))
+        with bar:
+            save_fit_plots(best, paths, processes=jobs, progress=bar.update)
 
     n_failed = sum(not rs[0].converged for rs in results)
     if as_json:
