@@ -440,19 +440,24 @@ def whole_process(rng, n_units, repeat, jobs):
             "plain curve_fit": [sys.executable, str(plain), str(csv_path)],
         }
         times = {k: [] for k in cmds}
+        cpus = {k: [] for k in cmds}
         docs = {}
         for _ in range(repeat):
             for name, cmd in cmds.items():
+                c0 = resource.getrusage(resource.RUSAGE_CHILDREN)
                 t0 = time.perf_counter()
                 p = subprocess.run(cmd, env=env, capture_output=True, text=True, cwd=tmp)
                 times[name].append(time.perf_counter() - t0)
+                c1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+                cpus[name].append(c1.ru_utime + c1.ru_stime - c0.ru_utime - c0.ru_stime)
                 if p.returncode not in (0, 2):
                     raise SystemExit(f"{name} failed ({p.returncode}): {p.stderr[-500:]}")
                 docs[name] = json.loads(p.stdout)
         for name, t in times.items():
             at, failed = _floor_count(units, docs[name])
             print(f"  {name:<16} wall " + " ".join(f"{x:.2f}" for x in t)
-                  + f" s; median {statistics.median(t):.2f} s;  noise floor reached on {at} of "
+                  + f" s; median {statistics.median(t):.2f} s (CPU of its processes "
+                  f"{statistics.median(cpus[name]):.2f} s);  noise floor reached on {at} of "
                   f"{n_units} units ({failed} reported failed)")
         ratio = statistics.median(times["platebook fit"]) / statistics.median(times["plain curve_fit"])
         print(f"  ratio platebook / plain: {ratio:.2f} (goal <= 0.8)")

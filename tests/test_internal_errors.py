@@ -98,3 +98,46 @@ def test_no_traceback_reaches_a_user_of_the_real_entry_point(card):
     assert p.returncode == 3
     assert p.stderr.splitlines() == ["internal error: RuntimeError: engine broke — please report it; "
                                      "run with --debug for details"]
+
+
+def test_unwritable_folder_is_an_input_error_not_a_bug(card, tmp_path, monkeypatch):
+    # an OSError naming a file (here: the folder for --save cannot be made) is about the
+    # user's path: exit 1 with the path and the system's reason, no "internal error"
+    import pathlib
+
+    def refuse(self, *a, **k):
+        raise PermissionError(13, "Permission denied", str(self))
+
+    monkeypatch.setattr(pathlib.Path, "mkdir", refuse)
+
+    csv = tmp_path / "one.csv"
+    csv.write_text("va,ia_ma@vg=0,ia_ma@vg=-1\n50,1.0,0.4\n100,3.0,1.5\n150,6.0,3.2\n200,9.5,5.5\n"
+                   "250,13.0,8.0\n300,17.0,11.0\n")
+    r = run("fit", csv, "--save", tmp_path / "cards")
+    assert r.exit_code == 1, r.stderr
+    assert r.stderr.strip().endswith(f"error: {tmp_path / 'cards'}: Permission denied")
+    assert "internal error" not in r.stderr
+
+
+def test_an_oserror_without_a_file_is_still_a_bug(card, monkeypatch):
+    def boom(self, va, vg):
+        raise OSError("device went away")
+
+    monkeypatch.setattr(FittedTriode, "small_signal", boom)
+    r = run("point", card, "--va", 250, "--vg", -2, env={"PLATEBOOK_DEBUG": ""})
+    assert r.exit_code == 3 and r.stderr.startswith("internal error: OSError: device went away")
+
+
+def test_closed_output_pipe_exits_quietly(card):
+    # `platebook point ... | head` where the reader has gone: no traceback, no bug report
+    import os
+
+    r, w = os.pipe()
+    os.close(r)
+    try:
+        p = subprocess.run([sys.executable, "-m", "fitter", "point", str(card), "--va", "250", "--vg", "-2"],
+                           stdout=w, stderr=subprocess.PIPE, text=True)
+    finally:
+        os.close(w)
+    assert p.returncode == 1
+    assert p.stderr == ""

@@ -47,8 +47,9 @@ class _Group(click.Group):
       failed), so that a script can tell a typo from a failed fit.
     * Commands are loaded on demand from :data:`COMMANDS`.
     * An exception that escapes a command is either an input error (an
-      :class:`~fitter.errors.InputError` the command did not catch itself: exit 1 with its
-      message) or a bug: exit 3 with one line, the traceback only when debugging.
+      :class:`~fitter.errors.InputError` the command did not catch itself, or a file or
+      folder named by the user that cannot be read or written: exit 1 with its message)
+      or a bug: exit 3 with one line, the traceback only when debugging.
     """
 
     def list_commands(self, ctx):
@@ -96,6 +97,19 @@ class _Group(click.Group):
 
             if isinstance(e, InputError):
                 click.echo(f"error: {e}", err=True)
+                raise SystemExit(1) from None
+            if isinstance(e, BrokenPipeError):
+                # the reader of our output went away (`platebook ... | head`): nothing to report;
+                # stdout goes to devnull so that the flush at exit does not raise again
+                # (the Python documentation's note on SIGPIPE)
+                try:
+                    os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+                except (OSError, ValueError, AttributeError):
+                    pass
+                raise SystemExit(1) from None
+            if isinstance(e, OSError) and e.filename is not None:
+                # a file or folder the user named cannot be read or written: their input, not a bug
+                click.echo(f"error: {e.filename}: {e.strerror or e}", err=True)
                 raise SystemExit(1) from None
             if _debug_wanted(ctx):
                 import traceback
