@@ -413,7 +413,7 @@ def _floor_count(units, doc, variant="2% outliers"):
     return at, failed
 
 
-def whole_process(rng, n_units, repeat, jobs):
+def whole_process(rng, n_units, repeat, jobs, compare_with=None):
     """platebook fit --json against the plain script, whole processes, side by side."""
     import json
     import statistics
@@ -434,19 +434,27 @@ def whole_process(rng, n_units, repeat, jobs):
         n_points = sum(u["va"].size for u in units)
         print(f"  file: {n_points} points, {csv_path.stat().st_size / 1e6:.1f} MB; "
               f"platebook with {jobs or 'all'} job(s); {repeat} alternating runs each")
+        fit_args = ["-m", "fitter", "fit", str(csv_path), "--model", "koren", "--json"] + (
+            [f"--jobs={jobs}"] if jobs else [])
         cmds = {
-            "platebook fit": [sys.executable, "-m", "fitter", "fit", str(csv_path), "--model", "koren", "--json"]
-            + ([f"--jobs={jobs}"] if jobs else []),
-            "plain curve_fit": [sys.executable, str(plain), str(csv_path)],
+            "platebook fit": ([sys.executable, *fit_args], env),
+            "plain curve_fit": ([sys.executable, str(plain), str(csv_path)], env),
         }
+        if compare_with:
+            ref = tmp / "ref"
+            ref.mkdir()
+            archive = subprocess.run(["git", "-C", str(ROOT), "archive", compare_with, "fitter"],
+                                     check=True, capture_output=True).stdout
+            subprocess.run(["tar", "-x", "-C", str(ref)], input=archive, check=True)
+            cmds[f"rev {compare_with}"] = ([sys.executable, *fit_args], dict(env, PYTHONPATH=str(ref)))
         times = {k: [] for k in cmds}
         cpus = {k: [] for k in cmds}
         docs = {}
         for _ in range(repeat):
-            for name, cmd in cmds.items():
+            for name, (cmd, cmd_env) in cmds.items():
                 c0 = resource.getrusage(resource.RUSAGE_CHILDREN)
                 t0 = time.perf_counter()
-                p = subprocess.run(cmd, env=env, capture_output=True, text=True, cwd=tmp)
+                p = subprocess.run(cmd, env=cmd_env, capture_output=True, text=True, cwd=tmp)
                 times[name].append(time.perf_counter() - t0)
                 c1 = resource.getrusage(resource.RUSAGE_CHILDREN)
                 cpus[name].append(c1.ru_utime + c1.ru_stime - c0.ru_utime - c0.ru_stime)
@@ -459,8 +467,10 @@ def whole_process(rng, n_units, repeat, jobs):
                   + f" s; median {statistics.median(t):.2f} s (CPU of its processes "
                   f"{statistics.median(cpus[name]):.2f} s);  noise floor reached on {at} of "
                   f"{n_units} units ({failed} reported failed)")
-        ratio = statistics.median(times["platebook fit"]) / statistics.median(times["plain curve_fit"])
-        print(f"  ratio platebook / plain: {ratio:.2f} (goal <= 0.8)")
+        for name in times:
+            if name != "plain curve_fit":
+                ratio = statistics.median(times[name]) / statistics.median(times["plain curve_fit"])
+                print(f"  ratio {name} / plain: {ratio:.2f} (goal <= 0.8)")
 
         # where the platebook process's time goes, timed here (this process already has numpy)
         code = ("import time; t0 = time.perf_counter(); import fitter.cli, fitter.cli.fitcmd, fitter.fit, "
@@ -507,6 +517,8 @@ def main(argv=None):
     ap.add_argument("--units", type=int, default=1000, help="units in the whole-process comparison")
     ap.add_argument("--repeat", type=int, default=3, help="alternating runs in the whole-process comparison")
     ap.add_argument("--jobs", type=int, default=None, help="platebook fit --jobs (default: all cores)")
+    ap.add_argument("--compare-with", metavar="REV",
+                    help="with --process, also time platebook fit of this git revision in the same run")
     args = ap.parse_args(argv)
     per_type = args.per_type or (30 if args.quick else 100)
     n_batch = args.batch or (200 if args.quick else 1000)
@@ -525,7 +537,7 @@ def main(argv=None):
           + " (the machine is shared; other work slows the timings)")
     rng = np.random.default_rng(SEED)
     if args.process:
-        whole_process(rng, args.units, args.repeat, args.jobs)
+        whole_process(rng, args.units, args.repeat, args.jobs, args.compare_with)
         print("\nload average at end: " + " ".join(f"{x:.2f}" for x in os.getloadavg()))
         return 0
     t0 = time.perf_counter()
