@@ -141,3 +141,15 @@ def test_closed_output_pipe_exits_quietly(card):
         os.close(w)
     assert p.returncode == 1
     assert p.stderr == ""
+
+
+def test_internal_error_line_escapes_terminal_controls(card, monkeypatch):
+    # a message carrying an escape sequence (e.g. from a file name) is shown escaped, so it
+    # cannot drive the terminal (fitter.text.shown)
+    def boom(self, va, vg):
+        raise RuntimeError("bad \x1b[2J name")
+
+    monkeypatch.setattr(FittedTriode, "small_signal", boom)
+    r = run("point", card, "--va", 250, "--vg", -2, env={"PLATEBOOK_DEBUG": ""})
+    assert r.exit_code == 3 and "\x1b" not in r.stderr
+    assert r.stderr.startswith("internal error: RuntimeError: bad \\x1b[2J name — please report it")

@@ -94,9 +94,10 @@ class _Group(click.Group):
             raise
         except Exception as e:  # noqa: BLE001  (the one place that turns a bug into exit 3)
             from ..errors import InputError
+            from ..text import shown  # messages may carry names from untrusted input
 
             if isinstance(e, InputError):
-                click.echo(f"error: {e}", err=True)
+                click.echo(f"error: {shown(e)}", err=True)
                 raise SystemExit(1) from None
             if isinstance(e, BrokenPipeError):
                 # the reader of our output went away (`platebook ... | head`): nothing to report;
@@ -109,13 +110,13 @@ class _Group(click.Group):
                 raise SystemExit(1) from None
             if isinstance(e, OSError) and e.filename is not None:
                 # a file or folder the user named cannot be read or written: their input, not a bug
-                click.echo(f"error: {e.filename}: {e.strerror or e}", err=True)
+                click.echo(f"error: {shown(e.filename)}: {shown(e.strerror or e)}", err=True)
                 raise SystemExit(1) from None
             if _debug_wanted(ctx):
                 import traceback
 
                 traceback.print_exc(file=sys.stderr)
-            message = " ".join(str(e).split()) or "(no message)"
+            message = shown(" ".join(str(e).split())) or "(no message)"
             click.echo(f"internal error: {type(e).__name__}: {message} — please report it; "
                        "run with --debug for details", err=True)
             raise SystemExit(INTERNAL_ERROR) from None
