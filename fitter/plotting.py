@@ -10,6 +10,7 @@ level.  :func:`save_fit_plots` spreads many plots over processes.
 from __future__ import annotations
 
 import os
+import threading
 from pathlib import Path
 from typing import Callable, Sequence
 
@@ -88,12 +89,13 @@ def _line(ax, x, y, made, **style):
     return line
 
 
-def _draw_unit(result: FitResult, ax, axr) -> list:
+def _draw_unit(result: FitResult, ax, axr, made: list | None = None) -> list:
     """Draw one unit's data, fit and residuals; set the limits and title.
 
-    Returns the artists made, so that a reused figure can remove them again.
+    Returns the artists made (appended to ``made`` as they are made, so that a reused
+    figure can remove them again even if drawing stopped half-way).
     """
-    made = []
+    made = [] if made is None else made
     dot = dict(ls="none", marker="o")
     # curve labels 2 points right of the curve's end (a Text with an offset: cheaper than an Annotation)
     beside = ax.transData + ScaledTranslation(2 / 72, 0, ax.figure.dpi_scale_trans)
@@ -185,11 +187,14 @@ class _Sheet:
     def draw(self, result: FitResult):
         for artist in self.made:
             artist.remove()
-        self.made = _draw_unit(result, self.ax, self.axr)
+        self.made = []
+        _draw_unit(result, self.ax, self.axr, self.made)
         return self.ax.figure
 
 
 _sheet: _Sheet | None = None
+#: one plot at a time on the shared figure (a server may call from several threads)
+_sheet_lock = threading.Lock()
 
 
 def _the_sheet() -> _Sheet:
@@ -203,8 +208,9 @@ def _the_sheet() -> _Sheet:
 def save_fit_plot(result: FitResult, path) -> Path:
     """Write the plot of one fit as a PNG to ``path``."""
     path = Path(path)
-    fig = _the_sheet().draw(result)
-    fig.savefig(path, dpi=DPI, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
+    with _sheet_lock:
+        fig = _the_sheet().draw(result)
+        fig.savefig(path, dpi=DPI, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
     return path
 
 

@@ -121,3 +121,14 @@ def test_cli_plot_progress_stays_off_when_not_on_a_terminal(tube_types, write_lo
     r = CliRunner().invoke(main, ["fit", str(path), "--plot", str(tmp_path / "plots")], catch_exceptions=False)
     assert r.exit_code == 0 and "plotting" not in r.stderr
     assert len(list((tmp_path / "plots").glob("*.png"))) == 2
+
+
+def test_a_plot_that_failed_half_way_leaves_nothing_behind(fits, tmp_path, monkeypatch):
+    import dataclasses
+
+    want = pixels(fresh(fits[1], tmp_path / "alone.png", monkeypatch))
+    broken = dataclasses.replace(fits[0], params={})  # the model cannot be evaluated
+    with pytest.raises(TypeError):
+        P.save_fit_plot(broken, tmp_path / "broken.png")
+    got = pixels(P.save_fit_plot(fits[1], tmp_path / "after.png"))
+    np.testing.assert_array_equal(got, want)
