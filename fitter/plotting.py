@@ -29,8 +29,9 @@ __all__ = ["plot_fit", "save_fit_plot", "save_fit_plots", "CAUTION"]
 FIGSIZE = (8.0, 8.0)  # [in]
 DPI = 110
 #: fixed margins (figure fractions) that leave room for two-line titles, tick labels of
-#: up to five characters, the axis labels and the caution line at the foot
-MARGINS = dict(left=0.095, right=0.965, top=0.925, bottom=0.085, hspace=0.09)
+#: up to five characters, the axis labels, the caution line at the foot and, on the right,
+#: the grid-voltage labels at the curves' ends (up to "-122.5 V")
+MARGINS = dict(left=0.095, right=0.925, top=0.925, bottom=0.085, hspace=0.09)
 #: zlib level of the PNGs: 1 writes about 15 % larger files several times faster than 6
 PNG_COMPRESS_LEVEL = 1
 
@@ -84,7 +85,7 @@ def _margin(lo: float, hi: float, frac: float = 0.05) -> tuple[float, float]:
 def _line(ax, x, y, made, **style):
     """``ax.plot`` without its argument parsing (a third of the time of making a plot)."""
     line = Line2D(x, y, **style)
-    ax.add_line(line)
+    ax.add_artist(line)  # not add_line: the limits are set by hand, so no data-limit update
     made.append(line)
     return line
 
