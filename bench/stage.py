@@ -1,7 +1,9 @@
 """Benchmark of the stage and distortion engine: prints figures, asserts nothing.
 
 Goals (issue 3, section 6): one stage solve <= 1 ms, a 30-level THD sweep <= 0.5 s,
-a spread over 1,000 units <= 2 s.
+a spread over 1,000 units <= 2 s.  Issue 8, section 8: a solve with error bars <= 3 ms
+for a mu follower (every perturbed parameter set solved together); the previous path,
+one whole solve per perturbed set, is timed beside it in the same run.
 
 The tubes are invented units from Koren's 12AX7 / 12AU7 sets (from memory of Koren's
 table, Glass Audio 8(5), 1996, rev. 2003) with an invented 10 % perveance spread.
@@ -11,6 +13,7 @@ Run:  python bench/stage.py
 
 from __future__ import annotations
 
+import os
 import statistics
 import time
 
@@ -18,7 +21,7 @@ import numpy as np
 
 from fitter import distortion as D
 from fitter import stage as S
-from fitter.triode import FittedTriode
+from fitter.triode import FittedTriode, propagate
 
 KOREN = ("mu", "ex", "kg1", "kp", "kvb")
 
@@ -30,6 +33,25 @@ def timed(fn, repeat):
         fn()
         times.append(time.perf_counter() - t0)
     return statistics.median(times), min(times)
+
+
+def one_set_at_a_time(stage, triodes):
+    """Error bars the previous way: propagate() over whole solves, one perturbed set each."""
+    keys = list(S.solve(stage, *triodes, errors=False).figures)
+    var = np.zeros(len(keys))
+    for i, t in enumerate(triodes):
+        if t.covariance is None or not t.free:
+            continue
+
+        def fn(tt, i=i):
+            ts = list(triodes)
+            ts[i] = tt
+            f = S.solve(stage, *ts, errors=False).figures
+            a = np.array([f[k] for k in keys])
+            return np.where(np.isfinite(a), a, np.nan)
+
+        var += propagate(fn, t)[1] ** 2
+    return dict(zip(keys, np.sqrt(var)))
 
 
 def main():
@@ -47,14 +69,25 @@ def main():
                         (mA, mB)),
     }
     print("Platebook stage benchmark (median of repeats; min in brackets)")
+    print("load average at start: " + " ".join(f"{x:.2f}" for x in os.getloadavg()))
     print()
-    print("one stage solve (operating point + all small-signal figures)")
+    print("one stage solve (operating point + all small-signal figures); with error bars: all "
+          "perturbed sets in one vectorised solve, and (before) one solve per set")
     for name, (st, tubes) in stages.items():
         S.solve(st, *tubes, errors=False)
         med, lo = timed(lambda: S.solve(st, *tubes, errors=False), 200)
-        med_e, lo_e = timed(lambda: S.solve(st, *tubes, errors=True), 20)
+        med_e, lo_e = timed(lambda: S.solve(st, *tubes, errors=True), 50)
+        med_o, lo_o = timed(lambda: one_set_at_a_time(st, tubes), 10)
         print(f"  {name:<36} {1e3 * med:7.3f} ms [{1e3 * lo:.3f}]   with error bars "
-              f"{1e3 * med_e:7.2f} ms [{1e3 * lo_e:.2f}]")
+              f"{1e3 * med_e:7.2f} ms [{1e3 * lo_e:.2f}]   one set at a time {1e3 * med_o:7.2f} ms "
+              f"[{1e3 * lo_o:.2f}]")
+    mB_cov = FittedTriode("koren", dict(mB.params), tube="MU", section="B", free=KOREN,
+                          covariance=np.diag([0.1, 1e-4, 100.0, 4.0, 100.0]))
+    st = stages["mu follower"][0]
+    med_e, lo_e = timed(lambda: S.solve(st, mA, mB_cov, errors=True), 50)
+    med_o, lo_o = timed(lambda: one_set_at_a_time(st, (mA, mB_cov)), 10)
+    print(f"  {'mu follower, both with covariance':<36} {'':>18}   with error bars {1e3 * med_e:7.2f} ms "
+          f"[{1e3 * lo_e:.2f}]   one set at a time {1e3 * med_o:7.2f} ms [{1e3 * lo_o:.2f}]")
     print()
     print("30-level THD sweep (256 samples per period; includes the drive-limit search and headroom)")
     for name, (st, tubes) in stages.items():
@@ -79,6 +112,7 @@ def main():
         st = stages[name][0]
         med, lo = timed(lambda: S.spread(st, mas, mbs), 3)
         print(f"  {name + ' (paired bottom/top)':<36} {med:7.3f} s [{lo:.3f}]")
+    print("load average at end: " + " ".join(f"{x:.2f}" for x in os.getloadavg()))
 
 
 if __name__ == "__main__":

@@ -40,7 +40,6 @@ import warnings
 from dataclasses import dataclass, field, replace
 from typing import Callable, Iterable, Mapping
 
-import lmfit
 import numpy as np
 from scipy.optimize import leastsq
 from scipy.special import expit
@@ -320,6 +319,8 @@ class FitResult:
 
 
 def _make_params(model: TriodeModel, start: Mapping[str, float], free: list[str], opts: FitOptions):
+    import lmfit  # lazily: only constraint expressions and final="lmfit" need it (0.8 s to import)
+
     params = lmfit.Parameters()
     for spec in model.params:
         lo, hi = opts.bounds.get(spec.name, (spec.lower, spec.upper))
@@ -558,6 +559,8 @@ def _robust_scale(r, sel=None):
 def _run(mini_problem: _Problem, params, loss: str, f_scale: float, max_nfev: int):
     """One lmfit least_squares run (used with constraint expressions, whose chain rule
     lmfit handles; the Jacobian is then numerical)."""
+    import lmfit
+
     kws = dict(loss=loss, f_scale=f_scale, x_scale="jac", max_nfev=max_nfev)
     mini = lmfit.Minimizer(lambda p: mini_problem.residual(p), params, nan_policy="raise")
     with warnings.catch_warnings():
@@ -705,6 +708,8 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     fin = None
     cov = None
     if opts.expr or opts.final == "lmfit":
+        import lmfit
+
         prob.mask = mask
         try:
             params = _make_params(m, values, free, opts)

@@ -90,7 +90,6 @@ from typing import Mapping, Sequence
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse.csgraph import connected_components
 
 from .triode import FittedTriode, propagate
@@ -1534,6 +1533,8 @@ def _quad_candidates(V, crit, mode, limit):
 
 def _set_packing(n, quads, mism, time_limit):
     """Most quads, then least total mismatch: exact set packing by HiGHS branch-and-cut."""
+    from scipy.optimize import Bounds, LinearConstraint, milp  # HiGHS, imported when used (0.15 s)
+
     if not quads:
         return [], True
     Q = np.array(quads)
@@ -1870,6 +1871,8 @@ def assign_stacks(units: Sequence[FittedTriode], stack, n_stages: int, target_ma
 
 def _stack_milp(pairs, M, N, dev, ia, gain, time_limit):
     """min D + S + eps * sum(dev) over N disjoint (bottom, top) pairs (exact)."""
+    from scipy.optimize import Bounds, LinearConstraint, milp  # HiGHS, imported when used (0.15 s)
+
     k = pairs.shape[0]
     gref = float(np.median(np.abs(gain)))
     iref = float(np.median(ia))

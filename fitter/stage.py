@@ -64,7 +64,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .triode import FittedTriode, propagate
+from .triode import FittedTriode, error_from_differences, perturbed
 
 __all__ = [
     "CAUTION",
@@ -1272,6 +1272,24 @@ def _figure_names(stage, fig) -> list:
     return list(fig.keys())
 
 
+def _analyse_cases(stage, cases, keys, slew_vpeak) -> np.ndarray:
+    """Figures ``keys`` for every case (a tuple of triodes per position), one row per case.
+
+    Cases are solved together, one vectorised :func:`_analyse` per group of cases that
+    share their models and grid-current parameters (which the banks keep scalar).
+    """
+    rows = np.full((len(cases), len(keys)), np.nan)
+    groups: dict = {}
+    for i, c in enumerate(cases):
+        groups.setdefault(tuple(_group_key(t) for t in c), []).append(i)
+    for idx in groups.values():
+        banks = tuple(_Bank.of([cases[i][j] for i in idx]) for j in range(len(cases[0])))
+        fig = _analyse(stage, banks, len(idx), slew_vpeak)
+        for col, k in enumerate(keys):
+            rows[idx, col] = np.broadcast_to(fig[k], (len(idx),))
+    return rows
+
+
 def solve(stage, *triodes: FittedTriode, errors: bool = True, slew_vpeak: float = 10.0) -> StageResult:
     """Operating point and small-signal figures of ``stage`` with the given tubes.
 
@@ -1283,8 +1301,9 @@ def solve(stage, *triodes: FittedTriode, errors: bool = True, slew_vpeak: float 
         One tube; for a :class:`Stack`, the bottom tube then the top tube.
     errors : bool
         Propagate the fit covariance of every tube to every figure
-        (:func:`fitter.triode.propagate`; the tubes' contributions are added in
-        quadrature, the units being independent).
+        (central differences as in :func:`fitter.triode.propagate`, every perturbed
+        parameter set of every tube solved together in one vectorised pass; the tubes'
+        contributions are added in quadrature, the units being independent).
     slew_vpeak : float
         Output peak amplitude for the slew-rate check [V].
 
@@ -1313,21 +1332,21 @@ def solve(stage, *triodes: FittedTriode, errors: bool = True, slew_vpeak: float 
         note = "no error bars: the model card(s) carry no covariance"
         var = np.zeros(len(keys))
         known = False
+        # every perturbed parameter set of every tube (the others at their fitted values)
+        # stacked along one axis and solved together, instead of one solve per set
+        cases, parts = [], []
         for i, t in enumerate(triodes):
             if t.covariance is None or not t.free:
                 continue
-
-            def fn(tt, i=i):
-                ts = list(triodes)
-                ts[i] = tt
-                b = tuple(_Bank.of([x]) for x in ts)
-                r = _analyse(stage, b, 1, slew_vpeak)
-                a = np.array([r[k][0] for k in keys])
-                # infinite figures (no capacitance given) carry no error: NaN, not inf - inf
-                return np.where(np.isfinite(a), a, np.nan)
-
-            _, s = propagate(fn, t)
-            var += s**2
+            sets, steps = perturbed(t)
+            parts.append((t, len(cases), len(sets), steps))
+            cases += [tuple(tt if j == i else x for j, x in enumerate(triodes)) for tt in sets]
+        if cases:
+            rows = _analyse_cases(stage, cases, keys, slew_vpeak)
+            # infinite figures (no capacitance given) carry no error: NaN, not inf - inf
+            rows = np.where(np.isfinite(rows), rows, np.nan)
+            for t, start, count, steps in parts:
+                var += error_from_differences(rows[start:start + count], steps, t.covariance) ** 2
             known = True
         if known:
             errs = {k: float(np.sqrt(v)) for k, v in zip(keys, var)}

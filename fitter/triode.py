@@ -18,7 +18,8 @@ from .errors import InputError
 from .models import TriodeModel, get_model
 from .text import shown
 
-__all__ = ["FittedTriode", "SmallSignal", "OutsideDataWarning", "DataEnvelope", "propagate"]
+__all__ = ["FittedTriode", "SmallSignal", "OutsideDataWarning", "DataEnvelope", "propagate", "perturbed",
+           "error_from_differences"]
 
 
 class OutsideDataWarning(UserWarning):
@@ -64,32 +65,68 @@ class SmallSignal:
         }
 
 
+#: relative step of the central differences in :func:`propagate`
+PROPAGATE_STEP = 1e-5
+
+
+def perturbed(triode: "FittedTriode") -> tuple[list["FittedTriode"], np.ndarray]:
+    """The parameter sets of the central differences of :func:`propagate`.
+
+    Returns the triodes ``[+h_1, -h_1, +h_2, -h_2, ...]`` (one pair per free parameter,
+    in the order of ``triode.free``) and the steps ``h`` [parameter units].
+    """
+    sets, steps = [], []
+    for name in triode.free:
+        p0 = triode.params[name]
+        h = PROPAGATE_STEP * max(abs(p0), 1e-12)
+        # a parameter fitted onto its bound is stepped one-sidedly: the triode refuses values
+        # outside the model's bounds; the step returned is half the span, as for a central one
+        spec = triode.model.spec(name)
+        a, b = max(p0 - h, spec.lower), min(p0 + h, spec.upper)
+        sets += [triode.with_params({name: b}), triode.with_params({name: a})]
+        steps.append(0.5 * (b - a))
+    return sets, np.array(steps, dtype=float)
+
+
+def error_from_differences(values, steps, covariance) -> np.ndarray:
+    """One-sigma errors sqrt(diag(J C J^T)) from the figures at the :func:`perturbed` sets.
+
+    ``values`` has one row per perturbed set (``+h_1, -h_1, ...``), one column per figure.
+    """
+    v = np.asarray(values, dtype=float).reshape(len(steps), 2, -1)
+    J = ((v[:, 0] - v[:, 1]) / (2 * np.asarray(steps)[:, None])).T
+    var = np.einsum("ij,jk,ik->i", J, covariance, J)
+    return np.sqrt(np.maximum(var, 0.0))
+
+
 def propagate(
-    fn: Callable[["FittedTriode"], np.ndarray], triode: "FittedTriode"
+    fn: Callable, triode: "FittedTriode", *, batch: bool = False
 ) -> tuple[np.ndarray, np.ndarray]:
     """Value and one-sigma error of ``fn(triode)`` from the fit covariance.
 
     ``fn`` maps a triode to an array of figures.  Its Jacobian with respect to the
     free parameters is taken by central differences (relative step 1e-5) and the
     error is sqrt(diag(J C J^T)).  Errors are NaN when the triode has no covariance.
+
+    With ``batch=True``, ``fn`` takes a list of triodes and returns one row of figures
+    per triode; it is called once with the triode and every perturbed set, so a
+    vectorised ``fn`` evaluates all of them together.
     """
+    if batch:
+        cov = triode.covariance
+        if cov is None or not triode.free:
+            value = np.atleast_1d(np.asarray(fn([triode]), dtype=float)[0])
+            return value, np.full_like(value, np.nan)
+        sets, steps = perturbed(triode)
+        rows = np.asarray(fn([triode] + sets), dtype=float).reshape(len(sets) + 1, -1)
+        return rows[0], error_from_differences(rows[1:], steps, cov)
     value = np.atleast_1d(np.asarray(fn(triode), dtype=float))
     cov = triode.covariance
     if cov is None or not triode.free:
         return value, np.full_like(value, np.nan)
-    J = np.empty((value.size, len(triode.free)))
-    for j, name in enumerate(triode.free):
-        p0 = triode.params[name]
-        h = 1e-5 * max(abs(p0), 1e-12)
-        # a parameter fitted onto its bound is stepped one-sidedly: the triode refuses values
-        # outside the model's bounds
-        spec = triode.model.spec(name)
-        a, b = max(p0 - h, spec.lower), min(p0 + h, spec.upper)
-        up = np.atleast_1d(np.asarray(fn(triode.with_params({name: b})), float))
-        dn = np.atleast_1d(np.asarray(fn(triode.with_params({name: a})), float))
-        J[:, j] = (up - dn) / (b - a)
-    var = np.einsum("ij,jk,ik->i", J, cov, J)
-    return value, np.sqrt(np.maximum(var, 0.0))
+    sets, steps = perturbed(triode)
+    rows = [np.atleast_1d(np.asarray(fn(t), float)) for t in sets]
+    return value, error_from_differences(rows, steps, cov)
 
 
 @dataclass(frozen=True)

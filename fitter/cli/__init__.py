@@ -1,16 +1,80 @@
-"""The ``platebook`` command line.  Each area's commands live in their own module here
-and are attached to :data:`main` at import time."""
+"""The ``platebook`` command line.
+
+Each area's commands live in their own module here and register themselves on
+:data:`main` when that module is imported.  The group imports a module only when one of
+its commands runs (:data:`COMMANDS` maps each command to its module and keeps its short
+help for ``platebook --help``), so ``platebook point`` does not pay for the fitting
+engine's imports, nor ``platebook --help`` for any of them.
+
+Exit status: 0 fine, 1 bad input (usage, file, card, option), 2 a fit or a solve failed,
+3 an internal error (a bug: one line on stderr, the traceback only with ``--debug`` or
+``PLATEBOOK_DEBUG=1``).
+"""
 
 from __future__ import annotations
+
+import importlib
+import os
+import sys
 
 import click
 
 from .. import __version__
 
+#: command name -> (module under fitter.cli, the help's first paragraph).  ``--help`` of the
+#: group lists these without importing the modules; a test checks they match the commands.
+COMMANDS: dict[str, tuple[str, str]] = {
+    "fit": ("fitcmd", "Fit triode models to the plate curves in FILE(s)."),
+    "point": ("fitcmd", "Small-signal figures of a fitted unit (model CARD) at one operating point."),
+    "export": ("export", "Export the fitted unit in CARD for other design tools."),
+    "stage": ("stage", "Operating point, gain, output impedance and limits of a stage with fitted tubes."),
+    "distortion": ("stage", "Harmonics and THD of a stage (quasi-static, mid-band), at a level or swept."),
+    "match": ("match", "Match the units in FITS by what each does in the position it will work in."),
+}
+
+#: exit status of an unexpected internal error (1 is bad input, 2 a failed fit or solve)
+INTERNAL_ERROR = 3
+
+
+def _debug_wanted(ctx) -> bool:
+    return bool(ctx.params.get("debug")) or os.environ.get("PLATEBOOK_DEBUG", "") not in ("", "0")
+
 
 class _Group(click.Group):
-    """click exits 2 on usage errors; Platebook's contract is 1 (2 means a fit or solve
-    failed), so that a script can tell a typo from a failed fit."""
+    """The top-level group.
+
+    * click exits 2 on usage errors; Platebook's contract is 1 (2 means a fit or solve
+      failed), so that a script can tell a typo from a failed fit.
+    * Commands are loaded on demand from :data:`COMMANDS`.
+    * An exception that escapes a command is either an input error (an
+      :class:`~fitter.errors.InputError` the command did not catch itself, or a file or
+      folder named by the user that cannot be read or written: exit 1 with its message)
+      or a bug: exit 3 with one line, the traceback only when debugging.
+    """
+
+    def list_commands(self, ctx):
+        return sorted(set(COMMANDS) | set(self.commands))
+
+    def get_command(self, ctx, name):
+        if name not in self.commands and name in COMMANDS:
+            importlib.import_module(f"{__name__}.{COMMANDS[name][0]}")
+        return self.commands.get(name)
+
+    def format_commands(self, ctx, formatter):
+        # the short help from the table, so that listing the commands imports none of them
+        names = self.list_commands(ctx)
+        if not names:
+            return
+        limit = formatter.width - 6 - max(len(n) for n in names)
+        rows = []
+        for name in names:
+            if name in COMMANDS:
+                text = click.Command(name, help=COMMANDS[name][1]).get_short_help_str(limit)
+            else:
+                text = self.commands[name].get_short_help_str(limit)
+            rows.append((name, text))
+        with formatter.section("Commands"):
+            formatter.write_dl(rows)
 
     def make_context(self, info_name, args, parent=None, **extra):
         try:
@@ -25,11 +89,44 @@ class _Group(click.Group):
         except click.UsageError as e:
             e.exit_code = 1
             raise
+        except (click.exceptions.ClickException, click.exceptions.Exit, click.Abort,
+                SystemExit, KeyboardInterrupt):
+            raise
+        except Exception as e:  # noqa: BLE001  (the one place that turns a bug into exit 3)
+            from ..errors import InputError
+            from ..text import shown  # messages may carry names from untrusted input
+
+            if isinstance(e, InputError):
+                click.echo(f"error: {shown(e)}", err=True)
+                raise SystemExit(1) from None
+            if isinstance(e, BrokenPipeError):
+                # the reader of our output went away (`platebook ... | head`): nothing to report;
+                # stdout goes to devnull so that the flush at exit does not raise again
+                # (the Python documentation's note on SIGPIPE)
+                try:
+                    os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+                except (OSError, ValueError, AttributeError):
+                    pass
+                raise SystemExit(1) from None
+            if isinstance(e, OSError) and e.filename is not None:
+                # a file or folder the user named cannot be read or written: their input, not a bug
+                click.echo(f"error: {shown(e.filename)}: {shown(e.strerror or e)}", err=True)
+                raise SystemExit(1) from None
+            if _debug_wanted(ctx):
+                import traceback
+
+                traceback.print_exc(file=sys.stderr)
+            message = shown(" ".join(str(e).split())) or "(no message)"
+            click.echo(f"internal error: {type(e).__name__}: {message} — please report it; "
+                       "run with --debug for details", err=True)
+            raise SystemExit(INTERNAL_ERROR) from None
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="platebook")
-def main():
+@click.option("--debug", is_flag=True,
+              help="Show the traceback of an internal error (also PLATEBOOK_DEBUG=1).")
+def main(debug):
     """Platebook: fit triode models to plate curves, analyse stages and match tubes.
 
     CAUTION: tube circuits and curve tracers work at lethal voltages. Follow your
@@ -71,10 +168,3 @@ def value(text, option: str, optional: bool = True, on_error=None):
         return parse_value(text, option)
     except ValueError as e:
         report(str(e))
-
-
-# Command modules register themselves on ``main``; keep one import per area.
-from . import fitcmd  # noqa: E402,F401
-from . import export  # noqa: E402,F401
-from . import stage  # noqa: E402,F401
-from . import match  # noqa: E402,F401

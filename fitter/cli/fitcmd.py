@@ -14,7 +14,6 @@ from . import fail, main
 from .options import Count, OptionError, Value, number
 from .. import CAUTION
 from ..card import CardError, load_card, save_card, card_filename
-from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
 from ..models import MODELS, get_model
 from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
 from ..text import shown
@@ -77,6 +76,8 @@ def _fmt(x, spec=".4g"):
 
 def _table(rows_by_unit, multi: bool) -> str:
     """The readable fit table."""
+    from ..fit import LOOSE_FIT_REL_RMS
+
     head = f"{'unit':<16} {'model':<9} {'pts':>4} {'out':>3} {'rms mA':>8} {'rel %':>6} {'mu':>9}  parameters"
     lines = [head, "-" * len(head)]
     for results in rows_by_unit:
@@ -133,6 +134,9 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     one unit; FILE '-' is standard input. Exit status: 0 all fits good, 1 input error, 2 one
     or more fits failed (or --skip-bad left out a whole unit).
     """
+    # the engine (scipy.optimize) only when fitting: `fit --help` and `point` stay quick
+    from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
+
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
     models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
@@ -191,12 +195,17 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
                     else:
                         not_saved.append(best.label)
             if plot_dir:
-                from ..plotting import save_fit_plot
+                from ..plotting import save_fit_plots
 
                 prepare_folder(plot_dir)
-                for rs, stem in zip(results, stems):
-                    best = rs[0]
-                    written.append(str(save_fit_plot(best, plot_dir / f"{stem}.{best.model.name}.png")))
+                best = [rs[0] for rs in results]
+                paths = [plot_dir / f"{stem}.{b.model.name}.png" for b, stem in zip(best, stems)]
+                # progress on stderr when it is a terminal (never with --json, whose terminal shows one object)
+                show = sys.stderr.isatty() and not as_json and len(best) > 1
+                bar = (click.progressbar(length=len(best), label="plotting", file=sys.stderr, show_pos=True)
+                       if show else _progress(0, False))
+                with bar:
+                    written.extend(str(p) for p in save_fit_plots(best, paths, processes=jobs, progress=bar.update))
         except OutputError as e:
             done = f" ({len(written)} file(s) written before it)" if written else ""
             fail_input(f"{e}{done}")
