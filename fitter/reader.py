@@ -262,8 +262,14 @@ def max_rows_limit(max_rows: int | None = None) -> int:
 # ---------------------------------------------------------------------------
 
 
+#: Largest plate or grid voltage read [V]: large transmitting tubes work at some tens of kV
+#: (common practice); anything beyond 100 kV is a slip (a misplaced exponent, a column of
+#: another quantity) that would only overflow the fit.
+VOLTAGE_LIMIT = 1e5
+
+
 def _float_cells(cells: list[str], lines: np.ndarray, col: str, file: str, issues: list, bad: np.ndarray,
-                 allow_empty: bool = False, decimal_comma: bool = False) -> np.ndarray:
+                 allow_empty: bool = False, decimal_comma: bool = False, limit=None) -> np.ndarray:
     """Convert a column of strings to floats, recording non-numeric and non-finite cells.
 
     With ``decimal_comma`` a comma is the decimal mark and a cell holding a decimal
@@ -313,6 +319,12 @@ def _float_cells(cells: list[str], lines: np.ndarray, col: str, file: str, issue
     for i in np.flatnonzero(nonfinite):
         issues.append(ReadIssue(file, int(lines[i]), col, f"value {cells[i].strip()!r} is not finite (NaN or infinite)"))
         bad[i] = True
+    if limit is not None:
+        top, what = limit
+        for i in np.flatnonzero((np.abs(vals) > top) & ~bad):
+            issues.append(ReadIssue(file, int(lines[i]), col,
+                                    f"{what} {vals[i]:.6g} V is beyond any tube's (at most {top:g} V is read)"))
+            bad[i] = True
     return vals
 
 
@@ -846,6 +858,8 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
         sections = column("section") if "section" in seen else None
         if tubes is not None and any(not t.strip() for t in tubes[_run_starts(tubes)].tolist()):
             fast = None  # an empty tube name: the row-by-row path reports it
+        elif not (np.all(np.abs(va) <= VOLTAGE_LIMIT) and np.all(np.abs(vg) <= VOLTAGE_LIMIT)):
+            fast = None  # an absurd voltage: the row-by-row path reports it where it is
         else:
             issues = []
             notes = _check_currents(ia, lines, bad, issues, file, label[ia_col])
@@ -863,8 +877,10 @@ def _read_long(originals, ctx: _Context, data, default_tube, skip_bad):
         return cols[seen[name] - 1]
 
     comma = _comma_decimal(ctx, [column(c) for c in seen if c not in _KEYS])
-    va = _float_cells(column("va"), lines, label["va"], file, issues, bad, decimal_comma=comma)
-    vg = _float_cells(column("vg"), lines, label["vg"], file, issues, bad, decimal_comma=comma)
+    va = _float_cells(column("va"), lines, label["va"], file, issues, bad, decimal_comma=comma,
+                      limit=(VOLTAGE_LIMIT, "plate voltage"))
+    vg = _float_cells(column("vg"), lines, label["vg"], file, issues, bad, decimal_comma=comma,
+                      limit=(VOLTAGE_LIMIT, "grid voltage"))
     ia = _float_cells(column(ia_col), lines, label[ia_col], file, issues, bad, decimal_comma=comma) * _SCALE[ia_col[3:]]
     ig = None
     if ig_col:
@@ -1042,6 +1058,10 @@ def _read_wide(originals, ctx: _Context, data, directives, default_tube, skip_ba
         except ValueError:
             issues.append(ReadIssue(file, header_line, label, f"grid voltage {text!r} is not a finite number"))
             continue
+        if abs(v) > VOLTAGE_LIMIT:
+            issues.append(ReadIssue(file, header_line, label,
+                                    f"grid voltage {v:.6g} V is beyond any tube's (at most {VOLTAGE_LIMIT:g} V is read)"))
+            continue
         if v in seen:
             issues.append(ReadIssue(file, header_line, label, f"duplicate curve for vg = {v:g} V (also column {seen[v]})"))
             continue
@@ -1056,7 +1076,8 @@ def _read_wide(originals, ctx: _Context, data, directives, default_tube, skip_ba
         raise CurveReadError([ReadIssue(file, None, None, _too_big(f"{len(lines):,} data rows", ctx.limit))])
     comma = _comma_decimal(ctx, cols)
     bad_rows = np.zeros(lines.size, dtype=bool)
-    va = _float_cells(cols[0], lines, _col(1, originals[0]), file, issues, bad_rows, decimal_comma=comma)
+    va = _float_cells(cols[0], lines, _col(1, originals[0]), file, issues, bad_rows, decimal_comma=comma,
+                      limit=(VOLTAGE_LIMIT, "plate voltage"))
     all_va, all_vg, all_ia, all_lines, all_bad, all_cols = [], [], [], [], [], []
     for j, v, scale, label, _ in curves:
         bad = bad_rows.copy()

@@ -37,7 +37,6 @@ def seeds(tmp_path_factory):
     return fuzz.make_seeds(tmp_path_factory.mktemp("fuzz-seeds"))
 
 
-@pytest.mark.xfail(strict=False, reason="until the card and boundary fixes of the other branches merge")
 def test_fuzzed_inputs_give_no_traceback_hang_or_accepted_bad_input():
     summary = fuzz.run_fuzz(150, seed=1, processes=1, limit=20.0)
     assert len(summary.cases) == 150

@@ -263,3 +263,39 @@ def test_too_large_file_is_refused_before_it_is_read(tmp_path, medium, write_lon
     p = write_long(tmp_path / "big.csv", [medium])
     with pytest.raises(CurveReadError, match=r"file too large: \d+ MB.*files over 256 bytes per allowed row"):
         read_curves(p, max_rows=2)
+
+
+@pytest.mark.parametrize("row, column", [("F,100000.5,-1,1.0", "column 2 ('va')"),
+                                         ("F,1e308,-1,1.0", "column 2 ('va')"),
+                                         ("F,200,-1e308,1.0", "column 3 ('vg')")])
+def test_absurd_voltage_is_an_input_error_where_it_is(tmp_path, row, column):
+    # a plate or grid voltage beyond 100 kV is no tube's (common practice): a slip, refused
+    # with its line and column instead of overflowing the fit
+    from fitter.reader import CurveReadError, read_curves
+    rows = ["tube,va,vg,ia_ma"] + [f"F,{va},{vg},{0.01 * va * (1 + vg / 4):.4f}"
+                                   for vg in (-1, -2) for va in range(50, 301, 25)]
+    rows.insert(5, row)
+    p = tmp_path / "absurd.csv"
+    p.write_text("\n".join(rows) + "\n")
+    with pytest.raises(CurveReadError, match=r"line 6, " + re.escape(column) + ".*beyond any tube's"):
+        read_curves([p])
+
+
+def test_absurd_grid_voltage_in_a_wide_header_is_an_input_error(tmp_path):
+    from fitter.reader import CurveReadError, read_curves
+    p = tmp_path / "wide.csv"
+    p.write_text("va,ia_ma@vg=0,ia_ma@vg=-1e300\n50,1,0.5\n100,2,1\n150,3,2\n")
+    with pytest.raises(CurveReadError, match=r"line 1, column 3.*beyond any tube's"):
+        read_curves([p])
+
+
+def test_absurd_voltage_in_a_long_file_is_found_by_the_fast_reader_too(tmp_path):
+    from fitter.reader import FAST_PATH_MIN_ROWS, CurveReadError, read_curves
+    rows = ["tube,va,vg,ia_ma"] + [f"F{k},{va},{vg},{0.01 * va * (1 + vg / 4):.4f}"
+                                   for k in range(FAST_PATH_MIN_ROWS // 20 + 1)
+                                   for vg in (-1, -2) for va in range(50, 301, 25)]
+    rows[-3] = "F0,5e300,-1,1.0"
+    p = tmp_path / "absurd.csv"
+    p.write_text("\n".join(rows) + "\n")
+    with pytest.raises(CurveReadError, match=rf"line {len(rows) - 2}, column 2 \('va'\).*beyond any tube's"):
+        read_curves([p])

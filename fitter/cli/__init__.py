@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import importlib
 import os
+import warnings
 import sys
 
 import click
@@ -38,6 +39,10 @@ INTERNAL_ERROR = 3
 
 def _debug_wanted(ctx) -> bool:
     return bool(ctx.params.get("debug")) or os.environ.get("PLATEBOOK_DEBUG", "") not in ("", "0")
+
+
+#: the messages of numpy's floating-point warnings
+_FP_WARNING = r"(overflow|invalid value|divide by zero|underflow) encountered"
 
 
 class _Group(click.Group):
@@ -85,7 +90,12 @@ class _Group(click.Group):
 
     def invoke(self, ctx):
         try:
-            return super().invoke(ctx)
+            with warnings.catch_warnings():
+                # numpy's floating-point warnings (overflow far outside a tube's range) are not
+                # for the user: every figure shown is checked for finiteness, and a fit or solve
+                # that overflowed everywhere is reported as failed (bench/fuzz.py checks both)
+                warnings.filterwarnings("ignore", category=RuntimeWarning, message=_FP_WARNING)
+                return super().invoke(ctx)
         except click.UsageError as e:
             e.exit_code = 1
             raise
