@@ -44,7 +44,7 @@ class MatchError(InputError):
         body = self.message.format(**say) if self.refs else self.message
         if self.subject and self.refs and "{" in self.subject:
             head = self.subject.format(**say)
-        elif self.field is not None and self.field in names:
+        elif self.subject is not None and self.field in names:
             head = names[self.field]
         else:
             head = self.subject
@@ -146,7 +146,11 @@ class Criterion:
                 if f not in self.figures:
                     raise MatchError(f"figure {f!r} is not among the compared figures "
                                      f"({', '.join(self.figures)})", subject=f"criterion {name}", field=fld)
-                _positive(f"criterion {name}[{f}]", v, field=fld)
+                try:
+                    _positive(f"criterion {name}[{f}]", v, field=fld)
+                except MatchError as e:
+                    # the figure stays in the message when a front end names the field its own way
+                    raise MatchError(f"{f}: {e.message}", subject=f"criterion {name}", field=fld) from None
         if self.norm not in ("max", "sum"):
             raise MatchError(f"must be 'max' or 'sum', got {self.norm!r}", subject="criterion norm",
                              field="distance")

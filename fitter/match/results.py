@@ -310,6 +310,12 @@ class StackAssignment:
             "caution": CAUTION,
         }
 
+    def csv_rows(self) -> list[dict]:
+        """One row per (stack, slot), for printing labels."""
+        return [{"stack": f"S{k}", "slot": slot, "unit": s[slot], "ia_ma": 1e3 * s["ia"],
+                 "split_pct": 100 * s["split"], "gain": s["gain"], "deviation_pct": 100 * s["deviation"]}
+                for k, s in enumerate(self.stages, 1) for slot in ("bottom", "top")]
+
     def table(self) -> str:
         from ..stage import stage_title
 
