@@ -45,13 +45,12 @@ is :func:`fitter.service.matching.match`.
 from __future__ import annotations
 
 from .. import CAUTION  # one wording, in fitter/__init__.py
-from .criterion import (DEFAULT_GRADES, FIGURES, Criterion, MatchError, _positive, grade_of,
-                        mismatch_of, relative_difference, span_difference, within_tolerance)
-from .graph import (ALL_EDGES_UP_TO, NEAREST, UNIT_PASS_NEAREST, _Blossoms, _candidates, _components,
-                    _cross_edges, _EdgeSet, _k_nearest, _singles_lower_bound, _solve_matching, _Space,
-                    _violations)
-from .groups import (_finish, _log_figures, _nearest_reason, _prepare, _quad_candidates, _set_packing,
-                     match_pairs, match_quads, match_units, section_balance, select_units)
+from .criterion import (DEFAULT_GRADES, FIGURES, Criterion, MatchError, grade_of, mismatch_of,
+                        relative_difference, span_difference, within_tolerance)
+# private names the engine's tests use; the starting-edge settings (ALL_EDGES_UP_TO, NEAREST)
+# are left in fitter.match.graph, where setting them has an effect
+from .graph import _solve_matching, _Space
+from .groups import match_pairs, match_quads, match_units, section_balance, select_units
 from .positions import CathodeBias, FixedBias, StackedSlot, UnitFigures, unit_figures
 from .results import Group, MatchResult, Optimality, StackAssignment
 from .stacks import assign_stacks, stack_cases

@@ -17,7 +17,6 @@ import numpy as np
 
 from ..triode import FittedTriode, propagate
 from .criterion import FIGURES, MatchError, _positive
-from .results import _f
 
 @dataclass(frozen=True)
 class FixedBias:
@@ -168,6 +167,12 @@ class UnitFigures:
         d["outside_data"] = bool(self.outside[k])
         return d
 
+
+
+def _f(x):
+    """A finite float, or None (JSON has no NaN)."""
+    x = float(x)
+    return x if math.isfinite(x) else None
 
 
 def _model_groups(units):

@@ -8,17 +8,14 @@ Figures are SI inside and converted only here.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .. import CAUTION
 from .criterion import DEFAULT_GRADES, FIGURES, Criterion
+from .positions import UnitFigures, _f
 
-if TYPE_CHECKING:
-    from .positions import UnitFigures
 
 @dataclass
 class Optimality:
@@ -66,11 +63,6 @@ def _pct(x):
     if x is None or not np.isfinite(x):
         return None
     return float(100.0 * x)
-
-
-def _f(x):
-    x = float(x)
-    return x if math.isfinite(x) else None
 
 
 @dataclass
