@@ -148,13 +148,15 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
         "grades": _grades(grades), "bottle_balance": _num(bottle_balance, "--bottle-balance", percent=True),
         "extrapolate": extrapolate, "errors": errors, "time_limit": time_limit,
     }
-    from ..match import MatchError
-    from ..service.matching import match
+    from ..errors import InputError
+    from ..service.matching import MatchError, match
 
     try:
         res = match(spec)
     except MatchError as e:
         _fail(e.text(MATCH_FIELDS))
+    except InputError as e:  # the fit file or a card (file and field)
+        _fail(str(e))
     except RuntimeError as e:
         _fail(f"{'a stack' if stages is not None else 'the position'} could not be solved: {e}", 2)
     if csv_path:

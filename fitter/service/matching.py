@@ -30,7 +30,7 @@ from ..text import shown
 from ..triode import FittedTriode
 from ..units import parse_value
 
-__all__ = ["SPEC_FIELDS", "match"]
+__all__ = ["SPEC_FIELDS", "MatchError", "match"]
 
 #: The fields of a matching specification (all optional but a source of units and a position).
 SPEC_FIELDS = {
