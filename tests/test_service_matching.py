@@ -81,6 +81,13 @@ def test_service_and_cli_give_the_same_groups_and_mismatches(tmp_path, args, spe
     assert len(cli["groups"]) >= 2  # the comparison is about something
 
 
+def test_an_explicit_kind_of_position_gives_the_same_result():
+    units = stock(12, 5)
+    fields = {"units": units, "bplus": 300, "ra": 100e3, "rk": 1.5e3}
+    assert (match(dict(fields, position="cathode-bias")).to_dict()["groups"]
+            == match(fields).to_dict()["groups"])
+
+
 def test_service_takes_the_units_themselves():
     units = stock(12, 4)
     by_source = match({"units": units, "va": 250.0, "vg": -2.0}).to_dict()
@@ -118,6 +125,7 @@ def test_service_pairs_are_the_networkx_optimum(seed):
     assert len(res.groups) == len(ref)
     assert res.total_mismatch == pytest.approx(ref_total, abs=1e-6)  # gm by differences: ~1e-8
     assert res.optimality.exact
+    assert len(ref) >= 5 and len(res.unmatched) >= 1  # not a trivial stock: several pairs, units left over
 
 
 @pytest.mark.parametrize("spec, field", [
@@ -137,6 +145,8 @@ def test_service_pairs_are_the_networkx_optimum(seed):
     ({"stages": 2}, "stages"),
     ({"stack": "srpp", "bplus": 300, "rk": 1e3, "r_top": 1e3, "stages": 2, "target_split": 150}, "target_split"),
     ({"va": 250, "vg": -2, "colour": "red"}, "colour"),
+    ({"position": "cathode-bias", "va": 250, "vg": -2, "bplus": 300, "ra": 100e3, "rk": 1.5e3}, "va"),
+    ({"position": "grid-leak", "va": 250, "vg": -2}, "position"),
 ])
 def test_errors_carry_their_field(spec, field):
     with pytest.raises(MatchError) as e:
@@ -149,8 +159,9 @@ def test_errors_carry_their_field(spec, field):
 
 def test_cli_names_each_field_by_its_option(tmp_path):
     # every field a user sets on the command line has its option (the source is FITS, named
-    # by its path; the units themselves are not given on the command line)
-    assert set(MATCH_FIELDS) == set(SPEC_FIELDS) - {"source", "units"}
+    # by its path; the units themselves are not given on the command line, and the kind of
+    # position follows from the options given)
+    assert set(MATCH_FIELDS) == set(SPEC_FIELDS) - {"source", "units", "position"}
     path = write_fits(tmp_path / "fits.json", stock(6, 1))
     r = CliRunner().invoke(main, ["match", str(path), "--va", "250", "--vg", "-2", "--weights", "ia=-1"])
     assert r.exit_code == 1 and "error: --weights: ia: must be positive" in r.output

@@ -38,6 +38,8 @@ SPEC_FIELDS = {
     "units": "the fitted units themselves (a list of FittedTriode), instead of a source",
     "only": "labels of the units to use (default: all)",
     "exclude": "labels of units to leave out",
+    "position": "the kind of position, 'fixed-bias', 'cathode-bias' or 'stacked-slot' (default: the one "
+                "whose fields are given); its fields must then be the only position fields given",
     "va": "fixed-bias position: plate voltage [V]",
     "vg": "fixed-bias position: grid voltage [V]",
     "bplus": "cathode-biased or stacked position: B+ [V]",
@@ -70,6 +72,10 @@ SPEC_FIELDS = {
 
 #: fields only a stacked assignment (``stages``) uses
 _STACKED_ONLY = ("target_ma", "target_split", "same_bottle")
+
+#: the fields that belong to one kind of position only
+_POSITION_FIELDS = {"fixed-bias": ("va", "vg"), "cathode-bias": ("ra", "bypassed"),
+                    "stacked-slot": ("slot", "partner")}
 
 
 def match(spec: Mapping) -> MatchResult | StackAssignment:
@@ -242,6 +248,13 @@ class _Spec:
 
     def position(self, stack, units):
         """(position, units): a stacked slot takes its partner out of the units."""
+        kind = self.d.get("position")
+        if kind is not None:
+            kind = self.choice("position", tuple(_POSITION_FIELDS), None)
+            for other, fields in _POSITION_FIELDS.items():
+                for f in fields:
+                    if other != kind and f in self.d:
+                        raise MatchError(f"belongs to a {other} position, not a {kind} one", field=f, subject=f)
         va, vg, bplus, ra, rk = (self.number(f) for f in ("va", "vg", "bplus", "ra", "rk"))
         slot = self.d.get("slot")
         given = [(text, f) for text, f, v in (("{va}/{vg}", "va", va is not None or vg is not None),
