@@ -88,6 +88,12 @@ def test_an_explicit_kind_of_position_gives_the_same_result():
             == match(fields).to_dict()["groups"])
 
 
+def test_a_stacked_only_flag_left_false_is_not_an_error():
+    # a form sends every checkbox; false is "not asked for"
+    res = match({"units": stock(6, 2), "va": 250, "vg": -2, "same_bottle": False})
+    assert res.group_size == 2
+
+
 def test_service_takes_the_units_themselves():
     units = stock(12, 4)
     by_source = match({"units": units, "va": 250.0, "vg": -2.0}).to_dict()

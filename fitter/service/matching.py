@@ -115,7 +115,7 @@ def match(spec: Mapping) -> MatchResult | StackAssignment:
     if isinstance(stages, str) and stages.strip().isdigit():
         stages = int(stages)
     if stages is None:
-        stray = [f for f in _STACKED_ONLY if s.get(f) is not None]
+        stray = [f for f in _STACKED_ONLY if s.get(f) is not None and s.get(f) is not False]
         if stray:
             raise MatchError("only for a stacked assignment ({stack} with {stages} N)", field=stray[0],
                              subject=", ".join("{" + f + "}" for f in stray),
