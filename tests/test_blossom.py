@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 import fitter.match as fm
+import fitter.match.graph as fg  # the matcher's starting-edge settings live here
 from fitter._blossom import BlossomMatching
 
 
@@ -131,8 +132,8 @@ def _networkx_pairs(space):
 def test_nearest_neighbour_start_with_pricing_equals_networkx(monkeypatch):
     # force the large-set path on a small set, with so few starting edges that pricing
     # has to add edges (and restart) several times; networkx is the reference
-    monkeypatch.setattr(fm, "ALL_EDGES_UP_TO", 0)
-    monkeypatch.setattr(fm, "NEAREST", 2)
+    monkeypatch.setattr(fg, "ALL_EDGES_UP_TO", 0)
+    monkeypatch.setattr(fg, "NEAREST", 2)
     rng = np.random.default_rng(11)
     for trial in range(6):
         space = _space(rng.normal(0, 0.04, (150, 2)))
@@ -148,7 +149,7 @@ def test_units_that_must_stay_single_get_stand_ins(monkeypatch):
     # to a cluster: every maximum matching leaves two units single although the component
     # (100 units) is even.
     # The Tutte barrier {centre} proves it (3 odd parts - 1) and two stand-ins take them.
-    monkeypatch.setattr(fm, "ALL_EDGES_UP_TO", 0)
+    monkeypatch.setattr(fg, "ALL_EDGES_UP_TO", 0)
     rng = np.random.default_rng(5)
     r = 0.045  # compatible within 0.05 (Chebyshev, ln-figures): three corners of a square
     centre = [[0.0, 0.0]]

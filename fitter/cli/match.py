@@ -1,9 +1,10 @@
 """``platebook match FITS ...``: matched pairs, quads and stacked assignments.
 
-Thin layer: read the fitted units (the JSON of ``platebook fit --json`` or a folder of
-model cards), parse the position and criterion, call :mod:`fitter.match`, print a
-table or one JSON object, write the CSV for labelling.  Exit status 0 ok, 1 input
-error, 2 the matching or a stage solve failed.
+Thin layer: options -> a matching specification (field names, numbers read by the one
+number parser) -> :func:`fitter.service.matching.match` -> a table, one JSON object, and
+the CSV for labelling.  Errors come back carrying their field, which :data:`MATCH_FIELDS`
+names as an option.  Exit status 0 ok, 1 input error, 2 the matching or a stage solve
+failed.
 """
 
 from __future__ import annotations
@@ -14,37 +15,35 @@ import math
 
 import click
 
-from ..card import CardError, load_fits
-from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchError, StackedSlot,
-                     assign_stacks, match_units, select_units)
-from . import fail, main, value
-from ..text import shown as _shown
+from . import fail, main
 from .options import Count, OptionError, Value, number
+
+#: field of a matching specification -> the option that sets it (FITS, the source, is named
+#: by its path).  To be folded into the one field -> option table of the CLI.
+MATCH_FIELDS = {
+    "only": "--only", "exclude": "--exclude", "va": "--va", "vg": "--vg", "bplus": "--bplus", "ra": "--ra",
+    "rk": "--rk", "bypassed": "--unbypassed", "stack": "--stack", "r_top": "--r-top", "r_mid": "--r-mid",
+    "slot": "--slot", "partner": "--partner", "stages": "--stages", "target_ma": "--target-ma",
+    "target_split": "--target-split", "same_bottle": "--same-bottle", "group": "--group", "quad": "--quad",
+    "tolerance": "--tolerance", "figures": "--figures", "figure_tolerance": "--figure-tolerance",
+    "weights": "--weights", "distance": "--distance", "grades": "--grades", "bottle_balance": "--bottle-balance",
+    "extrapolate": "--extrapolate", "errors": "--errors", "time_limit": "--time-limit",
+}
 
 
 def _fail(message: str, code: int = 1):
     fail(message, code)
 
 
-def _val(text, option):
-    return value(text, option)
-
-
-def _positive(text, option, unreadable, what, shown=None):
-    """A positive finite float from ``text``; errors quote ``shown`` (default ``text``)."""
-    shown = text if shown is None else shown
+def _num(text, option, percent=False):
+    """The number in an option's text (engineering notation; a trailing % with ``percent``),
+    or None; its range is the service's to check."""
+    if text is None:
+        return None
     try:
-        v = number(text, option)
-    except OptionError:
-        _fail(f"{option}: cannot read {shown!r}{unreadable}")
-    if not v > 0:
-        _fail(f"{option}: must be a positive {what}, got {shown!r}")
-    return v
-
-
-def _percent(text, option):
-    s = str(text).strip().rstrip("%").strip()
-    return _positive(s, option, "; give a percentage such as 5 or 5%", "percentage", shown=text)
+        return number(text, option, percent=percent)
+    except OptionError as e:
+        _fail(e.format_message())
 
 
 def _mapping(text, option, percent=True):
@@ -55,12 +54,8 @@ def _mapping(text, option, percent=True):
         if "=" not in part:
             _fail(f"{option}: cannot read {part!r}; use figure=value, e.g. ia=5,gm=10")
         k, v = part.split("=", 1)
-        out[k.strip()] = _percent(v, f"{option} {k.strip()}") if percent else _number(v, f"{option} {k.strip()}")
+        out[k.strip()] = _num(v, f"{option} {k.strip()}", percent)
     return out
-
-
-def _number(text, option):
-    return _positive(text, option, " as a number", "number")
 
 
 def _labels(text):
@@ -69,26 +64,14 @@ def _labels(text):
 
 def _grades(text):
     if not text:
-        return DEFAULT_GRADES
+        return None
     g = []
     for part in text.split(","):
         if "=" not in part:
             _fail(f"--grades: cannot read {part!r}; use name=max%, e.g. tight=1,close=2.5,matched=5")
         name, v = part.split("=", 1)
-        g.append((name.strip(), _percent(v, f"--grades {name.strip()}")))
-    return tuple(sorted(g, key=lambda x: x[1]))
-
-
-# -- reading the fitted units ------------------------------------------------
-
-
-def read_fits(path):
-    """(units, failed) from a ``platebook fit --json`` file or a folder of model cards,
-    read by the card validator (:func:`fitter.card.load_fits`)."""
-    try:
-        return load_fits(path)
-    except CardError as e:
-        _fail(str(e))
+        g.append((name.strip(), _num(v, f"--grades {name.strip()}", percent=True)))
+    return g
 
 
 # -- the command ---------------------------------------------------------------
@@ -150,110 +133,35 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
     """
     if csv_path == "-":
         _fail("--csv -: give a file name (the table or the JSON goes to standard output)")
-    units, failed = read_fits(fits)
-    try:
-        units = select_units(units, _labels(only), _labels(exclude)) if units else units
-    except MatchError as e:
-        _fail(str(e))
-    if not units:
-        _fail(f"{_shown(fits)}: no fitted unit converged; nothing to match")
-    stack = None
-    if stack_kind:
-        from ..stage import Stack
+    given = click.get_current_context().get_parameter_source("target_split") == click.core.ParameterSource.COMMANDLINE
+    spec = {
+        "source": fits, "only": _labels(only), "exclude": _labels(exclude),
+        "va": _num(va, "--va"), "vg": _num(vg, "--vg"), "bplus": _num(bplus, "--bplus"), "ra": _num(ra, "--ra"),
+        "rk": _num(rk, "--rk"), "bypassed": not unbypassed, "stack": stack_kind, "r_top": _num(r_top, "--r-top"),
+        "r_mid": _num(r_mid, "--r-mid"), "slot": slot, "partner": partner, "stages": stages,
+        "target_ma": _num(target_ma, "--target-ma"),
+        "target_split": _num(target_split, "--target-split", percent=True) if given else None,
+        "same_bottle": same_bottle, "group": int(group), "quad": quad_mode,
+        "tolerance": _num(tolerance, "--tolerance", percent=True), "figures": _labels(figure_list) or [],
+        "figure_tolerance": _mapping(figure_tolerance, "--figure-tolerance") or None,
+        "weights": _mapping(weights, "--weights", percent=False) or None, "distance": distance,
+        "grades": _grades(grades), "bottle_balance": _num(bottle_balance, "--bottle-balance", percent=True),
+        "extrapolate": extrapolate, "errors": errors, "time_limit": time_limit,
+    }
+    from ..errors import InputError
+    from ..service.matching import MatchError, match
 
-        b, k, t = _val(bplus, "--bplus"), _val(rk, "--rk"), _val(r_top, "--r-top")
-        if b is None or k is None:
-            _fail("--stack: needs --bplus and --rk")
-        try:
-            if stack_kind == "srpp":
-                stack = Stack.srpp(b_plus=b, rk=k, r_top=t)
-            else:
-                m = _val(r_mid, "--r-mid")
-                if t is None or m is None:
-                    _fail("--stack mu-follower: needs --r-top and --r-mid")
-                stack = Stack.mu_follower(b_plus=b, rk=k, r_top=t, r_mid=m)
-        except ValueError as e:
-            _fail(f"--stack: {e}")
-    if stages is None:
-        source = click.get_current_context().get_parameter_source("target_split")
-        stray = [opt for opt, given in (("--target-ma", target_ma is not None),
-                                        ("--target-split", source == click.core.ParameterSource.COMMANDLINE),
-                                        ("--same-bottle", same_bottle)) if given]
-        if stray:
-            _fail(f"{', '.join(stray)}: only for a stacked assignment (--stack with --stages N)")
-    if stages is not None:
-        if stack is None:
-            _fail("--stages: give the stacked stage with --stack (and --bplus, --rk, --r-top)")
-        split = _percent(target_split, "--target-split")
-        if split >= 100:
-            _fail(f"--target-split: must lie between 0 and 100 %, got {target_split!r}")
-        tm = None if target_ma is None else _number(target_ma, "--target-ma")
-        try:
-            res = assign_stacks(units, stack, stages, target_ma=tm, target_split=split / 100.0,
-                                same_bottle=same_bottle, extrapolate=extrapolate, time_limit=time_limit)
-        except MatchError as e:
-            _fail(str(e))
-        except RuntimeError as e:
-            _fail(f"a stack could not be solved: {e}", 2)
-        res.excluded = failed + res.excluded
-        if csv_path:
-            _write_csv(csv_path, [{"stack": f"S{k}", "slot": slot_name, "unit": s[slot_name],
-                                   "ia_ma": 1e3 * s["ia"], "split_pct": 100 * s["split"], "gain": s["gain"],
-                                   "deviation_pct": 100 * s["deviation"]}
-                                  for k, s in enumerate(res.stages, 1) for slot_name in ("bottom", "top")])
-        click.echo(json.dumps(res.to_dict(), indent=2) if as_json else res.table())
-        return
-    position = _position(va, vg, bplus, ra, rk, unbypassed, stack, slot, partner, units)
     try:
-        crit = Criterion(tolerance_pct=_percent(tolerance, "--tolerance"),
-                         figures=tuple(_labels(figure_list) or ()),
-                         tolerances=_mapping(figure_tolerance, "--figure-tolerance") or None,
-                         weights=_mapping(weights, "--weights", percent=False) or None, norm=distance)
+        res = match(spec)
     except MatchError as e:
-        _fail(str(e))
-    bb = None if bottle_balance is None else _percent(bottle_balance, "--bottle-balance")
-    try:
-        res = match_units(units, position, group=int(group), criterion=crit, mode=quad_mode,
-                          extrapolate=extrapolate, errors=errors, bottle_balance_pct=bb,
-                          grades=_grades(grades), time_limit=time_limit)
-    except MatchError as e:
+        _fail(e.text(MATCH_FIELDS))
+    except InputError as e:  # the fit file or a card (file and field)
         _fail(str(e))
     except RuntimeError as e:
-        _fail(f"the position could not be solved: {e}", 2)
-    res.excluded = failed + res.excluded
+        _fail(f"{'a stack' if stages is not None else 'the position'} could not be solved: {e}", 2)
     if csv_path:
         _write_csv(csv_path, res.csv_rows())
     click.echo(json.dumps(res.to_dict(), indent=2) if as_json else res.table())
-
-
-def _position(va, vg, bplus, ra, rk, unbypassed, stack, slot, partner, units):
-    given = [name for name, v in (("--va/--vg", va or vg), ("--ra", ra), ("--slot", slot)) if v]
-    if len(given) > 1:
-        _fail(f"give one position: {' and '.join(given)} were both given")
-    try:
-        if va is not None or vg is not None:
-            if va is None or vg is None:
-                _fail("fixed-bias position: give both --va and --vg")
-            return FixedBias(_val(va, "--va"), _val(vg, "--vg"))
-        if slot is not None:
-            if stack is None:
-                _fail("--slot: give the stacked stage with --stack")
-            if partner is None:
-                _fail("--slot: name the unit in the other slot with --partner")
-            found = [u for u in units if u.label == partner]
-            if not found:
-                _fail(f"--partner: unknown unit {partner!r}")
-            rest = [u for u in units if u.label != partner]
-            units[:] = rest
-            return StackedSlot(stack, slot, found[0])
-        if ra is not None:
-            if bplus is None or rk is None:
-                _fail("cathode-biased position: give --bplus, --ra and --rk")
-            return CathodeBias(_val(bplus, "--bplus"), _val(ra, "--ra"), _val(rk, "--rk"), not unbypassed)
-    except MatchError as e:
-        _fail(str(e))
-    _fail("no position: give --va and --vg, or --bplus, --ra and --rk, or --stack with --slot/--partner "
-          "(or --stages for a stacked assignment)")
 
 
 def _write_csv(path, rows):

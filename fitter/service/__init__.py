@@ -11,4 +11,6 @@ Modules:
 
 * :mod:`fitter.service.stock`: the stock ledger's use cases (import, re-test, grade, match
   from stock, reserve, back up).
+* :mod:`fitter.service.matching`: matching (``match``: pairs, quads, a slot of a stack, or
+  stacked assignment, from a fit file, a folder of cards or the units themselves).
 """
