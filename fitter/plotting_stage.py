@@ -11,10 +11,11 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .distortion import Distortion, DistortionSweep, drive_limit  # noqa: E402
-from .stage import (CAUTION, CathodeFollower, CommonCathode, StageResult, Stack,  # noqa: E402
-                    operating_point, output_node, quasi_static, stage_title, tube_positions)
-from .stage import _eng as _eng_unit  # noqa: E402
+from .stage import (CAUTION, CommonCathode, StageResult, Stack,  # noqa: E402
+                    output_node, stage_title, tube_positions)
+from .stage.distortion import Distortion, DistortionSweep  # noqa: E402
+from .stage.loadlines import load_lines  # noqa: E402
+from .stage.results import _eng as _eng_unit  # noqa: E402
 from .outfiles import plot_path, write_atomic  # noqa: E402
 from .units import format_value  # noqa: E402
 
@@ -138,49 +139,26 @@ def plot_load_lines(result: StageResult, axes=None):
         fig, axes = plt.subplots(1, len(positions), figsize=(7.5 * len(positions), 7.0), squeeze=False)
         axes = list(axes[0])
     fig = axes[0].figure
-    op = operating_point(st, *triodes)
-    lim = drive_limit(st, *triodes, op=op)
-    A = lim.vin_peak
-    swing = quasi_static(st, *triodes, vin=np.linspace(-A, A, 201), op=op)
-    wide = quasi_static(st, *triodes, vin=np.linspace(-3 * A, 3 * A, 301), op=op)
-    for ax, pos, t in zip(axes, positions, triodes):
-        va_q, ia_q, vgk_q = f[pos + ".va"], 1e3 * f[pos + ".ia"], f[pos + ".vgk"]
-        if isinstance(st, CathodeFollower):
-            va_max = st.b_plus - st.vneg
+    data = load_lines(result)
+    A = data.swing_vin_peak
+    for ax, ln, t in zip(axes, data.lines, triodes):
+        pos = ln.position
+        va_q, ia_q, vgk_q = ln.va_q, 1e3 * ln.ia_q, ln.vgk_q
+        va_max, ia_top = ln.va_max, 1e3 * ln.ia_max
+        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, ln.mu_q, st.pa_max)
+        if ln.dc_resistance is not None:
+            ax.plot(ln.dc_va, 1e3 * ln.dc_ia, "-", color="tab:blue", lw=1.8,
+                    label=f"DC load line ({_eng(ln.dc_resistance)} = Ra + Rk)" if isinstance(st, CommonCathode)
+                    else f"DC load line ({_eng(ln.dc_resistance)})")
+            ax.plot(ln.ac_va, 1e3 * ln.ac_ia, "--", color="tab:orange", lw=1.3,
+                    label=f"AC load line ({_eng(ln.ac_resistance)})")
         else:
-            va_max = st.b_plus
-        va_max *= 1.05
-        if isinstance(st, (CommonCathode, CathodeFollower)):
-            r_dc = st.ra + st.rk
-            supply = st.b_plus - (st.vneg if isinstance(st, CathodeFollower) else 0.0)
-            ia_top = min(1e3 * supply / r_dc * 1.15, 4.0 * ia_q) if r_dc > 0 else 4.0 * ia_q
-        else:
-            ia_top = 2.6 * ia_q
-        ia_top = max(ia_top, 1.8 * ia_q)
-        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, f[pos + ".mu"], st.pa_max)
-        if isinstance(st, (CommonCathode, CathodeFollower)):
-            supply = st.b_plus - (st.vneg if isinstance(st, CathodeFollower) else 0.0)
-            r_dc = st.ra + st.rk
-            ax.plot([supply, 0.0], [0.0, 1e3 * supply / r_dc], "-", color="tab:blue", lw=1.8,
-                    label=f"DC load line ({_eng(r_dc)} = Ra + Rk)" if isinstance(st, CommonCathode)
-                    else f"DC load line ({_eng(r_dc)})")
-            # AC line through Q with the mid-band resistance seen by the tube
-            va_w, ia_w = wide[pos + ".va"], 1e3 * wide[pos + ".ia"]
-            slope = np.polyfit(ia_w[wide[pos + '.ia'] > 0], va_w[wide[pos + '.ia'] > 0], 1)[0] \
-                if np.sum(wide[pos + ".ia"] > 0) > 3 else -1.0
-            r_ac = -slope * 1e3
-            i_line = np.linspace(0.0, ia_top, 50)
-            ax.plot(va_q + (i_line - ia_q) * slope, i_line, "--", color="tab:orange", lw=1.3,
-                    label=f"AC load line ({_eng(r_ac)})")
-        else:
-            dcl = quasi_static(st, *triodes, vin=np.linspace(-40.0 * abs(vgk_q) - 5, 3.0 * abs(f['bottom.vgk']) + 2, 300),
-                               dc_grid=True)
-            ax.plot(dcl[pos + ".va"], 1e3 * dcl[pos + ".ia"], "-", color="tab:blue", lw=1.8,
+            ax.plot(ln.dc_va, 1e3 * ln.dc_ia, "-", color="tab:blue", lw=1.8,
                     label=_stack_dc_label(st, pos))
-            ax.plot(wide[pos + ".va"], 1e3 * wide[pos + ".ia"], "--", color="tab:orange", lw=1.3,
+            ax.plot(ln.ac_va, 1e3 * ln.ac_ia, "--", color="tab:orange", lw=1.3,
                     label="AC load: path of the mid-band signal")
-        ax.plot(swing[pos + ".va"], 1e3 * swing[pos + ".ia"], "-", color="tab:red", lw=3.2, alpha=0.75,
-                label=f"swing to {lim.reason} (±{A:.3g} V in)")
+        ax.plot(ln.swing_va, 1e3 * ln.swing_ia, "-", color="tab:red", lw=3.2, alpha=0.75,
+                label=f"swing to {data.swing_limit} (±{A:.3g} V in)")
         if st.pa_max:
             v = np.linspace(max(st.pa_max / (ia_top * 1e-3), 1.0), va_max, 200)
             ax.plot(v, 1e3 * st.pa_max / v, "-.", color="crimson", lw=1.0, label=f"Pa max {st.pa_max:g} W")

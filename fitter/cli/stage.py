@@ -337,7 +337,7 @@ def _make_distortion_command(kind):
     opts, builder, doc = _KIND[kind]
 
     def command(**o):
-        from .. import distortion as dist
+        from ..stage import distortion as dist
 
         st = builder(o)
         tubes = _tubes(kind, o)
