@@ -22,6 +22,7 @@ from ..export import (
 from ..outfiles import OutputError, write_atomic
 from ..text import shown
 from . import fail, main, value
+from .fields import message
 
 
 def _fail(message: str) -> None:
@@ -71,8 +72,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             if v is not None and fmt != which:
                 _fail(f"{opt} applies to --format {which} only (this is --format {fmt})")
 
-    own_grid = triode.model.grid_current is not None and (
-        triode.params.get("Gg", 0.0) != 0.0 or triode.params.get("Ig0", 0.0) != 0.0)
+    own_grid = triode.model.carries_grid_current(triode.params)
     if grid_r is not None and own_grid:
         _fail(f"--grid-r does not apply to {card}: its {triode.model.name} model carries its own fitted "
               "grid current, which the subcircuit uses")
@@ -99,7 +99,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             if va_spec is None:
                 va, vg = default_sweep(triode)
             else:
-                va, vg = parse_sweep(va_spec, "--va"), parse_sweep(vg_spec, "--vg")
+                va, vg = parse_sweep(va_spec, "va"), parse_sweep(vg_spec, "vg")
             with np.errstate(all="ignore"):  # overflow far out is caught on the result just below
                 fam = curve_family(triode, va, vg, tube=name)
             if not np.all(np.isfinite(fam.ia)):
@@ -124,7 +124,7 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
             text = curves_csv(fam, card=str(card))
             summary = f"{fam.va.size} points ({vg.size} curves x {va.size} plate voltages) of {fam.tube}"
     except ExportError as e:
-        _fail(str(e))
+        _fail(message(e))
 
     if output is None or output == "-":  # '-': standard output, as for most command-line tools
         click.echo(text, nl=False)

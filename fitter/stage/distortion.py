@@ -75,8 +75,7 @@ def harmonic_amplitudes(y, n_harmonics: int = N_HARMONICS):
 
 def assumptions(triodes) -> list[str]:
     """The assumptions a distortion report states."""
-    grid = [t.label for t in triodes if t.model.grid_current is not None
-            and (t.params.get("Gg", 0.0) != 0.0 or t.params.get("Ig0", 0.0) != 0.0)]
+    grid = [t.label for t in triodes if t.model.carries_grid_current(t.params)]
     out = [
         "quasi-static: the waveform is solved point by point (no reactances in the signal band)",
         "mid-band: coupling and bypass capacitors hold their DC charge",
@@ -144,7 +143,7 @@ def _stage_warnings(stage, triodes) -> list[str]:
 
 
 def _has_grid_current(t) -> bool:
-    return t.model.grid_current is not None and (t.params.get("Gg", 0.0) != 0.0 or t.params.get("Ig0", 0.0) != 0.0)
+    return t.model.carries_grid_current(t.params)
 
 
 #: Harmonics below this [dB re H1] are under the numerical resolution of the quasi-static

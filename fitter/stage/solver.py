@@ -40,8 +40,7 @@ class _Bank:
         self.model = model
         self.params = params
         # models without a grid-current part never give a negative plate current
-        self.nonnegative = not (model.grid_current is not None
-                                and (np.any(params.get("Gg", 0.0) != 0) or np.any(params.get("Ig0", 0.0) != 0)))
+        self.nonnegative = not model.carries_grid_current(params)
 
     @classmethod
     def of(cls, triodes: Sequence[FittedTriode]) -> "_Bank":
