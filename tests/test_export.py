@@ -291,4 +291,4 @@ def test_grid_r_is_refused_for_a_card_with_its_own_grid_current(tmp_path):
     card = tmp_path / "dz.json"
     save_card(card, t)
     r = CliRunner().invoke(main, ["export", str(card), "--format", "spice", "--grid-r", "1k"])
-    assert r.exit_code == 1 and "--grid-r does not apply" in r.output
+    assert r.exit_code == 1 and "--grid-r: does not apply" in r.output
