@@ -23,13 +23,6 @@ __all__ = ["plot_load_lines", "save_load_line_plot", "plot_thd_sweep", "save_thd
            "plot_waveform", "save_waveform_plot"]
 
 
-def _nice_step(span: float, most: int = 12) -> float:
-    for s in (0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 2.5, 5.0, 10.0, 20.0, 25.0, 50.0, 100.0):
-        if span / s <= most:
-            return s
-    return 200.0
-
-
 _NODE_TEXT = {"plate": "the plate", "cathode": "the cathode", "cathode_top": "the top cathode",
               "plate_bottom": "the bottom plate"}
 
@@ -48,19 +41,9 @@ def _tubes_text(stage, triodes) -> str:
     return " and ".join(f"{p} {t.label}" for p, t in zip(positions, triodes))
 
 
-def _outside_grid(triode, vg) -> bool:
-    """True when grid voltage ``vg`` [V] lies outside the card's fitted grid range
-    (beyond a 2 % margin of its span), i.e. the curve is extrapolated."""
-    rng = triode.valid_range
-    if not rng or "vg" not in rng:
-        return False
-    lo, hi = rng["vg"]
-    tol = 0.02 * max(hi - lo, 0.1)
-    return bool(vg < lo - tol or vg > hi + tol)
-
-
-def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
-    """Draw the plate-curve family and the curve through the operating point.
+def _plate_curves(ax, pc, ia_top, pa_max=None):
+    """Draw the plate-curve family ``pc`` (:class:`fitter.stage.loadlines.PlateCurves`) and
+    the curve through the operating point.
 
     Curves outside the card's fitted grid range are dashed and lighter, with one
     legend note.  Each curve is labelled in volts where it leaves the plot (top or
@@ -69,21 +52,15 @@ def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
 
     Returns the grid step [V].
     """
-    vg_cut = -va_max / max(mu, 0.5)
-    step = _nice_step(abs(vg_cut), 11)
-    va = np.linspace(0.0, va_max, 400)
-    grids = np.arange(0.0, vg_cut - step, -step)
+    va = pc.va
     cmap = plt.get_cmap("viridis")
     top = np.full_like(va, 0.97 * ia_top)
     pa_ma = 1e3 * pa_max / np.maximum(va, 1e-9) if pa_max else None
     box = dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.75)
-    extrapolated = False
-    for i, vg in enumerate(grids):
-        vg = float(np.round(vg, 9)) + 0.0
-        ia = 1e3 * triode.current(va, np.full_like(va, vg))
-        c = cmap(0.15 + 0.7 * i / max(len(grids) - 1, 1))
-        out = _outside_grid(triode, vg)
-        extrapolated |= out
+    n = len(pc.vg)
+    for i, (vg, row, out) in enumerate(zip(pc.vg, pc.ia, pc.extrapolated)):
+        ia = 1e3 * row
+        c = cmap(0.15 + 0.7 * i / max(n - 1, 1))
         ax.plot(va, ia, "--" if out else "-", lw=0.9, color=c, alpha=0.5 if out else 0.9)
         inside = np.flatnonzero(ia <= top)
         if pa_ma is not None and inside.size:
@@ -98,14 +75,13 @@ def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
         elif inside.size:
             ax.annotate(text, (va[-1], ia[-1]), xytext=(2, 0), va="center", annotation_clip=False, **kw)
     # the curve through the operating point, highlighted
-    ia_q = 1e3 * triode.current(va, np.full_like(va, vgk_q))
-    note = ", extrapolated" if _outside_grid(triode, vgk_q) else ""
-    ax.plot(va, ia_q, ":", lw=1.4, color="0.3", label=f"Vgk = {vgk_q:.3g} V (operating point{note})")
-    if extrapolated:
-        lo, hi = triode.valid_range["vg"]
+    note = ", extrapolated" if pc.q_extrapolated else ""
+    ax.plot(va, 1e3 * pc.ia_q_curve, ":", lw=1.4, color="0.3", label=f"Vgk = {pc.vg_q:.3g} V (operating point{note})")
+    if np.any(pc.extrapolated):
+        lo, hi = pc.fitted_vg
         ax.plot([], [], "--", lw=0.9, color="0.55",
                 label=f"dashed curves: extrapolated\n(fitted data cover Vgk {lo:g}..{hi:g} V)")
-    return step
+    return pc.step
 
 
 def _eng(x):
@@ -145,7 +121,7 @@ def plot_load_lines(result: StageResult, axes=None):
         pos = ln.position
         va_q, ia_q, vgk_q = ln.va_q, 1e3 * ln.ia_q, ln.vgk_q
         va_max, ia_top = ln.va_max, 1e3 * ln.ia_max
-        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, ln.mu_q, st.pa_max)
+        step = _plate_curves(ax, ln.curves, ia_top, st.pa_max)
         if ln.dc_resistance is not None:
             ax.plot(ln.dc_va, 1e3 * ln.dc_ia, "-", color="tab:blue", lw=1.8,
                     label=f"DC load line ({_eng(ln.dc_resistance)} = Ra + Rk)" if isinstance(st, CommonCathode)

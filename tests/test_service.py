@@ -19,6 +19,7 @@ import json
 import math
 from pathlib import Path
 
+import numpy as np
 import pytest
 from click.testing import CliRunner
 
@@ -155,8 +156,14 @@ def test_load_lines_are_data_that_obey_kirchhoff(lot):
     # the swing passes through the operating point and stays on the AC line
     mid = ln.swing_va.size // 2
     assert (ln.swing_va[mid], ln.swing_ia[mid]) == pytest.approx((ln.va_q, ln.ia_q), rel=1e-9)
+    # the operating point lies on the plate curve at its own grid voltage (the model, sampled
+    # every 0.75 V: linear interpolation is good to a few parts in 1e4 there)
+    pc = ln.curves
+    assert pc.vg_q == ln.vgk_q and pc.vg[0] == 0.0 and np.all(np.diff(pc.vg) == -pc.step)
+    assert np.interp(ln.va_q, pc.va, pc.ia_q_curve) == pytest.approx(ln.ia_q, rel=1e-3)
     d = data.to_dict()
     assert d["tubes"]["tube"]["dc"]["resistance_ohm"] == pytest.approx(101.5e3)
+    assert len(d["tubes"]["tube"]["curves"]["ia_ma"]) == pc.vg.size
     assert d["swing_limit"] == data.swing_limit and json.dumps(d, allow_nan=False)
 
 
