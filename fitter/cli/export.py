@@ -10,7 +10,8 @@ from __future__ import annotations
 import click
 
 from ..errors import InputError
-from ..export import GRID_RESISTANCE, HIGH_VOLTAGE_CAUTION
+from .. import CAUTION
+from ..service.export import GRID_RESISTANCE
 from ..outfiles import OutputError, write_atomic
 from ..text import shown
 from . import fail, main, value
@@ -85,4 +86,4 @@ def export_command(card, fmt, name, output, va_spec, vg_spec, cgk, cga, cak, gri
         _fail(f"-o {e}")
     click.echo(f"wrote {shown(str(output))}: {shown(summary)}")
     if fmt == "spice":
-        click.echo(HIGH_VOLTAGE_CAUTION)
+        click.echo(CAUTION)

@@ -15,7 +15,6 @@ from .options import Count, OptionError, Value, number
 from .. import CAUTION
 from ..errors import InputError
 from ..models import DEFAULT_MODEL, MODELS
-from ..reader import CurveReadError
 from ..text import shown
 
 
@@ -73,9 +72,8 @@ def _fmt(x, spec=".4g"):
     return "-" if x is None else format(x, spec)
 
 
-def _table(rows_by_unit, multi: bool) -> str:
-    """The readable fit table."""
-    from ..fit import LOOSE_FIT_REL_RMS
+def _table(rows_by_unit, multi: bool, loose_limit: float) -> str:
+    """The readable fit table; a fit whose relative rms is above ``loose_limit`` is marked."""
 
     head = f"{'unit':<16} {'model':<9} {'pts':>4} {'out':>3} {'rms mA':>8} {'rel %':>6} {'mu':>9}  parameters"
     lines = [head, "-" * len(head)]
@@ -96,7 +94,7 @@ def _table(rows_by_unit, multi: bool) -> str:
             mus = f"{mu:.4g}" if mu is not None else "-"
             if r.stderr.get("mu") is not None:
                 mus += f"±{r.stderr['mu']:.2g}"
-            loose = "!" if r.rel_rms > LOOSE_FIT_REL_RMS else " "
+            loose = "!" if r.rel_rms > loose_limit else " "
             lines.append(f"{name:<16} {r.model.name:<8}{mark} {r.n_points:>4} {r.n_outliers:>3} "
                          f"{r.rms_ma:>8.4f} {100 * r.rel_rms:>5.2f}{loose} {mus:>9}  {others}")
     return "\n".join(lines)
@@ -134,7 +132,6 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     or more fits failed (or --skip-bad left out a whole unit).
     """
     from ..service.fitting import FitSpec, check_fix, fit_units, models_of, read_units, write_outputs
-    from ..fit import LOOSE_FIT_REL_RMS
 
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
@@ -150,9 +147,7 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     try:
         check_fix(fix, models)
         inputs = read_units(spec)
-    except CurveReadError as e:
-        fail_input(str(e))
-    except InputError as e:
+    except InputError as e:  # a file's problems (CurveReadError) list their lines and columns
         fail_input(_input_error(e, typed))
     for s in inputs.skipped:
         click.echo(f"skipped: {_lines(s)}", err=True)
@@ -176,14 +171,14 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     if as_json:
         click.echo(json.dumps(run.to_dict(), allow_nan=False))
     else:
-        click.echo(_table(results, len(models) > 1))
+        click.echo(_table(results, len(models) > 1, run.loose_limit))
         notes = _notes(results, inputs.notes)
         if notes:
             click.echo("\n" + notes)
         if len(models) > 1:
             click.echo("\n* best model for the unit (lowest BIC among converged fits)")
-        if any(r.converged and r.rel_rms > LOOSE_FIT_REL_RMS for r in flat):
-            click.echo(f"\n! loose fit: relative rms above {100 * LOOSE_FIT_REL_RMS:g} %, well above the ~1 % "
+        if run.loose:
+            click.echo(f"\n! loose fit: relative rms above {100 * run.loose_limit:g} %, well above the ~1 % "
                        "scatter of tracer data; the model misses the tube's shape somewhere")
         n_out = sum(r.n_outliers for r in flat if r.converged)
         click.echo(f"\n{len(inputs.units)} unit(s), {len(flat)} fit(s), {run.n_failed} unit(s) without a good fit, "

@@ -13,8 +13,7 @@ import json
 import click
 
 from ..errors import InputError
-from ..service.stages import KINDS, DistortionSpec, SpreadSpec, StageSpec
-from ..stage import StageSolveError
+from ..service.stages import KINDS, DistortionSpec, SpreadSpec, StageSolveError, StageSpec
 from . import fail, main, value
 from .fields import OPTIONS, message, option
 from .options import Count, OptionError, number

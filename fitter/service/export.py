@@ -10,9 +10,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..export import GRID_RESISTANCE
 from .specs import NoResult, SpecError
 
-__all__ = ["FORMATS", "ExportSpec", "ExportResult", "export"]
+__all__ = ["GRID_RESISTANCE", "FORMATS", "ExportSpec", "ExportResult", "export"]
 
 #: format -> the fields that belong to it alone
 FORMATS = {"spice": ("cgk", "cga", "cak", "grid_resistance"), "json": (), "csv": ("va", "vg")}
@@ -83,7 +84,7 @@ def export(spec: ExportSpec) -> ExportResult:
     import numpy as np
 
     from ..card import load_card, read_json
-    from ..export import (GRID_RESISTANCE, card_json, curve_family, curves_csv, default_sweep, parse_sweep,
+    from ..export import (card_json, curve_family, curves_csv, default_sweep, parse_sweep,
                           spice_name, spice_subcircuit)
 
     fmt = spec.format

@@ -216,6 +216,18 @@ class FitRun:
         return [s for s in self.inputs.skipped if drops_whole_unit(s)]
 
     @property
+    def loose_limit(self) -> float:
+        """Relative rms above which a converged fit is loose (:data:`fitter.fit.LOOSE_FIT_REL_RMS`)."""
+        from ..fit import LOOSE_FIT_REL_RMS
+
+        return LOOSE_FIT_REL_RMS
+
+    @property
+    def loose(self) -> list:
+        """Converged fits looser than :attr:`loose_limit` (the model misses the tube's shape)."""
+        return [r for r in self.fits if r.converged and r.rel_rms > self.loose_limit]
+
+    @property
     def failed(self) -> bool:
         """A fit failed or a whole unit was left out: not a complete result."""
         return bool(self.n_failed or self.dropped)

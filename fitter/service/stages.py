@@ -18,10 +18,10 @@ from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from typing import Mapping
 
-from ..stage import CathodeFollower, CommonCathode, Stack, StageInputError, solve, spread
+from ..stage import CathodeFollower, CommonCathode, Stack, StageInputError, StageSolveError, solve, spread
 from .specs import SpecError, load_unit
 
-__all__ = ["KINDS", "StageSpec", "SpreadSpec", "DistortionSpec", "build_stage", "solve_stage", "spread_stage",
+__all__ = ["StageSolveError", "KINDS", "StageSpec", "SpreadSpec", "DistortionSpec", "build_stage", "solve_stage", "spread_stage",
            "stage_distortion", "stage_load_lines", "pair_sections"]
 
 #: kind of stage -> its description class
