@@ -202,10 +202,6 @@ def load_lines(result: StageResult) -> LoadLines:
     swing = quasi_static(st, *triodes, vin=np.linspace(-amp, amp, 201), op=op)
     wide = quasi_static(st, *triodes, vin=np.linspace(-3 * amp, 3 * amp, 301), op=op)
     single = isinstance(st, (CommonCathode, CathodeFollower))
-    dcl = None
-    if not single:
-        dcl = quasi_static(st, *triodes, vin=np.linspace(-40.0 * abs(f["bottom.vgk"]) - 5, 3.0 * abs(f["bottom.vgk"]) + 2, 300),
-                           dc_grid=True)
     lines = []
     for pos, t in zip(tube_positions(st), triodes):
         va_q, ia_q, vgk_q = f[pos + ".va"], f[pos + ".ia"], f[pos + ".vgk"]
@@ -228,6 +224,9 @@ def load_lines(result: StageResult) -> LoadLines:
             ac_va, ac_ia = va_q + (i_line - 1e3 * ia_q) * slope, i_line / 1e3
             dc_r, ac_r = r_dc, r_ac
         else:
+            # the bottom grid swept from well below this tube's bias to above the bottom's
+            dcl = quasi_static(st, *triodes, vin=np.linspace(-40.0 * abs(vgk_q) - 5, 3.0 * abs(f["bottom.vgk"]) + 2, 300),
+                               dc_grid=True)
             dc_va, dc_ia = dcl[pos + ".va"], dcl[pos + ".ia"]
             ac_va, ac_ia = wide[pos + ".va"], wide[pos + ".ia"]
             dc_r = ac_r = None
