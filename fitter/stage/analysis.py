@@ -289,7 +289,7 @@ def spread(stage, units: Sequence[FittedTriode], tops=None, slew_vpeak: float = 
     stage_kind(stage)
     units = list(units)
     if not units:
-        raise ValueError("spread: no units given")
+        raise StageInputError("no units given", field="units")
     for t in units:
         if not isinstance(t, FittedTriode):
             raise ValueError(f"spread: units must be FittedTriode objects, got {type(t).__name__}")

@@ -557,7 +557,7 @@ def sweep(stage, *triodes, levels: int = 30, thd_limit: float = 0.01, lowest: fl
     _require_conduction(stage, triodes, op)
     lim = drive_limit(stage, *triodes, op=op, grid_onset=grid_onset, cutoff_fraction=cutoff_fraction)
     if lim.vin_peak <= 0:
-        raise ValueError(f"sweep: no signal swing is possible ({lim.detail})")
+        raise StageInputError(f"sweep: no signal swing is possible ({lim.detail})")
     amps = np.geomspace(lowest * lim.vin_peak, lim.vin_peak, levels)
     *_, H, thd = _distortion_at(stage, triodes, op, amps, n_samples)
     over = np.nonzero(thd > thd_limit)[0]
