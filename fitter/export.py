@@ -112,8 +112,15 @@ _COMMENT_MAX = 300
 _CONTROL = frozenset({"Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"})
 
 
-class ExportError(ValueError):
-    """An export could not be made; the message names the option or field at fault."""
+class ExportError(InputError):
+    """An export could not be made; ``field`` names the value at fault (``"name"``,
+    ``"cga"``, ``"va"``), and the text reads ``field: message``."""
+
+    def __init__(self, message: str, *, field: str | None = None):
+        super().__init__(message, field=field)
+
+    def __str__(self) -> str:
+        return f"{self.field}: {self.message}" if self.field else self.message
 
 
 @dataclass(frozen=True)
@@ -139,14 +146,14 @@ class SpiceExpression:
 # ---------------------------------------------------------------------------
 
 
-def _finite(x, what: str = "parameter value") -> float:
+def _finite(x, what: str = "parameter value", field: str | None = None) -> float:
     """``x`` as a finite Python float (so only our own formatting reaches a netlist)."""
     try:
         v = float(x)
     except (TypeError, ValueError):
-        raise ExportError(f"{what} {shown(repr(x))[:40]} is not a number") from None
+        raise ExportError(f"{what} {shown(repr(x))[:40]} is not a number", field=field) from None
     if not math.isfinite(v):
-        raise ExportError(f"{what} {v!r} is not finite")
+        raise ExportError(f"{what} {v!r} is not finite", field=field)
     return v
 
 
@@ -270,18 +277,18 @@ def spice_name(triode: FittedTriode) -> str:
 def _check_name(name) -> str:
     if not (isinstance(name, str) and SPICE_NAME.fullmatch(name)):
         raise ExportError(
-            f"--name: {shown(repr(name))} is not a usable subcircuit name; use letters, digits and _ "
-            f"(no spaces or other characters), starting with a letter or digit, at most {_NAME_MAX} characters"
-        )
+            f"{shown(repr(name))} is not a usable subcircuit name; use letters, digits and _ "
+            f"(no spaces or other characters), starting with a letter or digit, at most {_NAME_MAX} characters",
+            field="name")
     return name
 
 
 def _check_cap(value, what: str) -> float | None:
     if value is None:
         return None
-    v = _finite(value, f"{what}: capacitance")
+    v = _finite(value, "capacitance", field=what)
     if v < 0:
-        raise ExportError(f"{what}: capacitance must be a finite value >= 0, got {value!r}")
+        raise ExportError(f"capacitance must be a finite value >= 0, got {value!r}", field=what)
     return v if v > 0 else None
 
 
@@ -340,10 +347,10 @@ def spice_subcircuit(
     from . import __version__
 
     name = _check_name(spice_name(triode) if name is None else name)
-    caps = {k: _check_cap(v, f"--{k}") for k, v in (("cgk", cgk), ("cga", cga), ("cak", cak))}
+    caps = {k: _check_cap(v, k) for k, v in (("cgk", cgk), ("cga", cga), ("cak", cak))}
     for what, v in (("grid_resistance", grid_resistance), ("grid_knee", grid_knee)):
-        if not _finite(v, what) > 0:
-            raise ExportError(f"{what}: must be a positive finite value, got {v!r}")
+        if not _finite(v, "value", field=what) > 0:
+            raise ExportError(f"must be a positive finite value, got {v!r}", field=what)
     grid_resistance, grid_knee = float(grid_resistance), float(grid_knee)
     va, vg = "V(plate,cathode)", "V(grid,cathode)"
     expr = spice_expression(triode, va, vg)
@@ -411,17 +418,17 @@ def spice_subcircuit(
 def card_json(triode: FittedTriode, fit=None, source=None, tube: str | None = None) -> str:
     """The unit as a model-card JSON text (``platebook.model-card`` version 1).
 
-    ``tube`` renames the unit in the card (``--name``); fit figures and sources are
+    ``tube`` renames the unit in the card (field ``name``); fit figures and sources are
     carried over from the arguments.
     """
     d = card_dict(triode, fit=fit, source=source)
     if tube is not None:
         if not str(tube).strip():
-            raise ExportError("--name: the tube name must not be empty")
+            raise ExportError("the tube name must not be empty", field="name")
         try:
-            d["tube"] = plain_text(str(tube), "--name")
+            d["tube"] = plain_text(str(tube), "name")
         except InputError as e:
-            raise ExportError(f"--name: {e.message}") from None
+            raise ExportError(e.message, field="name") from None
     return json.dumps(d, indent=2) + "\n"
 
 
@@ -438,7 +445,7 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
     text : str
         ``"0:400:5"`` or ``"-4,-2,0"`` [V].
     what : str
-        Option name for error messages (e.g. ``--va``).
+        The field named in errors (``"va"`` or ``"vg"``).
 
     Returns
     -------
@@ -456,22 +463,22 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
     if ":" in s:
         parts = s.split(":")
         if len(parts) != 3:
-            raise ExportError(f"{what}: {text!r} should be start:stop:step, e.g. 0:400:5")
+            raise ExportError(f"{text!r} should be start:stop:step, e.g. 0:400:5", field=what)
         try:
             a, b, h = (parse_value(x, what) for x in parts)
         except ValueError:
-            raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
+            raise ExportError(f"cannot read {text!r}; {hint}", field=what) from None
         if not all(map(math.isfinite, (a, b, h))):
-            raise ExportError(f"{what}: {text!r} has a value that is not finite")
+            raise ExportError(f"{text!r} has a value that is not finite", field=what)
         if h <= 0:
-            raise ExportError(f"{what}: step must be positive in {text!r}")
+            raise ExportError(f"step must be positive in {text!r}", field=what)
         if b < a:
-            raise ExportError(f"{what}: stop is below start in {text!r}")
+            raise ExportError(f"stop is below start in {text!r}", field=what)
         if b > a and h > b - a:
-            raise ExportError(f"{what}: the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}")
+            raise ExportError(f"the step {h:g} is larger than the range {a:g}..{b:g} in {text!r}", field=what)
         steps = (b - a) / h  # inf when the range or the ratio is beyond a float
         if not steps < 100_000:
-            raise ExportError(f"{what}: {text!r} gives too many points; at most 100000")
+            raise ExportError(f"{text!r} gives too many points; at most 100000", field=what)
         n = int(math.floor(steps + 1e-9)) + 1
         with np.errstate(over="ignore", invalid="ignore"):
             raw = a + h * np.arange(n)
@@ -480,9 +487,9 @@ def parse_sweep(text: str, what: str) -> np.ndarray:
     try:
         vals = np.array([parse_value(x, what) for x in s.split(",") if x.strip() != ""])
     except ValueError:
-        raise ExportError(f"{what}: cannot read {text!r}; {hint}") from None
+        raise ExportError(f"cannot read {text!r}; {hint}", field=what) from None
     if vals.size == 0 or not np.all(np.isfinite(vals)):
-        raise ExportError(f"{what}: {text!r} gives no finite voltages")
+        raise ExportError(f"{text!r} gives no finite voltages", field=what)
     return vals
 
 
@@ -492,11 +499,11 @@ def default_sweep(triode: FittedTriode) -> tuple[np.ndarray, np.ndarray]:
     Raises
     ------
     ExportError
-        If the card records no fitted range (then ``--va`` and ``--vg`` are needed).
+        If the card records no fitted range (then the grid must be given).
     """
     r = triode.valid_range
     if not r:
-        raise ExportError("the card records no fitted range; give the grid with --va and --vg")
+        raise ExportError("the card records no fitted range; give the plate and grid voltages", field="va")
     va = np.round(np.linspace(r["va"][0], r["va"][1], 41), 6)
     vg = np.round(np.linspace(r["vg"][0], r["vg"][1], 9), 6)
     return va, vg
@@ -559,8 +566,9 @@ def curves_csv(family: CurveFamily, card: str | None = None) -> str:
     for what, v in (("tube", family.tube), ("section", family.section or "")):
         v = str(v)
         if re.search(r"[,;\"]", v) or any(unicodedata.category(c) in _CONTROL for c in v):
-            raise ExportError(f"--name/{what}: {shown(repr(v))} cannot go in a CSV cell "
-                              "(comma, semicolon, quote or newline/control character)")
+            raise ExportError(f"{what} {shown(repr(v))} cannot go in a CSV cell "
+                              "(comma, semicolon, quote or newline/control character)",
+                              field="name" if what == "tube" else None)
         cells.append(csv_cell(v))
     tube, sec = cells
     out = io.StringIO()

@@ -44,7 +44,8 @@ import numpy as np
 from scipy.optimize import leastsq
 from scipy.special import expit
 
-from .models import TriodeModel, _median, get_model, model_names
+from .errors import InputError
+from .models import DEFAULT_MODEL, TriodeModel, _median, get_model, model_names
 from .reader import CurveSet, check_data, check_for_model, clean_curves, robust_full_scale
 from .triode import DataEnvelope, FittedTriode
 
@@ -70,29 +71,16 @@ MAX_OUTLIER_FRACTION = 0.2
 LOOSE_FIT_REL_RMS = 0.05
 
 
-#: What to check when a parameter runs to a bound, by parameter name (common practice:
-#: mu is set by the grid voltages against the plate voltages, so a wrong sign or scale
-#: of vg, or two sections' curves mixed into one unit, drive it to a bound; the
-#: current-scale parameters by the current's unit; the exponents and knee parameters by
-#: the shape of the curves).
-_BOUND_HINTS = {
-    "mu": "check the grid voltages' sign and scale, and that the file holds one tube section",
-    "K": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
-    "G": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
-    "kg1": "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V",
-    "n": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
-    "gamma": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
-    "ex": "check that the currents rise with plate voltage as a triode's do, and the current's unit",
-    "vc": "check the grid voltages' sign and offset (a constant added to vg?)",
-}
-_BOUND_HINT_OTHER = "check the data's units and that the file holds one tube section; or fix the parameter (--fix)"
+#: What to check when a parameter runs to a bound and its registry entry gives no hint
+_BOUND_HINT_OTHER = "check the data's units and that the file holds one tube section; or hold the parameter at a value"
 _GRID_HINT = "check the grid-current column's unit and sign"
 
 
 def _hint(model: TriodeModel, name: str) -> str:
-    if name in _BOUND_HINTS:
-        return _BOUND_HINTS[name]
-    return _GRID_HINT if model.spec(name).grid else _BOUND_HINT_OTHER
+    spec = model.spec(name)
+    if spec.hint is not None:
+        return spec.hint
+    return _GRID_HINT if spec.grid else _BOUND_HINT_OTHER
 
 
 class FitFailed(RuntimeError):
@@ -103,8 +91,14 @@ class FitFailed(RuntimeError):
         super().__init__(f"{label}: {model} fit failed: {reason}")
 
 
-class FitInputError(ValueError):
-    """The unit cannot be fitted with the chosen model (too few points, bad option)."""
+class FitInputError(InputError):
+    """The unit cannot be fitted with the chosen model (too few points, bad option).
+
+    ``field`` is the option at fault where there is one (``"fix"``); the text is the message
+    alone (a data problem already names its file and line in it)."""
+
+    def __str__(self) -> str:
+        return self.message
 
 
 @dataclass(frozen=True)
@@ -568,7 +562,7 @@ def _run(mini_problem: _Problem, params, loss: str, f_scale: float, max_nfev: in
         return mini.minimize(method="least_squares", **kws)
 
 
-def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitOptions | None = None,
+def fit_curves(unit: CurveSet, model: str | TriodeModel = DEFAULT_MODEL, options: FitOptions | None = None,
                **kw) -> FitResult:
     """Fit ``model`` to one unit's curves.
 
@@ -600,7 +594,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
         try:
             m.spec(name)
         except ValueError as e:
-            raise FitInputError(str(e)) from None
+            raise FitInputError(str(e), field="fix" if name in opts.fix else None) from None
     u = clean_curves(unit, m)
     # the data checks see the points as given (cleaning drops negative plate voltages,
     # which would hide "no plate voltage above 0 V") and as cleaned
@@ -616,15 +610,15 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     free = [p.name for p in m.params if (not p.grid or with_grid)
             and p.name not in opts.fix and p.name not in opts.expr]
     if not free:
-        raise FitInputError("every parameter is fixed: nothing to fit")
+        raise FitInputError("every parameter is fixed: nothing to fit", field="fix")
     prob = _Problem(m, u, opts.floor, with_grid)
 
     # the data-driven start from the readings that are not absurd (an overflow reading
     # would otherwise set the scale of the linearised guess)
     sane = np.abs(u.ia) <= prob.full_scale
     first = m.guess(u.va[sane], u.vg[sane], u.ia[sane]) if sane.sum() >= 4 else m.guess(u.va, u.vg, u.ia)
-    if with_grid:
-        first.update(_grid_guess(u))
+    if with_grid and m.grid_guess is not None:
+        first.update(m.grid_guess(u.vg, u.ig))
     bounds = {sp.name: tuple(opts.bounds.get(sp.name, (sp.lower, sp.upper))) for sp in m.params}
     fixed = {sp.name: float(opts.fix.get(sp.name, sp.default if sp.default is not None else np.nan))
              for sp in m.params if sp.name not in free and sp.name not in opts.expr}
@@ -823,7 +817,7 @@ def fit_curves(unit: CurveSet, model: str | TriodeModel = "koren", options: FitO
     if failure is None and rel_rms > LOOSE_FIT_REL_RMS:
         u = u.with_notes(f"loose fit: relative rms {100 * rel_rms:.1f} % is well above the ~1 % scatter of "
                          f"tracer data; the {m.name} model misses this tube's shape somewhere "
-                         "(compare models with --model all)")
+                         "(compare it with the other registered models)")
 
     return FitResult(
         unit=u, model=m, converged=failure is None, failure=failure,
@@ -841,18 +835,6 @@ def _unmoved(value: float, start: float, bounds) -> bool:
     lo, hi = bounds
     span = hi - lo if np.isfinite(hi - lo) else abs(start) + 1.0
     return abs(value - start) <= 1e-6 * max(min(span, abs(start) + 1e-12), 1e-300)
-
-
-def _grid_guess(u: CurveSet) -> dict:
-    """Starting values of the Dempwolf grid-current part from the positive-grid points."""
-    pos = (u.vg > 0) & (u.ig > 0)
-    if pos.sum() >= 2:
-        x, y = u.vg[pos], u.ig[pos]
-        # ig ~ Gg vg^xi: log-log line
-        A = np.column_stack([np.log(x), np.ones(x.size)])
-        (xi, lg), *_ = np.linalg.lstsq(A, np.log(y), rcond=None)
-        return dict(Gg=float(np.clip(np.exp(lg), 1e-8, 0.5)), xi=float(np.clip(xi, 1.05, 2.9)), Cg=10.0, Ig0=0.0)
-    return dict(Gg=1e-4, xi=1.5, Cg=10.0, Ig0=0.0)
 
 
 # ---------------------------------------------------------------------------
@@ -900,7 +882,7 @@ def _fit_job(args):
     return rank_results(res) if len(models) > 1 else res
 
 
-def fit_many(units: list[CurveSet], models=("koren",), options: FitOptions | None = None,
+def fit_many(units: list[CurveSet], models=(DEFAULT_MODEL,), options: FitOptions | None = None,
              processes: int | None = None, progress: Callable[[int], None] | None = None) -> list[list[FitResult]]:
     """Fit ``models`` to every unit, on all cores.
 

@@ -31,6 +31,7 @@ __all__ = [
     "ParamSpec",
     "TriodeModel",
     "MODELS",
+    "DEFAULT_MODEL",
     "get_model",
     "model_names",
     "softplus",
@@ -98,6 +99,19 @@ class ParamSpec:
     #: the data carry grid current; otherwise they are held at ``default``.
     grid: bool = False
     default: float | None = None
+    #: what to check when a fit drives this parameter to a bound (None: the fitter's
+    #: general advice for plate or grid parameters)
+    hint: str | None = None
+
+
+#: Hints shared by the registry's parameters (common practice: mu is set by the grid voltages
+#: against the plate voltages, so a wrong sign or scale of vg, or two sections' curves mixed
+#: into one unit, drive it to a bound; the current-scale parameters by the current's unit;
+#: the exponents and knee parameters by the shape of the curves).
+HINT_MU = "check the grid voltages' sign and scale, and that the file holds one tube section"
+HINT_SCALE = "check the plate current's unit (ia_ma, ia_a or ia_ua) and that the voltages are in V"
+HINT_EXPONENT = "check that the currents rise with plate voltage as a triode's do, and the current's unit"
+HINT_OFFSET = "check the grid voltages' sign and offset (a constant added to vg?)"
 
 
 @dataclass(frozen=True)
@@ -145,6 +159,19 @@ class TriodeModel:
     #: optional ``current_and_gradient(va, vg, **p) -> (ia, dia/dva, dia/dvg)`` for the
     #: stage solvers, which need all three at every Newton step
     current_and_gradient: Callable | None = None
+    #: ``grid_guess(vg, ig) -> dict`` starting values of the grid-current parameters from the
+    #: positive-grid readings (models with a grid-current part)
+    grid_guess: Callable | None = None
+    #: grid parameters that, all zero, switch the grid-current part off (a card fitted
+    #: without grid-current data carries them at zero)
+    grid_switches: tuple[str, ...] = ()
+
+    def carries_grid_current(self, params: Mapping) -> bool:
+        """Whether a unit with ``params`` draws grid current in this model (a grid-current
+        part that is not switched off; parameters may be arrays, one value per unit)."""
+        if self.grid_current is None:
+            return False
+        return bool(any(np.any(np.asarray(params.get(n, 0.0)) != 0) for n in self.grid_switches))
 
     def current_with_gradient(self, va, vg, **p):
         """(Ia, dIa/dva, dIa/dvg), in one pass where the model offers it."""
@@ -329,10 +356,10 @@ POWER = TriodeModel(
         "I. Langmuir, Phys. Rev. 2, 450 (1913)"
     ),
     params=(
-        ParamSpec("K", "A/V^n", 1e-9, 1.0, "perveance"),
-        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor"),
-        ParamSpec("n", "-", 1.0, 3.0, "exponent (3/2 for the ideal law)"),
-        ParamSpec("vc", "V", -10.0, 10.0, "contact potential"),
+        ParamSpec("K", "A/V^n", 1e-9, 1.0, "perveance", hint=HINT_SCALE),
+        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor", hint=HINT_MU),
+        ParamSpec("n", "-", 1.0, 3.0, "exponent (3/2 for the ideal law)", hint=HINT_EXPONENT),
+        ParamSpec("vc", "V", -10.0, 10.0, "contact potential", hint=HINT_OFFSET),
     ),
     current=power_current,
     voltage_gradient=power_voltage_gradient,
@@ -477,9 +504,9 @@ KOREN = TriodeModel(
         "Glass Audio 8(5), 1996; revised 2003"
     ),
     params=(
-        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor"),
-        ParamSpec("ex", "-", 1.0, 2.5, "exponent"),
-        ParamSpec("kg1", "V^ex/A", 1.0, 1e6, "inverse perveance scale"),
+        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor", hint=HINT_MU),
+        ParamSpec("ex", "-", 1.0, 2.5, "exponent", hint=HINT_EXPONENT),
+        ParamSpec("kg1", "V^ex/A", 1.0, 1e6, "inverse perveance scale", hint=HINT_SCALE),
         ParamSpec("kp", "-", 1.0, 5000.0, "cutoff-region shape"),
         ParamSpec("kvb", "V^2", 0.0, 1e5, "low-plate-voltage knee"),
     ),
@@ -517,6 +544,20 @@ def dempwolf_grid_current_of_params(vg, Gg=0.0, xi=1.5, Cg=10.0, Ig0=0.0, **_):
     A module-level function, not a lambda, so that models pickle into worker processes.
     """
     return dempwolf_grid_current(vg, Gg, xi, Cg, Ig0)
+
+
+def dempwolf_grid_guess(vg, ig) -> dict:
+    """Starting values of the Dempwolf grid-current part from the positive-grid readings
+    ``vg`` [V], ``ig`` [A]: ig ~ Gg vg^xi is a straight line in log-log."""
+    vg = np.asarray(vg, float)
+    ig = np.asarray(ig, float)
+    pos = (vg > 0) & (ig > 0)
+    if pos.sum() >= 2:
+        x, y = vg[pos], ig[pos]
+        A = np.column_stack([np.log(x), np.ones(x.size)])
+        (xi, lg), *_ = np.linalg.lstsq(A, np.log(y), rcond=None)
+        return dict(Gg=float(np.clip(np.exp(lg), 1e-8, 0.5)), xi=float(np.clip(xi, 1.05, 2.9)), Cg=10.0, Ig0=0.0)
+    return dict(Gg=1e-4, xi=1.5, Cg=10.0, Ig0=0.0)
 
 
 def dempwolf_current(va, vg, G, mu, gamma, C, Gg=0.0, xi=1.5, Cg=10.0, Ig0=0.0):
@@ -635,9 +676,9 @@ DEMPWOLF = TriodeModel(
         'circuit simulations", DAFx-11, Paris, 2011'
     ),
     params=(
-        ParamSpec("G", "A/V^gamma", 1e-9, 1.0, "perveance"),
-        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor"),
-        ParamSpec("gamma", "-", 1.0, 2.5, "exponent"),
+        ParamSpec("G", "A/V^gamma", 1e-9, 1.0, "perveance", hint=HINT_SCALE),
+        ParamSpec("mu", "-", 0.5, 500.0, "amplification factor", hint=HINT_MU),
+        ParamSpec("gamma", "-", 1.0, 2.5, "exponent", hint=HINT_EXPONENT),
         ParamSpec("C", "1/V", 0.05, 50.0, "cutoff smoothness"),
         ParamSpec("Gg", "A/V^xi", 0.0, 1.0, "grid-current perveance", grid=True, default=0.0),
         ParamSpec("xi", "-", 1.0, 3.0, "grid-current exponent", grid=True, default=1.5),
@@ -650,11 +691,16 @@ DEMPWOLF = TriodeModel(
     guess=dempwolf_guess,
     grid_current=dempwolf_grid_current_of_params,
     alternative_starts=dempwolf_alternative_starts,
+    grid_guess=dempwolf_grid_guess,
+    grid_switches=("Gg", "Ig0"),
 )
 
 
 #: The registry: model name -> model.  Loop over this; never list models by hand.
 MODELS: dict[str, TriodeModel] = {m.name: m for m in (POWER, KOREN, DEMPWOLF)}
+
+#: The model fitted when none is named (the command line's and the fitter's default).
+DEFAULT_MODEL = "koren"
 
 
 def model_names() -> tuple[str, ...]:

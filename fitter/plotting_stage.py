@@ -11,22 +11,16 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .distortion import Distortion, DistortionSweep, drive_limit  # noqa: E402
-from .stage import (CAUTION, CathodeFollower, CommonCathode, StageResult, Stack,  # noqa: E402
-                    operating_point, output_node, quasi_static, stage_title, tube_positions)
-from .stage import _eng as _eng_unit  # noqa: E402
+from .stage import (CAUTION, CommonCathode, StageResult, Stack,  # noqa: E402
+                    output_node, stage_title, tube_positions)
+from .stage.distortion import Distortion, DistortionSweep  # noqa: E402
+from .stage.loadlines import load_lines  # noqa: E402
+from .stage.results import _eng as _eng_unit  # noqa: E402
 from .outfiles import plot_path, write_atomic  # noqa: E402
 from .units import format_value  # noqa: E402
 
 __all__ = ["plot_load_lines", "save_load_line_plot", "plot_thd_sweep", "save_thd_plot",
            "plot_waveform", "save_waveform_plot"]
-
-
-def _nice_step(span: float, most: int = 12) -> float:
-    for s in (0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 2.5, 5.0, 10.0, 20.0, 25.0, 50.0, 100.0):
-        if span / s <= most:
-            return s
-    return 200.0
 
 
 _NODE_TEXT = {"plate": "the plate", "cathode": "the cathode", "cathode_top": "the top cathode",
@@ -47,19 +41,9 @@ def _tubes_text(stage, triodes) -> str:
     return " and ".join(f"{p} {t.label}" for p, t in zip(positions, triodes))
 
 
-def _outside_grid(triode, vg) -> bool:
-    """True when grid voltage ``vg`` [V] lies outside the card's fitted grid range
-    (beyond a 2 % margin of its span), i.e. the curve is extrapolated."""
-    rng = triode.valid_range
-    if not rng or "vg" not in rng:
-        return False
-    lo, hi = rng["vg"]
-    tol = 0.02 * max(hi - lo, 0.1)
-    return bool(vg < lo - tol or vg > hi + tol)
-
-
-def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
-    """Draw the plate-curve family and the curve through the operating point.
+def _plate_curves(ax, pc, ia_top, pa_max=None):
+    """Draw the plate-curve family ``pc`` (:class:`fitter.stage.loadlines.PlateCurves`) and
+    the curve through the operating point.
 
     Curves outside the card's fitted grid range are dashed and lighter, with one
     legend note.  Each curve is labelled in volts where it leaves the plot (top or
@@ -68,21 +52,15 @@ def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
 
     Returns the grid step [V].
     """
-    vg_cut = -va_max / max(mu, 0.5)
-    step = _nice_step(abs(vg_cut), 11)
-    va = np.linspace(0.0, va_max, 400)
-    grids = np.arange(0.0, vg_cut - step, -step)
+    va = pc.va
     cmap = plt.get_cmap("viridis")
     top = np.full_like(va, 0.97 * ia_top)
     pa_ma = 1e3 * pa_max / np.maximum(va, 1e-9) if pa_max else None
     box = dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.75)
-    extrapolated = False
-    for i, vg in enumerate(grids):
-        vg = float(np.round(vg, 9)) + 0.0
-        ia = 1e3 * triode.current(va, np.full_like(va, vg))
-        c = cmap(0.15 + 0.7 * i / max(len(grids) - 1, 1))
-        out = _outside_grid(triode, vg)
-        extrapolated |= out
+    n = len(pc.vg)
+    for i, (vg, row, out) in enumerate(zip(pc.vg, pc.ia, pc.extrapolated)):
+        ia = 1e3 * row
+        c = cmap(0.15 + 0.7 * i / max(n - 1, 1))
         ax.plot(va, ia, "--" if out else "-", lw=0.9, color=c, alpha=0.5 if out else 0.9)
         inside = np.flatnonzero(ia <= top)
         if pa_ma is not None and inside.size:
@@ -97,14 +75,13 @@ def _plate_curves(ax, triode, va_max, ia_top, vgk_q, mu, pa_max=None):
         elif inside.size:
             ax.annotate(text, (va[-1], ia[-1]), xytext=(2, 0), va="center", annotation_clip=False, **kw)
     # the curve through the operating point, highlighted
-    ia_q = 1e3 * triode.current(va, np.full_like(va, vgk_q))
-    note = ", extrapolated" if _outside_grid(triode, vgk_q) else ""
-    ax.plot(va, ia_q, ":", lw=1.4, color="0.3", label=f"Vgk = {vgk_q:.3g} V (operating point{note})")
-    if extrapolated:
-        lo, hi = triode.valid_range["vg"]
+    note = ", extrapolated" if pc.q_extrapolated else ""
+    ax.plot(va, 1e3 * pc.ia_q_curve, ":", lw=1.4, color="0.3", label=f"Vgk = {pc.vg_q:.3g} V (operating point{note})")
+    if np.any(pc.extrapolated):
+        lo, hi = pc.fitted_vg
         ax.plot([], [], "--", lw=0.9, color="0.55",
                 label=f"dashed curves: extrapolated\n(fitted data cover Vgk {lo:g}..{hi:g} V)")
-    return step
+    return pc.step
 
 
 def _eng(x):
@@ -138,49 +115,26 @@ def plot_load_lines(result: StageResult, axes=None):
         fig, axes = plt.subplots(1, len(positions), figsize=(7.5 * len(positions), 7.0), squeeze=False)
         axes = list(axes[0])
     fig = axes[0].figure
-    op = operating_point(st, *triodes)
-    lim = drive_limit(st, *triodes, op=op)
-    A = lim.vin_peak
-    swing = quasi_static(st, *triodes, vin=np.linspace(-A, A, 201), op=op)
-    wide = quasi_static(st, *triodes, vin=np.linspace(-3 * A, 3 * A, 301), op=op)
-    for ax, pos, t in zip(axes, positions, triodes):
-        va_q, ia_q, vgk_q = f[pos + ".va"], 1e3 * f[pos + ".ia"], f[pos + ".vgk"]
-        if isinstance(st, CathodeFollower):
-            va_max = st.b_plus - st.vneg
+    data = load_lines(result)
+    A = data.swing_vin_peak
+    for ax, ln, t in zip(axes, data.lines, triodes):
+        pos = ln.position
+        va_q, ia_q = ln.va_q, 1e3 * ln.ia_q
+        va_max, ia_top = ln.va_max, 1e3 * ln.ia_max
+        step = _plate_curves(ax, ln.curves, ia_top, st.pa_max)
+        if ln.dc_resistance is not None:
+            ax.plot(ln.dc_va, 1e3 * ln.dc_ia, "-", color="tab:blue", lw=1.8,
+                    label=f"DC load line ({_eng(ln.dc_resistance)} = Ra + Rk)" if isinstance(st, CommonCathode)
+                    else f"DC load line ({_eng(ln.dc_resistance)})")
+            ax.plot(ln.ac_va, 1e3 * ln.ac_ia, "--", color="tab:orange", lw=1.3,
+                    label=f"AC load line ({_eng(ln.ac_resistance)})")
         else:
-            va_max = st.b_plus
-        va_max *= 1.05
-        if isinstance(st, (CommonCathode, CathodeFollower)):
-            r_dc = st.ra + st.rk
-            supply = st.b_plus - (st.vneg if isinstance(st, CathodeFollower) else 0.0)
-            ia_top = min(1e3 * supply / r_dc * 1.15, 4.0 * ia_q) if r_dc > 0 else 4.0 * ia_q
-        else:
-            ia_top = 2.6 * ia_q
-        ia_top = max(ia_top, 1.8 * ia_q)
-        step = _plate_curves(ax, t, va_max, ia_top, vgk_q, f[pos + ".mu"], st.pa_max)
-        if isinstance(st, (CommonCathode, CathodeFollower)):
-            supply = st.b_plus - (st.vneg if isinstance(st, CathodeFollower) else 0.0)
-            r_dc = st.ra + st.rk
-            ax.plot([supply, 0.0], [0.0, 1e3 * supply / r_dc], "-", color="tab:blue", lw=1.8,
-                    label=f"DC load line ({_eng(r_dc)} = Ra + Rk)" if isinstance(st, CommonCathode)
-                    else f"DC load line ({_eng(r_dc)})")
-            # AC line through Q with the mid-band resistance seen by the tube
-            va_w, ia_w = wide[pos + ".va"], 1e3 * wide[pos + ".ia"]
-            slope = np.polyfit(ia_w[wide[pos + '.ia'] > 0], va_w[wide[pos + '.ia'] > 0], 1)[0] \
-                if np.sum(wide[pos + ".ia"] > 0) > 3 else -1.0
-            r_ac = -slope * 1e3
-            i_line = np.linspace(0.0, ia_top, 50)
-            ax.plot(va_q + (i_line - ia_q) * slope, i_line, "--", color="tab:orange", lw=1.3,
-                    label=f"AC load line ({_eng(r_ac)})")
-        else:
-            dcl = quasi_static(st, *triodes, vin=np.linspace(-40.0 * abs(vgk_q) - 5, 3.0 * abs(f['bottom.vgk']) + 2, 300),
-                               dc_grid=True)
-            ax.plot(dcl[pos + ".va"], 1e3 * dcl[pos + ".ia"], "-", color="tab:blue", lw=1.8,
+            ax.plot(ln.dc_va, 1e3 * ln.dc_ia, "-", color="tab:blue", lw=1.8,
                     label=_stack_dc_label(st, pos))
-            ax.plot(wide[pos + ".va"], 1e3 * wide[pos + ".ia"], "--", color="tab:orange", lw=1.3,
+            ax.plot(ln.ac_va, 1e3 * ln.ac_ia, "--", color="tab:orange", lw=1.3,
                     label="AC load: path of the mid-band signal")
-        ax.plot(swing[pos + ".va"], 1e3 * swing[pos + ".ia"], "-", color="tab:red", lw=3.2, alpha=0.75,
-                label=f"swing to {lim.reason} (±{A:.3g} V in)")
+        ax.plot(ln.swing_va, 1e3 * ln.swing_ia, "-", color="tab:red", lw=3.2, alpha=0.75,
+                label=f"swing to {data.swing_limit} (±{A:.3g} V in)")
         if st.pa_max:
             v = np.linspace(max(st.pa_max / (ia_top * 1e-3), 1.0), va_max, 200)
             ax.plot(v, 1e3 * st.pa_max / v, "-.", color="crimson", lw=1.0, label=f"Pa max {st.pa_max:g} W")

@@ -132,8 +132,9 @@ class ReadIssue:
         return f"{where}: {self.message}"
 
 
-class CurveReadError(ValueError):
-    """A curve file could not be read.  ``.issues`` lists every problem found."""
+class CurveReadError(InputError):
+    """A curve file could not be read.  ``.issues`` lists every problem found, each with
+    its file, line and column; the text lists them all."""
 
     def __init__(self, issues: Iterable[ReadIssue]):
         self.issues = list(issues)

@@ -90,13 +90,13 @@ def test_fuzzer_reports_a_hang(seeds, tmp_path, monkeypatch):
     # a command that never answers is stopped at the wall-clock limit and counted as a hang
     import time as _time
 
-    from fitter.cli import fitcmd
+    from fitter import card
 
     def stuck(*a, **k):
         while True:
             _time.sleep(0.01)
 
-    monkeypatch.setattr(fitcmd, "load_card", stuck)
+    monkeypatch.setattr(card, "load_card", stuck)
     case = fuzz.Case(0, "point", "card", "none", False, fuzz.COMMANDS[3][2], seeds["card"])
     done = fuzz.run_case(case, tmp_path, 0.5)
     assert done.failures == ["hang"] and done.exit_code is None

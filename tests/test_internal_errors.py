@@ -73,7 +73,8 @@ def test_an_uncaught_input_error_is_bad_input_exit_1(card, monkeypatch):
     monkeypatch.setattr(FittedTriode, "small_signal", bad)
     r = run("point", card, "--va", 250, "--vg", -2)
     assert r.exit_code == 1
-    assert r.stderr.strip() == "error: field 'va': must be below 1000 V"
+    # the field is named as the option that sets it (fitter/cli/fields.py)
+    assert r.stderr.strip() == "error: --va: must be below 1000 V"
 
 
 def test_good_run_is_untouched(card):

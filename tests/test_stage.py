@@ -407,7 +407,7 @@ def test_joint_newton_and_nested_bracketed_solve_agree(monkeypatch):
     bot, top = medium_mu("MU", "A"), medium_mu("MU", "B", kg1=1300.0)
     st = S.Stack.mu_follower(b_plus=300, rk=1e3, r_top=820.0, r_mid=68e3, ck=1e-4, rl=47e3)
     fast = S.solve(st, bot, top, errors=False)
-    monkeypatch.setattr(S, "_JOINT", False)
+    monkeypatch.setattr(S.solver, "_JOINT", False)
     slow = S.solve(st, bot, top, errors=False)
     for key in ("node.plate_bottom", "node.cathode_top", "gain", "zout", "gain.plate_bottom"):
         assert fast[key] == pytest.approx(slow[key], rel=1e-7), key

@@ -107,7 +107,9 @@ class _Group(click.Group):
             from ..text import shown  # messages may carry names from untrusted input
 
             if isinstance(e, InputError):
-                click.echo(f"error: {shown(e)}", err=True)
+                from .fields import message  # the field named as the option that sets it
+
+                click.echo(f"error: {shown(message(e))}", err=True)
                 raise SystemExit(1) from None
             if isinstance(e, BrokenPipeError):
                 # the reader of our output went away (`platebook ... | head`): nothing to report;

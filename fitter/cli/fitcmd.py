@@ -1,24 +1,21 @@
-"""``platebook fit`` and ``platebook point``."""
+"""``platebook fit`` and ``platebook point``: options -> specification -> :mod:`fitter.service.fitting`
+-> table or JSON."""
 
 from __future__ import annotations
 
 import json
-import math
 import sys
-import warnings
 from pathlib import Path
 
 import click
 
 from . import fail, main
+from .fields import message
 from .options import Count, OptionError, Value, number
 from .. import CAUTION
-from ..card import CardError, load_card, save_card, card_filename
-from ..models import MODELS, get_model
-from ..reader import CurveReadError, ReadIssue, check_for_model, read_curves
+from ..errors import InputError
+from ..models import DEFAULT_MODEL, MODELS
 from ..text import shown
-from ..triode import OutsideDataWarning
-
 
 
 def fail_input(message: str) -> None:
@@ -26,8 +23,9 @@ def fail_input(message: str) -> None:
     fail(message, 1)
 
 
-def _parse_fix(items, model_names):
-    fix = {}
+def _parse_fix(items) -> tuple[dict, dict]:
+    """``NAME=VALUE`` items -> (name -> value, name -> the item as typed)."""
+    fix, typed = {}, {}
     for item in items:
         if "=" not in item:
             fail_input(f"--fix {item!r}: expected NAME=VALUE, e.g. --fix n=1.5")
@@ -38,16 +36,16 @@ def _parse_fix(items, model_names):
         except OptionError as e:
             finite = "not a finite number" in e.format_message()
             fail_input(f"--fix {item!r}: {value!r} is not a {'finite ' if finite else ''}number")
-        known = {p.name for m in model_names for p in get_model(m).params}
-        if name not in known:
-            fail_input(f"--fix {item!r}: no model being fitted has a parameter {name!r} "
-                       f"(known: {', '.join(sorted(known))})")
-        for m in model_names:
-            spec = next((p for p in get_model(m).params if p.name == name), None)
-            if spec is not None and not (spec.lower <= fix[name] <= spec.upper):
-                fail_input(f"--fix {item!r}: {m} parameter {name} must lie within its bounds "
-                           f"{spec.lower:g} .. {spec.upper:g}" + ("" if spec.unit == "-" else f" {spec.unit}"))
-    return fix
+        typed[name] = item
+    return fix, typed
+
+
+def _input_error(e, typed=None) -> str:
+    """One line for a service error; a held parameter is named as typed (``--fix 'n=9'``)."""
+    field = getattr(e, "field", None) or ""
+    if typed is not None and field.startswith("fix.") and field[4:] in typed:
+        return f"--fix {typed[field[4:]]!r}: {e.message}"
+    return message(e)
 
 
 def _progress(total: int, enabled: bool):
@@ -74,9 +72,8 @@ def _fmt(x, spec=".4g"):
     return "-" if x is None else format(x, spec)
 
 
-def _table(rows_by_unit, multi: bool) -> str:
-    """The readable fit table."""
-    from ..fit import LOOSE_FIT_REL_RMS
+def _table(rows_by_unit, multi: bool, loose_limit: float) -> str:
+    """The readable fit table; a fit whose relative rms is above ``loose_limit`` is marked."""
 
     head = f"{'unit':<16} {'model':<9} {'pts':>4} {'out':>3} {'rms mA':>8} {'rel %':>6} {'mu':>9}  parameters"
     lines = [head, "-" * len(head)]
@@ -97,7 +94,7 @@ def _table(rows_by_unit, multi: bool) -> str:
             mus = f"{mu:.4g}" if mu is not None else "-"
             if r.stderr.get("mu") is not None:
                 mus += f"±{r.stderr['mu']:.2g}"
-            loose = "!" if r.rel_rms > LOOSE_FIT_REL_RMS else " "
+            loose = "!" if r.rel_rms > loose_limit else " "
             lines.append(f"{name:<16} {r.model.name:<8}{mark} {r.n_points:>4} {r.n_outliers:>3} "
                          f"{r.rms_ma:>8.4f} {100 * r.rel_rms:>5.2f}{loose} {mus:>9}  {others}")
     return "\n".join(lines)
@@ -105,7 +102,7 @@ def _table(rows_by_unit, multi: bool) -> str:
 
 @main.command("fit")
 @click.argument("files", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--model", "model_name", default="koren", show_default=True,
+@click.option("--model", "model_name", default=DEFAULT_MODEL, show_default=True,
               type=click.Choice(list(MODELS) + ["all"], case_sensitive=False),
               help="Model to fit; 'all' fits every registered model and ranks them by BIC.")
 @click.option("--json", "as_json", is_flag=True, help="Print exactly one JSON object to stdout.")
@@ -134,122 +131,69 @@ def fit_command(files, model_name, as_json, save_dir, plot_dir, skip_bad, fix_it
     one unit; FILE '-' is standard input. Exit status: 0 all fits good, 1 input error, 2 one
     or more fits failed (or --skip-bad left out a whole unit).
     """
-    # the engine (scipy.optimize) only when fitting: `fit --help` and `point` stay quick
-    from ..fit import LOOSE_FIT_REL_RMS, FitInputError, FitOptions, fit_many
+    from ..service.fitting import FitSpec, check_fix, fit_units, models_of, read_units, write_outputs
 
     if residuals and not as_json:
         fail_input("--residuals goes with --json (the residuals are listed in the JSON output)")
-    models = list(MODELS) if model_name.lower() == "all" else [model_name.lower()]
-    fix = _parse_fix(fix_items, models)
+    fix, typed = _parse_fix(fix_items)
+    stdin = None
+    if any(str(f) == "-" for f in files):
+        stdin = sys.stdin.buffer.read() if hasattr(sys.stdin, "buffer") else sys.stdin.read().encode()
+    spec = FitSpec(files=[str(f) for f in files], model=model_name.lower(), fix=fix, floor=floor, robust=not plain,
+                   skip_bad=skip_bad, jobs=jobs, residuals=residuals, max_rows=max_rows,
+                   save=None if save_dir is None else str(save_dir), plot=None if plot_dir is None else str(plot_dir),
+                   stdin=stdin)
+    models = models_of(spec)
     try:
-        read = _read_inputs(files, skip_bad, max_rows)
-    except CurveReadError as e:
-        fail_input(str(e))
-    skipped: list[ReadIssue] = list(read.skipped)
-    units = []
-    problems = []
-    for u in read.units:
-        issue = next((i for i in (check_for_model(u, get_model(m)) for m in models) if i), None)
-        if issue is None:
-            units.append(u)
-        elif skip_bad:
-            skipped.append(issue)
-        else:
-            problems.append(issue)
-    if problems:
-        fail_input(str(CurveReadError(problems)))
-    for s in skipped:
+        check_fix(fix, models)
+        inputs = read_units(spec)
+    except InputError as e:  # a file's problems (CurveReadError) list their lines and columns
+        fail_input(_input_error(e, typed))
+    for s in inputs.skipped:
         click.echo(f"skipped: {_lines(s)}", err=True)
     if as_json:  # the text output lists them with the table
-        for n in read.notes:
+        for n in inputs.notes:
             click.echo(f"note: {_lines(n)}", err=True)
-    if not units:
-        fail_input("no units left to fit" + (" after skipping bad input (listed above)" if skipped else ""))
 
-    opts = FitOptions(fix={k: v for k, v in fix.items()}, floor=floor, robust=not plain)
-    show_bar = sys.stdout.isatty() and not as_json and len(units) > 1
+    show_bar = sys.stdout.isatty() and not as_json and len(inputs.units) > 1
     try:
-        with _progress(len(units), show_bar) as bar:
-            results = fit_many(units, models, opts, processes=jobs,
-                               progress=bar.update)
-    except FitInputError as e:
-        fail_input(str(e))
+        with _progress(len(inputs.units), show_bar) as bar:
+            run = fit_units(spec, inputs, progress=bar.update)
+        # progress on stderr when it is a terminal (never with --json, whose terminal shows one object)
+        show = plot_dir is not None and sys.stderr.isatty() and not as_json and len(run.results) > 1
+        with (click.progressbar(length=len(run.results), label="plotting", file=sys.stderr, show_pos=True)
+              if show else _progress(0, False)) as pbar:
+            write_outputs(run, plot_progress=pbar.update)
+    except InputError as e:
+        fail_input(_input_error(e, typed))
 
-    flat = [r for rs in results for r in rs]
-    written: list[str] = []
-    not_saved: list[str] = []
-    if save_dir or plot_dir:
-        from ..outfiles import OutputError, prepare_folder, unit_stems
-
-        # one stem per unit of this run, never shared (fitter.outfiles.unit_stems)
-        stems = unit_stems((rs[0].tube, rs[0].section) for rs in results)
-        try:
-            if save_dir:
-                prepare_folder(save_dir)
-                for rs, stem in zip(results, stems):
-                    best = rs[0]
-                    if best.converged:
-                        path = save_dir / card_filename(best.triode, stem)
-                        save_card(path, best.triode, best.figures(), [best.unit.source])
-                        written.append(str(path))
-                    else:
-                        not_saved.append(best.label)
-            if plot_dir:
-                from ..plotting import save_fit_plots
-
-                prepare_folder(plot_dir)
-                best = [rs[0] for rs in results]
-                paths = [plot_dir / f"{stem}.{b.model.name}.png" for b, stem in zip(best, stems)]
-                # progress on stderr when it is a terminal (never with --json, whose terminal shows one object)
-                show = sys.stderr.isatty() and not as_json and len(best) > 1
-                bar = (click.progressbar(length=len(best), label="plotting", file=sys.stderr, show_pos=True)
-                       if show else _progress(0, False))
-                with bar:
-                    written.extend(str(p) for p in save_fit_plots(best, paths, processes=jobs, progress=bar.update))
-        except OutputError as e:
-            done = f" ({len(written)} file(s) written before it)" if written else ""
-            fail_input(f"{e}{done}")
-
-    n_failed = sum(not rs[0].converged for rs in results)
+    results, flat = run.results, run.fits
     if as_json:
-        out = {
-            "platebook": _version(),
-            "fits": [r.to_dict(residuals=residuals) for r in flat],
-            "best": [{"tube": rs[0].tube, "section": rs[0].section, "model": rs[0].model.name,
-                      "converged": rs[0].converged} for rs in results] if len(models) > 1 else None,
-            "skipped": [str(s) for s in skipped],
-            "notes": list(read.notes),
-            "written": written,
-            "caution": CAUTION,
-        }
-        click.echo(json.dumps(out, allow_nan=False))
+        click.echo(json.dumps(run.to_dict(), allow_nan=False))
     else:
-        click.echo(_table(results, len(models) > 1))
-        notes = _notes(results, read.notes)
+        click.echo(_table(results, len(models) > 1, run.loose_limit))
+        notes = _notes(results, inputs.notes)
         if notes:
             click.echo("\n" + notes)
         if len(models) > 1:
             click.echo("\n* best model for the unit (lowest BIC among converged fits)")
-        if any(r.converged and r.rel_rms > LOOSE_FIT_REL_RMS for r in flat):
-            click.echo(f"\n! loose fit: relative rms above {100 * LOOSE_FIT_REL_RMS:g} %, well above the ~1 % "
+        if run.loose:
+            click.echo(f"\n! loose fit: relative rms above {100 * run.loose_limit:g} %, well above the ~1 % "
                        "scatter of tracer data; the model misses the tube's shape somewhere")
         n_out = sum(r.n_outliers for r in flat if r.converged)
-        click.echo(f"\n{len(units)} unit(s), {len(flat)} fit(s), {n_failed} unit(s) without a good fit, "
+        click.echo(f"\n{len(inputs.units)} unit(s), {len(flat)} fit(s), {run.n_failed} unit(s) without a good fit, "
                    f"{n_out} outlier point(s) down-weighted")
         if save_dir or plot_dir:
-            from ..text import shown
-
-            click.echo(f"\n{len(written)} file(s) written:")
-            for w in written:
+            click.echo(f"\n{len(run.written)} file(s) written:")
+            for w in run.written:
                 click.echo(f"  {shown(w)}")
-            if not_saved:
-                click.echo("no model card for (fit failed): " + ", ".join(shown(n) for n in not_saved))
+            if run.not_saved:
+                click.echo("no model card for (fit failed): " + ", ".join(shown(n) for n in run.not_saved))
         click.echo(CAUTION)
-    dropped = [s for s in skipped if _drops_whole_unit(s)]
-    if dropped:
-        click.echo(f"error: --skip-bad left out {len(dropped)} whole unit(s) or file(s) (listed above as "
+    if run.dropped:
+        click.echo(f"error: --skip-bad left out {len(run.dropped)} whole unit(s) or file(s) (listed above as "
                    "skipped); the results cover only the rest", err=True)
-    if n_failed or dropped:
+    if run.failed:
         raise SystemExit(2)
 
 
@@ -263,53 +207,6 @@ def _notes(rows_by_unit, file_notes) -> str:
     return "\n".join(lines)
 
 
-def _drops_whole_unit(issue: ReadIssue) -> bool:
-    """Whether a skipped issue dropped a whole unit (too few points or curves) or a whole
-    file (no usable rows), not just a row: the reader and ``check_for_model`` word those
-    as ``unit '...' has ...`` and ``no (usable) data rows``."""
-    return issue.message.startswith("unit ") or issue.message in ("no data rows", "no usable data rows")
-
-
-def _read_inputs(files, skip_bad, max_rows=None):
-    """Read the curve files; ``-`` is standard input.  A file given twice, or the same unit
-    (tube and section) in two files, is an input error: both would be fitted and the second
-    model card would overwrite the first."""
-    from ..reader import ReadResult, read_text
-
-    seen = {}
-    for f in files:
-        key = "-" if str(f) == "-" else str(Path(f).resolve())
-        if key in seen:
-            fail_input(f"{f}: given twice (as argument {seen[key]} and {len(seen) + 1})"
-                       if key != "-" else "-: standard input given twice")
-        seen[key] = len(seen) + 1
-    paths = [f for f in files if str(f) != "-"]
-    read = read_curves(paths, skip_bad=skip_bad, max_rows=max_rows) if paths else ReadResult()
-    if "-" in seen:
-        raw = sys.stdin.buffer.read() if hasattr(sys.stdin, "buffer") else sys.stdin.read().encode()
-        try:
-            text = raw.decode("utf-8-sig")
-        except UnicodeDecodeError as e:
-            line = raw[: e.start].count(b"\n") + 1
-            raise CurveReadError([ReadIssue("<stdin>", line, None, "not UTF-8 text (is this a CSV file?)")]) from None
-        read.extend(read_text(text, "<stdin>", default_tube="stdin", skip_bad=skip_bad, max_rows=max_rows))
-    where = {}
-    for u in read.units:
-        key = (u.tube, u.section)
-        if key in where and where[key] != u.source:
-            fail_input(f"unit {u.label!r} is in both {where[key]} and {u.source}; give each unit once "
-                       "(or name the tube apart with a '# tube:' line)")
-        where.setdefault(key, u.source)
-    return read
-
-
-
-def _version():
-    from .. import __version__
-
-    return __version__
-
-
 @main.command("point")
 @click.argument("card", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--va", type=Value(), required=True, help="Plate-to-cathode voltage [V], e.g. 250 or 250V.")
@@ -321,28 +218,17 @@ def point_command(card, va, vg, as_json):
     Gives plate current, transconductance gm, plate resistance rp and mu = gm·rp,
     each with its standard error propagated from the fit covariance.
     """
-    for option, v in (("--va", va), ("--vg", vg)):
-        if not math.isfinite(v):
-            fail_input(f"{option}: must be a finite voltage, got {v!r}")
-    try:
-        triode = load_card(card)
-    except CardError as e:
-        fail_input(str(e))
-    import numpy as np
+    from ..service.fitting import PointSpec, point
+    from ..service.specs import NoResult
 
-    with warnings.catch_warnings(record=True) as caught, np.errstate(all="ignore"):
-        # numpy's overflow far outside any tube is caught on the figures below, not printed
-        warnings.simplefilter("always", OutsideDataWarning)
-        ss = triode.small_signal(va, vg)
-    notes = [str(w.message) for w in caught if issubclass(w.category, OutsideDataWarning)]
-    d = ss.to_dict()
-    if d["ia_ma"] is None or d["gm_ms"] is None:
-        # no finite current (e.g. --va 1e308): not a result, so not exit 0 with dashes
-        fail(f"{triode.label}: the model gives no finite plate current at va {va:g} V, vg {vg:g} V; "
-             "no figures there", 2)
+    try:
+        res = point(PointSpec(str(card), va, vg))
+    except NoResult as e:
+        fail(str(e), 2)
+    except InputError as e:
+        fail_input(message(e))
+    triode, notes, d = res.triode, list(res.warnings), res.to_dict()
     if as_json:
-        d.update({"tube": triode.tube, "section": triode.section, "model": triode.model.name,
-                  "warnings": notes})
         click.echo(json.dumps(d, allow_nan=False))
         return
     for n in notes:

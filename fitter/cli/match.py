@@ -16,19 +16,11 @@ import math
 import click
 
 from . import fail, main
+from .fields import OPTIONS
 from .options import Count, OptionError, Value, number
 
-#: field of a matching specification -> the option that sets it (FITS, the source, is named
-#: by its path).  To be folded into the one field -> option table of the CLI.
-MATCH_FIELDS = {
-    "only": "--only", "exclude": "--exclude", "va": "--va", "vg": "--vg", "bplus": "--bplus", "ra": "--ra",
-    "rk": "--rk", "bypassed": "--unbypassed", "stack": "--stack", "r_top": "--r-top", "r_mid": "--r-mid",
-    "slot": "--slot", "partner": "--partner", "stages": "--stages", "target_ma": "--target-ma",
-    "target_split": "--target-split", "same_bottle": "--same-bottle", "group": "--group", "quad": "--quad",
-    "tolerance": "--tolerance", "figures": "--figures", "figure_tolerance": "--figure-tolerance",
-    "weights": "--weights", "distance": "--distance", "grades": "--grades", "bottle_balance": "--bottle-balance",
-    "extrapolate": "--extrapolate", "errors": "--errors", "time_limit": "--time-limit",
-}
+#: field of a matching specification -> the option that sets it: the CLI's one table
+MATCH_FIELDS = OPTIONS
 
 
 def _fail(message: str, code: int = 1):

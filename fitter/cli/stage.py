@@ -1,48 +1,26 @@
 """``platebook stage ...`` and ``platebook distortion ...``: a stage analysed with fitted tubes.
 
-Thin layer: parse the options (engineering notation), load the model cards, call
-:mod:`fitter.stage` / :mod:`fitter.distortion`, print the report or one JSON object,
-save the PNG.  Exit status 0 ok, 1 input error, 2 the circuit could not be solved.
+Thin layer: parse the options (engineering notation) into a specification with the circuit's
+field names, call :mod:`fitter.service.stages`, print the report or one JSON object, save the
+PNG.  Errors name the option from the one table :mod:`fitter.cli.fields`.  Exit status 0 ok,
+1 input error, 2 the circuit could not be solved.
 """
 
 from __future__ import annotations
 
-import glob
 import json
-import re
-from collections import Counter, defaultdict
 
 import click
 
-from ..card import CardError, load_card, load_cards
-from ..stage import (CathodeFollower, CommonCathode, Stack, StageSolveError, solve, spread)
+from ..errors import InputError
+from ..service.stages import KINDS, DistortionSpec, SpreadSpec, StageSolveError, StageSpec
 from . import fail, main, value
+from .fields import OPTIONS, message, option
 from .options import Count, OptionError, number
 
 
-#: engine field names -> the options that set them, so errors name what the user typed
-_OPTION_OF = {
-    "b_plus": "--bplus", "ra": "--ra", "rk": "--rk", "ck": "--ck", "vbias": "--vbias", "rg": "--rg",
-    "c_in": "--cin", "rs": "--rs", "rl": "--rl", "c_out": "--cout", "c_load": "--cload",
-    "cgk": "--cgk", "cga": "--cga", "cak": "--cak", "pa_max": "--pa-max", "heater": "--heater",
-    "vhk_max": "--vhk-max", "vneg": "--vneg", "r_upper": "--r-upper", "r_lower": "--r-lower",
-    "r_top": "--r-top", "r_mid": "--r-mid", "top_grid": "--top-grid", "rg_top": "--rg-top",
-    "c_top": "--c-top", "output": "--output", "vin_peak": "--vin", "vout_peak": "--vout",
-    "levels": "--levels", "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset",
-    "slew_vpeak": "--swing",
-}
-
-
-def _option_message(message: str) -> str:
-    """'CommonCathode.ra: must be positive' -> '--ra: must be positive'."""
-    m = re.match(r"^(?:[A-Za-z]+\.)?([a-z_]+): ", message)
-    if m and m.group(1) in _OPTION_OF:
-        return _OPTION_OF[m.group(1)] + message[m.end(1):]
-    return message
-
-
-def _fail(message: str, code: int = 1):
-    fail(_option_message(message), code)
+def _fail(text: str, code: int = 1):
+    fail(text, code)
 
 
 #: capacitor options; a value of 0.1 F or more is a missing prefix, not a capacitor
@@ -67,11 +45,20 @@ def _pct(text, option):
     return v / 100.0
 
 
-def _card(path, option):
-    try:
-        return load_card(path)
-    except CardError as e:
-        _fail(f"{option}: {e}")
+#: circuit fields that are words, not numbers
+_WORDS = {"top_grid", "output"}
+
+
+def _circuit(kind, o) -> dict:
+    """The circuit's fields (SI) from the options of this kind of stage."""
+    out = {}
+    for name in KINDS[kind].__dataclass_fields__:
+        opt = OPTIONS[name]
+        key = opt[2:].replace("-", "_")
+        if key not in o:
+            continue
+        out[name] = o[key] if name in _WORDS else _val(o[key], opt)
+    return out
 
 
 # -- shared options ---------------------------------------------------------
@@ -91,59 +78,6 @@ _COMMON = [
                  help="Heater reference to ground [V] (0: grounded; else the elevation)."),
     click.option("--vhk-max", default="100", show_default=True, help="Heater-cathode voltage limit [V]."),
 ]
-
-
-def _common_kwargs(o) -> dict:
-    return dict(
-        rg=_val(o["rg"], "--rg"), c_in=_val(o["cin"], "--cin"), rs=_val(o["rs"], "--rs"),
-        rl=_val(o["rl"], "--rl"), c_out=_val(o["cout"], "--cout"), c_load=_val(o["cload"], "--cload"),
-        cgk=_val(o["cgk"], "--cgk"), cga=_val(o["cga"], "--cga"), cak=_val(o["cak"], "--cak"),
-        pa_max=_val(o["pa_max"], "--pa-max"), heater=_val(o["heater"], "--heater"),
-        vhk_max=_val(o["vhk_max"], "--vhk-max"),
-    )
-
-
-_FIELD_OPTION = {
-    "b_plus": "--bplus", "ra": "--ra", "rk": "--rk", "ck": "--ck", "vbias": "--vbias", "vneg": "--vneg",
-    "r_upper": "--r-upper", "r_lower": "--r-lower", "r_top": "--r-top", "r_mid": "--r-mid",
-    "top_grid": "--top-grid", "rg_top": "--rg-top", "c_top": "--c-top", "output": "--output",
-    "rg": "--rg", "c_in": "--cin", "rs": "--rs", "rl": "--rl", "c_out": "--cout", "c_load": "--cload",
-    "cgk": "--cgk", "cga": "--cga", "cak": "--cak", "pa_max": "--pa-max", "heater": "--heater",
-    "vhk_max": "--vhk-max",
-}
-
-
-def _build(cls, **kw):
-    try:
-        return cls(**kw)
-    except ValueError as e:
-        msg = str(e)
-        # name the command-line option as well as the field
-        head = msg.split(":", 1)[0]
-        field = head.split(".", 1)[-1].split("/")[0]
-        opt = _FIELD_OPTION.get(field)
-        _fail(f"{opt} ({msg})" if opt else msg)
-
-
-def _cc_stage(o):
-    return _build(CommonCathode, b_plus=_val(o["bplus"], "--bplus", False), ra=_val(o["ra"], "--ra", False),
-                  rk=_val(o["rk"], "--rk"), ck=_val(o["ck"], "--ck"), vbias=_val(o["vbias"], "--vbias"),
-                  **_common_kwargs(o))
-
-
-def _cf_stage(o):
-    return _build(CathodeFollower, b_plus=_val(o["bplus"], "--bplus", False), rk=_val(o["rk"], "--rk", False),
-                  vneg=_val(o["vneg"], "--vneg"), ra=_val(o["ra"], "--ra"),
-                  r_upper=_val(o["r_upper"], "--r-upper"), r_lower=_val(o["r_lower"], "--r-lower"),
-                  **_common_kwargs(o))
-
-
-def _stack_stage(o):
-    return _build(Stack, b_plus=_val(o["bplus"], "--bplus", False), rk=_val(o["rk"], "--rk", False),
-                  r_top=_val(o["r_top"], "--r-top", False), r_mid=_val(o["r_mid"], "--r-mid"),
-                  ck=_val(o["ck"], "--ck"), vbias=_val(o["vbias"], "--vbias"), top_grid=o["top_grid"],
-                  rg_top=_val(o["rg_top"], "--rg-top"), c_top=_val(o["c_top"], "--c-top"),
-                  output=o["output"], **_common_kwargs(o))
 
 
 _CC_OPTS = [
@@ -183,10 +117,9 @@ _STACK_OPTS = [
 ]
 
 _KIND = {
-    "common-cathode": (_CC_OPTS, _cc_stage, "A common-cathode stage: B+, Ra, Rk (bypassed or not) or fixed bias."),
-    "cathode-follower": (_CF_OPTS, _cf_stage, "A cathode follower: Rk to ground or a negative rail."),
-    "stack": (_STACK_OPTS, _stack_stage,
-              "Two triodes in series: SRPP (--top-grid tied) or mu follower (--top-grid coupled)."),
+    "common-cathode": (_CC_OPTS, "A common-cathode stage: B+, Ra, Rk (bypassed or not) or fixed bias."),
+    "cathode-follower": (_CF_OPTS, "A cathode follower: Rk to ground or a negative rail."),
+    "stack": (_STACK_OPTS, "Two triodes in series: SRPP (--top-grid tied) or mu follower (--top-grid coupled)."),
 }
 
 
@@ -196,46 +129,28 @@ def _apply(opts, fn):
     return fn
 
 
-def _tubes(kind, o):
+def _cards(kind, o) -> dict:
+    """The model cards named on the command line, by field (tube, or bottom and top)."""
     if kind == "stack":
         if o["bottom"] is None or o["top"] is None:
             _fail("--bottom and --top: give the model cards of both tubes")
-        return (_card(o["bottom"], "--bottom"), _card(o["top"], "--top"))
+        return {"bottom": o["bottom"], "top": o["top"]}
     if o["tube"] is None:
         _fail("--tube: give the model card of the tube")
-    return (_card(o["tube"], "--tube"),)
+    return {"tube": o["tube"]}
 
 
-def _spread_cases(kind, where):
+def _run(call, spec):
+    """Call the service; its errors become one line naming the option (exit 1), or the
+    failed solve (exit 2)."""
     try:
-        if any(c in str(where) for c in "*?["):
-            files = sorted(glob.glob(str(where)))
-            if not files:
-                _fail(f"--spread: no model cards match {where}")
-            units = [load_card(f) for f in files]
-        else:
-            units = load_cards(where)
-    except CardError as e:
-        _fail(f"--spread: {e}")
-    labels = Counter(u.label for u in units)
-    twice = sorted(k for k, n in labels.items() if n > 1)
-    if twice:
-        _fail(f"--spread: unit {twice[0]!r} appears {labels[twice[0]]} times in {where}"
-              + (f" (and {len(twice) - 1} more unit(s))" if len(twice) > 1 else "")
-              + "; each unit once, or the spread counts it twice")
-    if kind != "stack":
-        return units, None, ""
-    by_tube = defaultdict(list)
-    for u in units:
-        by_tube[u.tube].append(u)
-    if all(len(v) == 2 for v in by_tube.values()):
-        bottoms, tops = [], []
-        for v in by_tube.values():
-            v = sorted(v, key=lambda t: t.section or "")
-            bottoms.append(v[0])
-            tops.append(v[1])
-        return bottoms, tops, "the two sections of each tube (first section at the bottom)"
-    return units, None, "each unit in both positions"
+        return call(spec)
+    except StageSolveError as e:
+        _fail(f"the stage could not be solved: {e}", 2)
+    except InputError as e:
+        _fail(message(e))
+    except ValueError as e:
+        _fail(str(e))
 
 
 def _write_plot(fn, obj, path):
@@ -265,33 +180,25 @@ def stage_group():
 
 
 def _make_stage_command(kind):
-    opts, builder, doc = _KIND[kind]
+    opts, doc = _KIND[kind]
 
     def command(**o):
+        from ..service.stages import solve_stage, spread_stage
+
         if o["spread"]:
             ignored = [opt for key, opt in (("tube", "--tube"), ("bottom", "--bottom"), ("top", "--top"),
                                             ("plot", "--plot")) if o.get(key) is not None]
             if ignored:
                 _fail(f"--spread takes its tubes from {o['spread']} and draws no plot; "
                       f"leave out {', '.join(ignored)}")
-        st = builder(o)
-        try:
-            if o["spread"]:
-                units, tops, pairing = _spread_cases(kind, o["spread"])
-                res = spread(st, units, tops, slew_vpeak=_val(o["swing"], "--swing"))
-                if pairing:
-                    res.pairing = pairing
-                if o["json"]:
-                    click.echo(json.dumps(res.to_dict(), allow_nan=False))
-                else:
-                    click.echo(res.report())
-                return
-            tubes = _tubes(kind, o)
-            r = solve(st, *tubes, errors=not o["no_errors"], slew_vpeak=_val(o["swing"], "--swing"))
-        except StageSolveError as e:
-            _fail(f"the stage could not be solved: {e}", 2)
-        except ValueError as e:
-            _fail(str(e))
+        circuit = _circuit(kind, o)
+        swing = _val(o["swing"], "--swing")
+        if o["spread"]:
+            res = _run(spread_stage, SpreadSpec(kind, circuit, o["spread"], slew_vpeak=swing))
+            click.echo(json.dumps(res.to_dict(), allow_nan=False) if o["json"] else res.report())
+            return
+        spec = StageSpec(kind, circuit, **_cards(kind, o), errors=not o["no_errors"], slew_vpeak=swing)
+        r = _run(solve_stage, spec)
         if o["plot"]:
             from ..plotting_stage import save_load_line_plot
 
@@ -299,7 +206,7 @@ def _make_stage_command(kind):
         if o["json"]:
             click.echo(json.dumps(r.to_dict(), allow_nan=False))
         else:
-            click.echo(r.report())
+            click.echo(r.report(option))
             if o["plot"]:
                 click.echo(f"\nload-line plot: {plot_written}")
 
@@ -334,39 +241,31 @@ def distortion_group():
 
 
 def _make_distortion_command(kind):
-    opts, builder, doc = _KIND[kind]
+    opts, doc = _KIND[kind]
 
     def command(**o):
-        from .. import distortion as dist
+        from ..service.stages import stage_distortion
 
-        st = builder(o)
-        tubes = _tubes(kind, o)
-        n = o["samples"]
-        try:
-            if o["sweep"]:
-                if o["vin"] is not None or o["vout"] is not None:
-                    _fail("--sweep: give either --sweep or a level (--vin / --vout), not both")
-                res = dist.sweep(st, *tubes, levels=o["levels"], thd_limit=_pct(o["thd_limit"], "--thd-limit"),
-                                 n_samples=n, grid_onset=_val(o["grid_onset"], "--grid-onset"))
-                if o["plot"]:
-                    from ..plotting_stage import save_thd_plot
+        circuit = _circuit(kind, o)
+        cards = _cards(kind, o)
+        if o["sweep"]:
+            if o["vin"] is not None or o["vout"] is not None:
+                _fail("--sweep: give either --sweep or a level (--vin / --vout), not both")
+            spec = DistortionSpec(kind, circuit, **cards, sweep=True, levels=o["levels"],
+                                  thd_limit=_pct(o["thd_limit"], "--thd-limit"), n_samples=o["samples"],
+                                  grid_onset=_val(o["grid_onset"], "--grid-onset"))
+        else:
+            vin = _val(o["vin"], "--vin")
+            vout = _val(o["vout"], "--vout")
+            if (vin is None) == (vout is None):
+                _fail("give one level: --vin (input peak) or --vout (output peak), or --sweep")
+            spec = DistortionSpec(kind, circuit, **cards, vin_peak=vin, vout_peak=vout, n_samples=o["samples"],
+                                  grid_onset=_val(o["grid_onset"], "--grid-onset"))
+        res = _run(stage_distortion, spec)
+        if o["plot"]:
+            from ..plotting_stage import save_thd_plot, save_waveform_plot
 
-                    plot_written = _write_plot(save_thd_plot, res, o["plot"])
-            else:
-                vin = _val(o["vin"], "--vin")
-                vout = _val(o["vout"], "--vout")
-                if (vin is None) == (vout is None):
-                    _fail("give one level: --vin (input peak) or --vout (output peak), or --sweep")
-                res = dist.analyse(st, *tubes, vin_peak=vin, vout_peak=vout, n_samples=n,
-                                   grid_onset=_val(o["grid_onset"], "--grid-onset"))
-                if o["plot"]:
-                    from ..plotting_stage import save_waveform_plot
-
-                    plot_written = _write_plot(save_waveform_plot, res, o["plot"])
-        except StageSolveError as e:
-            _fail(f"the stage could not be solved: {e}", 2)
-        except ValueError as e:
-            _fail(str(e))
+            plot_written = _write_plot(save_thd_plot if o["sweep"] else save_waveform_plot, res, o["plot"])
         if o["json"]:
             click.echo(json.dumps(res.to_dict(), allow_nan=False))
         else:
