@@ -251,3 +251,12 @@ def test_dempwolf_plate_current_is_cathode_minus_grid_current():
     ig = p["Gg"] * (np.log1p(np.exp(p["Cg"] * vg)) / p["Cg"]) ** p["xi"] + p["Ig0"]
     np.testing.assert_allclose(m.current(va, vg, **p), ik - ig, rtol=1e-12)
     np.testing.assert_allclose(m.grid_current(vg, **p), ig, rtol=1e-12)
+
+
+def test_sigmoid_equals_scipy_expit_to_rounding():
+    # reference: scipy.special.expit (the logistic function), over the whole finite range
+    from scipy.special import expit
+    from fitter.models import sigmoid
+    z = np.concatenate([np.linspace(-800, 800, 20001), [-1e308, -1e-300, 0.0, 1e-300, 1e308]])
+    np.testing.assert_allclose(sigmoid(z), expit(z), rtol=4e-16, atol=1e-300)  # subnormals aside
+    assert isinstance(sigmoid(0.5), float) and sigmoid(0.5) == expit(0.5)
