@@ -33,6 +33,7 @@ The procedure for one unit and one model (``fit_curves``):
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import time
@@ -198,7 +199,7 @@ class FitResult:
         return FittedTriode(self.model, self.params, self.free, self.covariance,
                             self.unit.tube, self.unit.section, self.valid_range, self.envelope)
 
-    @property
+    @functools.cached_property
     def envelope(self) -> DataEnvelope | None:
         """Where the unit was measured (its points less the outliers, which are glitches and
         would otherwise stretch the highest current); None for a unit without points."""
@@ -878,6 +879,7 @@ def _fit_job(args):
         except FitInputError as e:
             r = FitResult(unit, get_model(name), False, str(e))
         r.optimizer = None  # not picklable cheaply; not needed across processes
+        r.envelope  # computed (and cached) here, in the worker, rather than in the parent
         res.append(r)
     return rank_results(res) if len(models) > 1 else res
 

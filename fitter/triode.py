@@ -190,9 +190,13 @@ class DataEnvelope:
         if levels.size > cls.MAX_CURVES:  # scattered grid voltages: merge neighbours into bands
             band = np.minimum((np.arange(levels.size) * cls.MAX_CURVES) // levels.size, cls.MAX_CURVES - 1)
             inv = band[inv]
-            levels = np.array([vg[inv == b].mean() for b in range(cls.MAX_CURVES)])
-        lo = np.array([va[inv == k].min() for k in range(levels.size)])
-        hi = np.array([va[inv == k].max() for k in range(levels.size)])
+            levels = np.bincount(inv, weights=vg) / np.bincount(inv)
+        # each curve's lowest and highest plate voltage in one pass: minimum / maximum over
+        # the runs of the points sorted by curve
+        order = np.argsort(inv, kind="stable")
+        starts = np.flatnonzero(np.r_[True, np.diff(inv[order]) != 0])
+        lo = np.minimum.reduceat(va[order], starts)
+        hi = np.maximum.reduceat(va[order], starts)
         return cls(tuple(map(float, levels)), tuple(map(float, lo)), tuple(map(float, hi)),
                    float(max(ia.max(), 0.0)), float(max((va * ia).max(), 0.0)))
 
