@@ -879,7 +879,7 @@ def _fit_job(args):
         except FitInputError as e:
             r = FitResult(unit, get_model(name), False, str(e))
         r.optimizer = None  # not picklable cheaply; not needed across processes
-        r.envelope  # computed (and cached) here, in the worker, rather than in the parent
+        _ = r.envelope  # computed (and cached) here, in the worker, rather than in the parent
         res.append(r)
     return rank_results(res) if len(models) > 1 else res
 
