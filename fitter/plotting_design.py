@@ -79,7 +79,7 @@ def plot_sweep(sw, figures=None):
         ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
         if sw.n_units > 1:
             ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
-        ax.set_title(f"{sw.figure_label(name)} [{unit}]", fontsize=9)
+        ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9)
         ax.grid(True, which="both", alpha=0.3)
         if sw.log:
             ax.set_xscale("log")
