@@ -91,16 +91,37 @@ def _make_response_command(kind):
     def command(**o):
         from ..service.design import stage_response
 
-        spec = ResponseSpec(kind, _circuit(kind, o), **_cards(kind, o), points_per_decade=o["per_decade"])
+        spec = ResponseSpec(kind, _circuit(kind, o), **_cards(kind, o), points_per_decade=o["per_decade"],
+                            thd_level=_val(o["thd_at"], "--thd-at"))
         fr = _run(stage_response, spec)
+        tf, note = None, None
+        if spec.thd_level is not None:
+            from ..service.design import stage_thd_against_frequency
+            from ..stage.transient import SimulatorError, SimulatorMissing
+
+            try:
+                tf = _run(stage_thd_against_frequency, spec)
+            except SimulatorMissing as e:
+                note = f"note: {e}"
+            except SimulatorError as e:
+                _fail(f"THD against frequency: {e}", 2)
         if o["plot"]:
             from ..plotting_design import save_response_plot
 
             written = _write_plot(save_response_plot, fr, o["plot"])
         if o["json"]:
-            click.echo(json.dumps(fr.to_dict(), allow_nan=False))
+            d = fr.to_dict()
+            if spec.thd_level is not None:
+                d["thd_against_frequency"] = None if tf is None else tf.to_dict()
+                if note:
+                    d["notes"].append(note[6:])
+            click.echo(json.dumps(d, allow_nan=False))
         else:
             click.echo(_response_report(fr))
+            if tf is not None:
+                click.echo("\n" + tf.report())
+            if note:
+                click.echo("\n" + note)
             if o["plot"]:
                 click.echo(f"\nresponse plot: {written}")
 
@@ -108,6 +129,8 @@ def _make_response_command(kind):
     extra = [
         click.option("--per-decade", default=40, show_default=True, type=Count(1, 1000),
                      help="Frequencies per decade."),
+        click.option("--thd-at", default=None,
+                     help="Also THD against frequency at this output level [V peak] (runs ngspice, if installed)."),
         click.option("--plot", default=None, help="Save the gain and phase plot to this PNG."),
         click.option("--json", "json", is_flag=True, help="Print one JSON object."),
     ]

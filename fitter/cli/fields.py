@@ -26,7 +26,7 @@ OPTIONS: dict[str, str] = {
     "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset", "sweep": "--sweep",
     # design (fitter.service.design)
     "vary": "--vary", "start": "--vary", "stop": "--vary", "points": "--vary", "level": "--level",
-    "points_per_decade": "--per-decade", "freq": "--per-decade", "cards": "--spread",
+    "points_per_decade": "--per-decade", "freq": "--per-decade", "cards": "--spread", "thd_level": "--thd-at",
     # fitting and points (fitter.service.fitting)
     "files": "FILE", "model": "--model", "fix": "--fix", "floor": "--floor", "jobs": "--jobs",
     "max_rows": "--max-rows", "skip_bad": "--skip-bad", "save": "--save", "residuals": "--residuals",

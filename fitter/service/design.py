@@ -17,7 +17,7 @@ from typing import Mapping
 from .specs import SpecError
 from .stages import KINDS, _spread_units, _tubes, build_stage, pair_sections
 
-__all__ = ["ResponseSpec", "SweepSpec", "stage_response", "stage_sweep"]
+__all__ = ["ResponseSpec", "SweepSpec", "stage_response", "stage_sweep", "stage_thd_against_frequency"]
 
 
 @dataclass(frozen=True)
@@ -30,6 +30,8 @@ class ResponseSpec:
     bottom: str | None = None
     top: str | None = None
     points_per_decade: int = 40
+    #: output level [V peak] for THD against frequency (ngspice); None: not run
+    thd_level: float | None = None
 
 
 @dataclass(frozen=True)
@@ -62,6 +64,19 @@ def stage_response(spec: ResponseSpec):
 
     st = build_stage(spec.kind, spec.circuit)
     return response(st, *_tubes(spec.kind, spec), points_per_decade=spec.points_per_decade)
+
+
+def stage_thd_against_frequency(spec: ResponseSpec):
+    """THD against frequency at ``spec.thd_level`` (ngspice transient):
+    :class:`~fitter.stage.transient.FrequencyDistortion`.  Without ngspice,
+    :class:`~fitter.stage.transient.SimulatorMissing` (one line); a front end reports it as
+    a note beside the small-signal response, which needs no simulator."""
+    from ..stage.transient import thd_against_frequency
+
+    if spec.thd_level is None:
+        raise SpecError("give the output level for THD against frequency", field="thd_level")
+    st = build_stage(spec.kind, spec.circuit)
+    return thd_against_frequency(st, *_tubes(spec.kind, spec), vout_peak=spec.thd_level)
 
 
 def stage_sweep(spec: SweepSpec):
