@@ -325,32 +325,35 @@ def _drive_limits(stage, banks, op, n, grid_onset, cutoff_fraction):
     at once); NaN where a unit is past a limit without signal, the search top where none is
     reached."""
     top = 2.0 * (stage.b_plus + abs(getattr(stage, "vneg", 0.0)))
-    grid = np.broadcast_to(np.geomspace(1e-4, top, 40), (n, 40))
+    # no drive, then 10 mV to the top in steps of a factor of about 1.9
+    G = 25
+    grid = np.broadcast_to(np.concatenate([[0.0], np.geomspace(1e-2, top, G - 1)]), (n, G))
     # in chunks from small to large drive, stopping once every unit is past a limit: the
     # huge drives at the top of the grid are then never solved (a stack's equations need
     # not converge there, and nothing is learnt from them)
     parts = []
-    for c0 in range(0, 40, 8):
-        m = _margins(stage, banks, op, n, np.ascontiguousarray(grid[:, c0:c0 + 8]), grid_onset, cutoff_fraction)
+    for c0 in range(0, G, 5):
+        m = _margins(stage, banks, op, n, np.ascontiguousarray(grid[:, c0:c0 + 5]), grid_onset, cutoff_fraction)
         parts.append(m)
         if (np.concatenate(parts, axis=1) >= 0).any(axis=1).all():
             break
     m = np.concatenate(parts, axis=1)
-    m = np.concatenate([m, np.full((n, 40 - m.shape[1]), 1.0)], axis=1)
+    m = np.concatenate([m, np.full((n, G - m.shape[1]), 1.0)], axis=1)
     past = m >= 0
     has = past.any(axis=1)
-    i = np.where(has, np.argmax(past, axis=1), 39)
+    i = np.where(has, np.argmax(past, axis=1), G - 1)
     at_rest = has & (i == 0)
     i = np.maximum(i, 1)
-    lo = grid[np.arange(n), i - 1]
-    hi = grid[np.arange(n), i]
-    for _ in range(3):
+    r = np.arange(n)
+    lo = grid[r, i - 1]
+    hi = grid[r, i]
+    # two refinements of 16 steps: the bracket shrinks 256 times, then linear interpolation
+    for _ in range(2):
         g = lo[:, None] + (hi - lo)[:, None] * np.linspace(0, 1, 17)[None, :]
         m = _margins(stage, banks, op, n, g, grid_onset, cutoff_fraction)
         past = m >= 0
         j = np.where(past.any(axis=1), np.argmax(past, axis=1), 16)
         j = np.maximum(j, 1)
-        r = np.arange(n)
         lo, hi = g[r, j - 1], g[r, j]
         m0, m1 = m[r, j - 1], m[r, j]
     with np.errstate(invalid="ignore", divide="ignore"):
