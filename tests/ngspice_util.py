@@ -340,3 +340,99 @@ def hold_capacitors(circuit: str) -> str:
             ln = f"V{f[0]} {f[1]} {f[2]} DC {v[f[1]] - v[f[2]]!r}"
         out.append(ln)
     return "\n".join(out) + "\n"
+
+
+# ---------------------------------------------------------------------------
+# Frequency response (.ac with the stage's real capacitors)
+# ---------------------------------------------------------------------------
+
+
+def ac_circuit(stage, *subckts: str) -> str:
+    """Netlist of any stage for an ``.ac`` sweep with its real capacitors.
+
+    Unlike the mid-band builders above, the coupling and bypass capacitors are the
+    stage's own values; the source has its resistance ``rs`` (node ``src`` -> ``in``);
+    the tube capacitances ``cgk``, ``cga``, ``cak`` sit outside each exported
+    subcircuit; ``c_load`` loads the output (``out``: the far side of ``c_out`` when a
+    load is given, else the stage's output node).  A coupling capacitor the stage leaves
+    out (None) is written as BIG_C (a short at 1 Hz and above; the DC grid stays where
+    the grid leak holds it); ``ck`` None is no bypass.  Read the output as ``v(out)``.
+    """
+    from fitter.stage import CathodeFollower, CommonCathode
+
+    names = [_sub_name(s) for s in subckts]
+    subs = "\n".join(dict.fromkeys(s.rstrip() for s in subckts))
+    L = [subs]
+
+    def cap(name, a, b, value):
+        L.append(f"{name} {a} {b} {float(BIG_C if value is None else value)!r}")
+
+    def tube_caps(tag, p, g, k):
+        for nm, a, b, v in (("Cgk", g, k, stage.cgk), ("Cga", g, p, stage.cga), ("Cak", p, k, stage.cak)):
+            if v > 0:
+                L.append(f"{nm}{tag} {a} {b} {float(v)!r}")
+
+    def cathode(node, rk, ck):
+        if rk > 0:
+            L.append(f"Rk {node} 0 {float(rk)!r}")
+            if ck is not None:
+                L.append(f"Ck {node} 0 {float(ck)!r}")
+        else:
+            L.append(f"Vk {node} 0 DC 0")
+
+    L.append("Vin src 0 DC 0 AC 1")
+    L.append(f"Rs src in {float(stage.rs)!r}" if stage.rs > 0 else "Vrs src in DC 0")
+    cap("Cin", "in", "grid", stage.c_in)
+    bias = getattr(stage, "vbias", None)
+    if isinstance(stage, CathodeFollower) and stage.r_upper is not None:
+        L += [f"Rg grid ndiv {float(stage.rg)!r}", f"Rup bplus ndiv {float(stage.r_upper)!r}",
+              f"Rlo ndiv 0 {float(stage.r_lower)!r}"]
+    elif bias is not None:
+        L += [f"Rg grid nbias {float(stage.rg)!r}", f"Vbias nbias 0 DC {float(bias)!r}"]
+    else:
+        L.append(f"Rg grid 0 {float(stage.rg)!r}")
+    if isinstance(stage, CommonCathode):
+        L += [f"VB bplus 0 DC {float(stage.b_plus)!r}", f"Ra bplus plate {float(stage.ra)!r}",
+              f"X1 plate grid cathode {names[0]}"]
+        cathode("cathode", stage.rk, stage.ck)
+        tube_caps("1", "plate", "grid", "cathode")
+        node = "plate"
+    elif isinstance(stage, CathodeFollower):
+        L.append(f"VB bplus 0 DC {float(stage.b_plus)!r}")
+        L.append(f"Ra bplus plate {float(stage.ra)!r}" if stage.ra > 0 else "Vra bplus plate DC 0")
+        L.append(f"X1 plate grid cathode {names[0]}")
+        if stage.vneg != 0:
+            L += [f"Rk cathode nneg {float(stage.rk)!r}", f"Vneg nneg 0 DC {float(stage.vneg)!r}"]
+        else:
+            L.append(f"Rk cathode 0 {float(stage.rk)!r}")
+        tube_caps("1", "plate", "grid", "cathode")
+        node = "cathode"
+    else:
+        L += [f"VB plate_top 0 DC {float(stage.b_plus)!r}",
+              f"X1 plate_bottom grid cathode_bottom {names[0]}", f"X2 plate_top grid_top cathode_top {names[1]}"]
+        cathode("cathode_bottom", stage.rk, stage.ck)
+        L.append(f"Rmid plate_bottom mid {float(stage.r_mid)!r}" if stage.r_mid > 0 else "Vmid plate_bottom mid DC 0")
+        L.append(f"Rtop mid cathode_top {float(stage.r_top)!r}")
+        if stage.top_grid == "coupled":
+            cap("Ctop", "plate_bottom", "grid_top", stage.c_top)
+            L.append(f"Rgtop grid_top mid {float(stage.rg_top)!r}")
+        else:
+            L.append("Vtie plate_bottom grid_top DC 0")
+        tube_caps("1", "plate_bottom", "grid", "cathode_bottom")
+        tube_caps("2", "plate_top", "grid_top", "cathode_top")
+        node = "cathode_top" if stage.output == "top-cathode" else "plate_bottom"
+    if stage.rl is not None:
+        cap("Cout", node, "out", stage.c_out)
+        L.append(f"RL out 0 {float(stage.rl)!r}")
+    else:
+        L.append(f"Vout {node} out DC 0")
+    if stage.c_load > 0:
+        L.append(f"Cload out 0 {float(stage.c_load)!r}")
+    return "\n".join(L) + "\n"
+
+
+def ac_response(stage, *subckts: str, points_per_decade: int = 10,
+                f_start: float = 1.0, f_stop: float = 1e6) -> tuple[np.ndarray, np.ndarray]:
+    """ngspice ``.ac dec`` of :func:`ac_circuit`: (frequencies [Hz], complex v(out)/v(src))."""
+    (r,) = run(ac_circuit(stage, *subckts), [f"ac dec {points_per_decade} {f_start!r} {f_stop!r}"], ["v(out)"])
+    return r["scale"], r["v(out)"]

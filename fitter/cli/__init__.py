@@ -31,6 +31,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "stage": ("stage", "Operating point, gain, output impedance and limits of a stage with fitted tubes."),
     "distortion": ("stage", "Harmonics and THD of a stage (quasi-static, mid-band), at a level or swept."),
     "match": ("match", "Match the units in FITS by what each does in the position it will work in."),
+    "response": ("design", "Frequency response of a stage: gain and phase from 1 Hz to 1 MHz, the -3 dB points."),
+    "sweep": ("design", "Sweep one component or supply of a stage and tabulate what a designer weighs."),
 }
 
 #: exit status of an unexpected internal error (1 is bad input, 2 a failed fit or solve)

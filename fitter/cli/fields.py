@@ -24,6 +24,9 @@ OPTIONS: dict[str, str] = {
     "tube": "--tube", "bottom": "--bottom", "top": "--top", "spread": "--spread", "plot": "--plot",
     "slew_vpeak": "--swing", "vin_peak": "--vin", "vout_peak": "--vout", "levels": "--levels",
     "thd_limit": "--thd-limit", "n_samples": "--samples", "grid_onset": "--grid-onset", "sweep": "--sweep",
+    # design (fitter.service.design)
+    "vary": "--vary", "start": "--vary", "stop": "--vary", "points": "--vary", "level": "--level",
+    "points_per_decade": "--per-decade", "freq": "--per-decade", "cards": "--spread", "thd_level": "--thd-at",
     # fitting and points (fitter.service.fitting)
     "files": "FILE", "model": "--model", "fix": "--fix", "floor": "--floor", "jobs": "--jobs",
     "max_rows": "--max-rows", "skip_bad": "--skip-bad", "save": "--save", "residuals": "--residuals",

@@ -1,0 +1,100 @@
+"""Plots of the design tools: frequency response (gain and phase against log frequency,
+-3 dB points marked) and component sweeps (each figure against the swept value, with the
+spread over a stock as a band).  matplotlib, Agg backend; they draw results, computing
+no circuit figures of their own."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from . import CAUTION  # noqa: E402
+from .plotting_stage import _save  # noqa: E402
+from .stage.circuits import stage_title  # noqa: E402
+
+__all__ = ["plot_response", "save_response_plot", "plot_sweep", "save_sweep_plot"]
+
+
+def _hz(f):
+    for scale, unit in ((1e6, "MHz"), (1e3, "kHz")):
+        if f >= scale:
+            return f"{f / scale:.3g} {unit}"
+    return f"{f:.3g} Hz"
+
+
+def plot_response(fr, axes=None):
+    """Gain [dB] and phase [deg] against frequency (log), the -3 dB points marked."""
+    if axes is None:
+        fig, axes = plt.subplots(2, 1, figsize=(8.0, 6.4), sharex=True)
+    ag, ap = axes
+    ag.semilogx(fr.freq, fr.gain_db, color="tab:blue", lw=1.6, label="gain")
+    mid_db = 20 * np.log10(abs(fr.midband)) if fr.midband else None
+    if mid_db is not None:
+        ag.axhline(mid_db - 3.0103, color="0.5", ls=":", lw=1.0, label=f"mid-band {mid_db:.2f} dB - 3 dB")
+    for f, name in ((fr.f_low, "low"), (fr.f_high, "high")):
+        if f is not None and fr.freq[0] <= f <= fr.freq[-1]:
+            ag.axvline(f, color="crimson", ls="--", lw=1.0)
+            ag.plot([f], [mid_db - 3.0103], "o", color="crimson", ms=5,
+                    label=f"-3 dB {name}: {_hz(f)}")
+            ap.axvline(f, color="crimson", ls="--", lw=1.0)
+    ap.semilogx(fr.freq, fr.phase_deg, color="tab:orange", lw=1.6)
+    ag.set_ylabel("gain [dB]")
+    ap.set_ylabel("phase [deg]")
+    ap.set_xlabel("frequency [Hz]")
+    tubes = " / ".join(fr.labels)
+    ag.set_title(f"{stage_title(fr.stage)} with {tubes}: frequency response\n"
+                 "(linearised at the operating point; source 1 V behind Rs)", fontsize=10)
+    for ax in axes:
+        ax.grid(True, which="both", alpha=0.3)
+    ag.legend(fontsize=8, loc="lower center")
+    fig = ag.figure
+    fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    return axes
+
+
+def save_response_plot(fr, path) -> Path:
+    """Save :func:`plot_response`; returns the path written."""
+    axes = plot_response(fr)
+    return _save(axes[0].figure, path)
+
+
+def plot_sweep(sw, figures=None):
+    """Each figure of a sweep against the swept value: one panel per figure, the median
+    as a line and min..max over the units as a band (one tube: just the line)."""
+    names = list(figures or sw.figure_names)
+    n = len(names)
+    cols = 2
+    rows = (n + 1) // 2
+    fig, axes = plt.subplots(rows, cols, figsize=(9.0, 2.3 * rows + 0.8), sharex=True, squeeze=False)
+    x = sw.values * sw.display_scale
+    for ax, name in zip(axes.ravel(), names):
+        lo, med, hi = sw.stats(name)
+        unit, scale = sw.figure_unit(name)
+        ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
+        if sw.n_units > 1:
+            ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
+        ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9)
+        ax.grid(True, which="both", alpha=0.3)
+        if sw.log:
+            ax.set_xscale("log")
+    for ax in axes.ravel()[n:]:
+        ax.set_visible(False)
+    for ax in axes[-1]:
+        ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
+    who = sw.units_text
+    fig.suptitle(f"{stage_title(sw.stage)}: sweep of {sw.field} with {who}"
+                 + (" (line: median, band: min..max)" if sw.n_units > 1 else ""), fontsize=10)
+    fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
+    fig.tight_layout(rect=(0, 0.03, 1, 0.97))
+    return axes
+
+
+def save_sweep_plot(sw, path, figures=None) -> Path:
+    axes = plot_sweep(sw, figures)
+    return _save(axes[0, 0].figure, path)

@@ -1,0 +1,133 @@
+"""Design use cases: a stage's frequency response, and sweeps of one of its fields over a
+range (one tube, or a stock of cards so the spread shows).
+
+Specifications name the kind of stage and the circuit's fields in SI units as
+:mod:`fitter.service.stages` does (``{"b_plus": 300.0, "ra": 100e3, "ck": 22e-6}``), the
+tubes' model cards (``tube``, or ``bottom`` and ``top``), or, for a sweep, a folder or glob
+of cards (``cards``).  Results have ``to_dict()``; errors are :class:`SpecError` or
+:class:`~fitter.stage.StageInputError` carrying their field, and a circuit that cannot be
+solved is a :class:`~fitter.stage.StageSolveError`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Mapping
+
+from .specs import SpecError
+from .stages import KINDS, _spread_units, _tubes, build_stage, pair_sections
+
+__all__ = ["ResponseSpec", "SweepSpec", "stage_response", "stage_sweep", "stage_thd_against_frequency"]
+
+
+@dataclass(frozen=True)
+class ResponseSpec:
+    """Gain and phase of a stage from 1 Hz to 1 MHz (``points_per_decade`` per decade)."""
+
+    kind: str
+    circuit: Mapping = field(default_factory=dict)
+    tube: str | None = None
+    bottom: str | None = None
+    top: str | None = None
+    points_per_decade: int = 40
+    #: output level [V peak] for THD against frequency (ngspice); None: not run
+    thd_level: float | None = None
+
+
+@dataclass(frozen=True)
+class SweepSpec:
+    """One field of a stage (``vary``: ``"ra"``, ``"b_plus"`` ...) from ``start`` to ``stop``
+    in ``points`` steps (``log``: geometric), with the tubes (``tube`` / ``bottom`` and
+    ``top``) or over the cards in ``cards`` (a folder or a glob; a stack pairs each tube's
+    two sections).  ``thd_limit`` (fraction) sets the headroom, ``level`` [V peak] the THD
+    column, ``slew_vpeak`` [V] the slew figure."""
+
+    kind: str
+    vary: str
+    start: float
+    stop: float
+    points: int = 20
+    log: bool = False
+    circuit: Mapping = field(default_factory=dict)
+    tube: str | None = None
+    bottom: str | None = None
+    top: str | None = None
+    cards: str | None = None
+    thd_limit: float = 0.01
+    level: float | None = None
+    slew_vpeak: float = 10.0
+
+
+def stage_response(spec: ResponseSpec):
+    """The stage's :class:`~fitter.stage.frequency.FrequencyResponse`."""
+    from ..stage.frequency import response
+
+    st = build_stage(spec.kind, spec.circuit)
+    return response(st, *_tubes(spec.kind, spec), points_per_decade=spec.points_per_decade)
+
+
+def stage_thd_against_frequency(spec: ResponseSpec):
+    """THD against frequency at ``spec.thd_level`` (ngspice transient):
+    :class:`~fitter.stage.transient.FrequencyDistortion`.  Without ngspice,
+    :class:`~fitter.stage.transient.SimulatorMissing` (one line); a front end reports it as
+    a note beside the small-signal response, which needs no simulator."""
+    from ..stage.transient import thd_against_frequency
+
+    if spec.thd_level is None:
+        raise SpecError("give the output level for THD against frequency", field="thd_level")
+    st = build_stage(spec.kind, spec.circuit)
+    return thd_against_frequency(st, *_tubes(spec.kind, spec), vout_peak=spec.thd_level)
+
+
+def stage_sweep(spec: SweepSpec):
+    """The stage's :class:`~fitter.stage.sweeps.ComponentSweep` over ``spec.vary``.
+
+    The swept field need not be in ``circuit`` (a required one, such as ``ra``, takes the
+    range's first value to build the stage); a value it has there is replaced.
+    """
+    from ..stage.sweeps import component_sweep, sweep_values
+
+    cls = KINDS.get(spec.kind)
+    if cls is None:
+        build_stage(spec.kind, spec.circuit)  # raises the unknown-kind error
+    if not isinstance(spec.vary, str) or not spec.vary:
+        raise SpecError("name the field to sweep", field="vary")
+    if spec.vary not in cls.__dataclass_fields__:
+        names = [f for f in cls.__dataclass_fields__ if f not in ("top_grid", "output")]
+        raise SpecError(f"a {spec.kind} stage has no field {spec.vary!r}; fields that can be swept: "
+                        + ", ".join(names), field="vary")
+    from ..stage import StageInputError
+
+    try:
+        values = sweep_values(spec.start, spec.stop, spec.points, spec.log)
+    except StageInputError as e:
+        raise SpecError(f"{spec.vary}, {e.field} of the range: {e.message}", field="vary") from None
+    circuit = dict(spec.circuit)
+    circuit[spec.vary] = float(values[0])
+    # every value of the range checked before any solving; an impossible one is about the range
+    st = None
+    for v in values:
+        try:
+            built = build_stage(spec.kind, {**circuit, spec.vary: float(v)})
+        except StageInputError as e:
+            if e.field != spec.vary:
+                raise
+            raise SpecError(f"{spec.vary} = {float(v):g} in the range: {e.message}", field="vary") from None
+        st = st or built
+    if spec.cards is not None:
+        given = [k for k in ("tube", "bottom", "top") if getattr(spec, k) is not None]
+        if given:
+            raise SpecError("a sweep over a stock takes its tubes from the cards; leave out the tube cards",
+                            field=given[0])
+        units = _spread_units(spec.cards)
+        pairing = ""
+        if spec.kind == "stack":
+            bottoms, tops, pairing = pair_sections(units)
+            cases = list(zip(bottoms, tops if tops is not None else bottoms))
+        else:
+            cases = [(u,) for u in units]
+    else:
+        cases = [_tubes(spec.kind, spec)]
+        pairing = ""
+    return component_sweep(st, spec.vary, values, cases, log=spec.log, thd_limit=spec.thd_limit, level=spec.level,
+                           slew_vpeak=spec.slew_vpeak, pairing=pairing)
