@@ -81,6 +81,13 @@ def plot_sweep(sw, figures=None):
             ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
         ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9)
         ax.grid(True, which="both", alpha=0.3)
+        if not np.any(np.isfinite(np.asarray(med, float))):
+            # nothing to draw: say so rather than leave an empty frame (e.g. the slew limit
+            # needs a load capacitance, headroom a stage that reaches a limit)
+            ax.text(0.5, 0.5, "no value at any point" + ("\n(the slew limit needs a load capacitance)"
+                                                    if "slew" in name else ""), ha="center",
+                    va="center", transform=ax.transAxes, fontsize=8, color="0.4")
+            ax.set_yticks([])
         if sw.log:
             ax.set_xscale("log")
     for ax in axes.ravel()[n:]:
