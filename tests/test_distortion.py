@@ -187,3 +187,26 @@ def test_distortion_reports_carry_the_stages_dc_warnings():
     assert any("heater-cathode" in w for w in dc)
     assert any("heater-cathode" in w for w in D.analyse(st, t, t, vout_peak=5.0).warnings)
     assert any("heater-cathode" in w for w in D.sweep(st, t, t, levels=4).warnings)
+
+
+@pytest.mark.parametrize("kw", [dict(b_plus=300.0, rk=1.5e3, r_top=1.5e3, r_mid=68e3, c_top=100e-9, ck=100e-6),
+                                dict(b_plus=300.0, rk=1e3, r_top=1e3, r_mid=68e3)])
+def test_drive_limit_of_a_mixed_mu_follower_is_found_without_solving_absurd_drives(kw):
+    # a mu follower of a Dempwolf high-mu bottom and a Koren medium-mu top (invented sets): the
+    # search used to solve drives up to twice B+ at once, where the stack has no solution, and
+    # failed; it now climbs from small drives and stops at the first limit.  The limit found
+    # must agree with a fine scan of the quasi-static top grid voltage (an independent check
+    # of the same circuit equations)
+    from fitter.stage import Stack, operating_point, quasi_static
+    from fitter.stage.distortion import drive_limit
+    ko = FittedTriode("koren", dict(mu=22.37, ex=1.317, kg1=1143.2, kp=91.6, kvb=271.0), tube="XU7", section="B")
+    dw = FittedTriode("dempwolf", dict(G=2.31e-3, mu=98.7, gamma=1.284, C=3.17), tube="XA7")
+    st = Stack.mu_follower(**kw)
+    lim = drive_limit(st, dw, ko)
+    assert lim.reason == "grid-current onset" and 0.05 < lim.vin_peak < 5
+    op = operating_point(st, dw, ko)
+    a = np.linspace(0.5 * lim.vin_peak, 1.5 * lim.vin_peak, 2001)
+    res = quasi_static(st, dw, ko, vin=np.concatenate([a, -a]), op=op)
+    crest = np.maximum(res[f"{lim.position}.vgk"][:a.size], res[f"{lim.position}.vgk"][a.size:])
+    onset = a[np.argmax(crest >= 0.0)]
+    assert abs(onset - lim.vin_peak) <= 1e-3 * lim.vin_peak

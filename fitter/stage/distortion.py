@@ -322,7 +322,19 @@ def drive_limit(stage, *triodes, op=None, grid_onset: float = 0.0, cutoff_fracti
     lo_a, hi_a = 1e-4, top
     grid = np.geomspace(lo_a, hi_a, 48)
     for rnd in range(3):
-        m = margins(grid)
+        if rnd == 0:
+            # the first, geometric grid is solved from small drives up, a few at a time, and
+            # stops at the first chunk that passes a limit: drives far beyond it (up to twice
+            # the supply) need not be solved, and a stack may not converge there at all
+            m = {}
+            for lo in range(0, grid.size, 8):
+                part = margins(grid[lo:lo + 8])
+                m = {key: np.concatenate([m.get(key, np.empty(0)), v]) for key, v in part.items()}
+                if any(np.any(v >= 0) for v in part.values()):
+                    grid = grid[:lo + 8]
+                    break
+        else:
+            m = margins(grid)
         best = None
         for key, v in m.items():
             idx = np.nonzero(v >= 0)[0]
