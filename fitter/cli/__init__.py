@@ -31,6 +31,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "stage": ("stage", "Operating point, gain, output impedance and limits of a stage with fitted tubes."),
     "distortion": ("stage", "Harmonics and THD of a stage (quasi-static, mid-band), at a level or swept."),
     "match": ("match", "Match the units in FITS by what each does in the position it will work in."),
+    "output": ("output", "Output stages: a power triode into a transformer, single-ended or push-pull."),
 }
 
 #: exit status of an unexpected internal error (1 is bad input, 2 a failed fit or solve)

@@ -524,6 +524,7 @@ class OutputResult:
     figures: dict
     sweep: PowerSweep
     warnings: list[str] = field(default_factory=list)
+    fitted: tuple = ()  # the FittedTriode objects (for plots), not in to_dict
 
     def to_dict(self) -> dict:
         f = self.figures
@@ -697,7 +698,7 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS) -> 
         elif stage.pa_max is not None and pa_full[p] > stage.pa_max:
             warn.append(f"{t.label} dissipates {pa_full[p]:.3g} W at full output, above the "
                         f"{stage.pa_max:g} W limit")
-    return OutputResult(stage, [t.label for t in triodes], op, figures, sweep, warn)
+    return OutputResult(stage, [t.label for t in triodes], op, figures, sweep, warn, tuple(triodes))
 
 
 # ---------------------------------------------------------------------------
