@@ -217,7 +217,7 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
         ia, ib, v, k = (np.array(np.broadcast_to(x, shape), float) for x in x0)
     if not solve_k:
         k = np.array(np.broadcast_to(np.asarray(vk, float), shape))
-    tol = 1e-12 * B
+    tol = 1e-11 * B
     for _ in range(_JOINT_MAXIT):
         fa, gaa, gga = banks[0].current_and_gradient(B - r * ia - v - k, vga - k)
         fb, gab, ggb = banks[1].current_and_gradient(B - r * ib + v - k, vgb - k)
@@ -259,7 +259,7 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
         if not np.all(np.isfinite(ia) & np.isfinite(ib)):
             return None
         if (np.max(np.abs(dv), initial=0.0) <= tol and np.max(np.abs(dk), initial=0.0) <= tol
-                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-12 * np.max(np.abs(ia) + np.abs(ib))):
+                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
             return v, ia, ib, k
     return None
 
@@ -393,28 +393,30 @@ def _margins(stage, banks, op, amps):
     return grid, cut
 
 
-def _first_crossing(fun, hi, lo=0.0, n=64, rel=1e-7):
-    """Smallest a in (lo, hi] where fun(a) <= 0 (fun > 0 at lo), by repeated n-section
-    (each pass evaluates n points in one vectorised call); None when fun stays positive up
-    to hi."""
-    a = np.linspace(lo, hi, n + 1)[1:]
-    m = fun(a)
-    bad = np.nonzero(m <= 0)[0]
-    if bad.size == 0:
-        return None
-    span = hi - lo
-    while True:
-        k = bad[0]
-        lo, up = (lo if k == 0 else a[k - 1]), a[k]
-        if up - lo <= rel * span:
-            return float(lo)
-        a = np.linspace(lo, up, n + 1)[1:-1]
-        m = fun(a)
+def _first_crossing(fun, hi, lo=0.0, n=64, passes=2):
+    """Smallest a in (lo, hi] where fun(a) <= 0 (fun > 0 at lo): a scan of ``n`` points, an
+    ``n``-section of the bracket (each pass one vectorised call), then linear interpolation
+    of fun inside the last bracket (1/n^2 of the range: fun is smooth there, so the root is
+    found to far below 1e-6 of the range); None when fun stays positive up to hi."""
+    a = np.linspace(lo, hi, n + 1)
+    m = np.empty_like(a)
+    m[0] = np.inf
+    m[1:] = fun(a[1:])
+    for p in range(passes):
         bad = np.nonzero(m <= 0)[0]
         if bad.size == 0:
-            lo = a[-1]
-            a = np.array([up])
-            bad = np.array([0])
+            return None
+        k = bad[0]
+        a_lo, a_up, m_lo, m_up = a[k - 1], a[k], m[k - 1], m[k]
+        if p == passes - 1:
+            break
+        a = np.linspace(a_lo, a_up, n + 1)
+        m = np.empty_like(a)
+        m[0], m[-1] = m_lo, m_up
+        m[1:-1] = fun(a[1:-1])
+    if not np.isfinite(m_lo):
+        return float(a_lo)
+    return float(a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up))
 
 
 def drive_limits(stage, *triodes) -> dict:
