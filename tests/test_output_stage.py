@@ -186,6 +186,26 @@ def test_dissipation_over_the_limit_is_warned():
     assert any("above the 25 W limit" in w for w in r.warnings)
 
 
+def test_error_bars_follow_the_fit_covariance():
+    # fitter.triode.propagate (central differences, sqrt(J C J^T)) of the model current at
+    # the fixed-bias point (no winding resistance: va = B+) is the idle current's error bar.
+    from fitter.triode import propagate
+
+    cov = np.diag([1e-3, 1e-5, 400.0, 4.0, 100.0])
+    t = FittedTriode("koren", P300B, tube="PE", free=("mu", "ex", "kg1", "kp", "kvb"), covariance=cov)
+    st = SingleEndedOutput(b_plus=300.0, load=3000.0, grid_bias=-61.0)
+    r = solve_output(st, t, errors=True)
+    _, err = propagate(lambda u: [float(u.current(300.0, -61.0))], t)
+    assert r.figures["errors"]["ia_A"] == pytest.approx(err[0], rel=1e-4)
+    assert r.figures["errors"]["p_max"] > 0
+    d = r.to_dict()["errors"]
+    assert d["ia_ma"]["tube"] == pytest.approx(1e3 * err[0], rel=1e-4)
+    assert "error bars" in r.report()
+    # no covariance on the card: unknown, not zero
+    r = solve_output(st, TA, errors=True)
+    assert math.isnan(r.figures["errors"]["p_max"]) and r.to_dict()["errors"]["power_max_w"] is None
+
+
 @pytest.mark.parametrize("fields,field", [
     (dict(b_plus=300.0, grid_bias=-61.0), "load"),
     (dict(b_plus=300.0, load=3000.0, turns_ratio=20.0, grid_bias=-61.0), "load"),

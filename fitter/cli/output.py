@@ -55,6 +55,7 @@ _STAGE_OPTS = [
     click.option("--load-sweep", default=None,
                  help="Also sweep the reflected load over these values, e.g. 1.5k,2k,3k,5k,8k."),
     click.option("--level", default="1", show_default=True, help="Output power for the sweep's THD column [W]."),
+    click.option("--errors", is_flag=True, help="Error bars of the main figures from the cards' covariance."),
     click.option("--plot", default=None, help="Save load lines and power/THD to this PNG."),
     click.option("--json", "json", is_flag=True, help="Print one JSON object."),
 ]
@@ -79,7 +80,7 @@ def _run(kind, o, tubes):
     from ..service.output import run_output
 
     spec = OutputSpec(kind, _circuit(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
-                      level=value(o["level"], "--level", optional=False))
+                      level=value(o["level"], "--level", optional=False), errors=o["errors"])
     try:
         run = run_output(spec)
     except StageSolveError as e:

@@ -47,6 +47,9 @@ class OutputSpec:
         Reflected loads [ohm] for a load sweep.
     level : float
         Output power [W] at which the load sweep reports THD.
+    errors : bool
+        Propagate the cards' covariance to the main figures (one solve per perturbed
+        parameter).
     """
 
     kind: str
@@ -57,6 +60,7 @@ class OutputSpec:
     thd: float = 0.05
     loads: tuple | None = None
     level: float = 1.0
+    errors: bool = False
 
 
 @dataclass
@@ -112,7 +116,7 @@ def run_output(spec: OutputSpec) -> OutputRun:
     if isinstance(spec.thd, bool) or not isinstance(spec.thd, (int, float)) or not (0 < spec.thd < 1):
         raise SpecError(f"must be a fraction between 0 and 1, got {spec.thd!r}", field="thd")
     tubes = _tubes(spec)
-    res = solve_output(stage, *tubes, thd=float(spec.thd))
+    res = solve_output(stage, *tubes, thd=float(spec.thd), errors=bool(spec.errors))
     sweep = None
     if spec.loads is not None:
         loads = list(spec.loads)

@@ -552,6 +552,15 @@ class OutputResult:
             "output_impedance_ohm": f["z_out"], "damping_factor": f["damping"],
             "sweep": self.sweep.to_dict(), "warnings": list(self.warnings),
         }
+        if "errors" in f:
+            e = f["errors"]
+
+            def num(x, k=1.0):
+                return None if not math.isfinite(x) else k * x
+
+            out["errors"] = {"ia_ma": {p: num(e[f"ia_{'A' if p == 'tube' else p}"], 1e3) for p in st.positions},
+                             "power_max_w": num(e["p_max"]), "thd_max_pct": num(e["thd_max"], 100.0),
+                             "power_at_thd_w": num(e["p_thd"]), "output_impedance_ohm": num(e["z_out"])}
         if st.kind == "single-ended":
             out["primary_dc_ma"] = 1e3 * self.op["tube.ia"]
             out["cutoff_vin_peak_v"] = f["vin_cut"]
@@ -597,6 +606,15 @@ class OutputResult:
             L.append(f"  crossover: the composite transconductance at idle is {100 * f['gm_dip']:.0f} % of its "
                      f"largest over the swing")
         L.append(f"  output impedance at the secondary {f['z_out']:.3g} ohm, damping factor {f['damping']:.3g}")
+        if "errors" in f:
+            e = f["errors"]
+
+            def pm(x, fmt, k=1.0):
+                return "unknown (no covariance on the card)" if not math.isfinite(x) else f"+-{format(k * x, fmt)}"
+
+            L.append(f"  error bars (one sigma, from the fits' covariance): largest output {pm(e['p_max'], '.2g')} W, "
+                     f"THD there {pm(e['thd_max'], '.2g', 100)} %, idle current "
+                     + ", ".join(f"{pm(e['ia_A' if p == 'tube' else 'ia_' + p], '.2g', 1e3)} mA" for p in st.positions))
         L.append("  power [W]   H2 [dB]   H3 [dB]   THD [%]   grid drive [V pk]")
         idx = np.unique(np.linspace(0, len(self.sweep.power) - 1, 8).round().astype(int))
         for k in idx:
@@ -627,7 +645,7 @@ def _z_out(stage, banks, op):
     return (sum(rps) + stage.r_primary) / stage.ratio ** 2
 
 
-def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS) -> OutputResult:
+def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, errors: bool = False) -> OutputResult:
     """Solve an output stage: operating point and every figure (see the module docstring).
 
     Parameters
@@ -640,6 +658,11 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS) -> 
         single-ended triode ratings).
     levels : int
         Levels of the power sweep (up to the largest output).
+    errors : bool
+        Also propagate each tube's fit covariance (central differences, as
+        :func:`fitter.triode.propagate`) to the main figures: ``figures["errors"]``, one-sigma
+        [SI], NaN where a card has no covariance.  One whole solve per perturbed parameter
+        (10-20 solves): off by default.
     """
     if isinstance(thd, bool) or not isinstance(thd, (int, float)) or not (0 < thd < 1):
         raise StageInputError(f"must be a fraction between 0 and 1, got {thd!r}", field="thd")
@@ -700,7 +723,41 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS) -> 
         elif stage.pa_max is not None and pa_full[p] > stage.pa_max:
             warn.append(f"{t.label} dissipates {pa_full[p]:.3g} W at full output, above the "
                         f"{stage.pa_max:g} W limit")
+    if errors:
+        figures["errors"] = _errors(stage, triodes, thd, levels)
     return OutputResult(stage, [t.label for t in triodes], op, figures, sweep, warn, tuple(triodes))
+
+
+#: the figures that get error bars (name -> how to read it from a result)
+_ERROR_FIGURES = ("ia_A", "ia_B", "p_max", "thd_max", "p_thd", "z_out")
+
+
+def _main_figures(res: "OutputResult") -> np.ndarray:
+    f = res.figures
+    pos = res.stage.positions
+    ia = [res.op[f"{p}.ia"] for p in pos] + [math.nan] * (2 - len(pos))
+    return np.array(ia + [f["p_max"], f["thd_max"], math.nan if f["p_thd"] is None else f["p_thd"], f["z_out"]])
+
+
+def _errors(stage, triodes, thd, levels) -> dict:
+    from ..triode import error_from_differences, perturbed
+
+    var = np.zeros(len(_ERROR_FIGURES))
+    known = False
+    for i, t in enumerate(triodes):
+        if t.covariance is None or not t.free:
+            var[:] = np.nan
+            continue
+        known = True
+        sets, steps = perturbed(t)
+        rows = []
+        for tt in sets:
+            ts = list(triodes)
+            ts[i] = tt
+            rows.append(_main_figures(solve_output(stage, *ts, thd=thd, levels=levels)))
+        var += error_from_differences(rows, steps, t.covariance) ** 2
+    err = np.sqrt(var) if known else np.full(len(_ERROR_FIGURES), np.nan)
+    return dict(zip(_ERROR_FIGURES, (float(x) for x in err)))
 
 
 # ---------------------------------------------------------------------------
