@@ -104,3 +104,38 @@ def test_push_pull_slot_refuses_other_stages_and_levels(stock):
     with pytest.raises(MatchError) as e:
         PushPullSlot(STAGE, stock[0], level=1.5)
     assert e.value.field == "level"
+
+
+def test_matching_service_takes_the_push_pull_position(stock):
+    from fitter.service.matching import match
+
+    res = match({"units": stock, "push_pull": {"b_plus": 400.0, "load": "5k", "grid_bias": -84.0},
+                 "reference": "S1", "level": 0.8})
+    assert _pairs(res) == [("S1", "S3"), ("S2", "S4")]  # figures ia, h2 by default here
+    res = match({"units": stock, "push_pull": {"b_plus": 400.0, "load": 5000.0, "grid_bias": -84.0}})
+    assert _pairs(res) == [("S1", "S3"), ("S2", "S4")]  # reference: the unit of median current
+    with pytest.raises(MatchError) as e:
+        match({"units": stock, "push_pull": {"b_plus": 400.0, "load": -5.0, "grid_bias": -84.0}})
+    assert e.value.field == "push_pull" and "load" in str(e.value)
+    with pytest.raises(MatchError) as e:
+        match({"units": stock, "push_pull": {"b_plus": 400.0, "load": 5000.0, "grid_bias": -84.0}, "va": 250.0})
+    assert e.value.field in ("va", "push_pull")
+
+
+def test_match_command_with_the_push_pull_position(stock, tmp_path):
+    from click.testing import CliRunner
+
+    from fitter.card import save_card
+    from fitter.cli import main
+
+    for u in stock:
+        save_card(tmp_path / f"{u.label}.koren.json", u)
+    r = CliRunner().invoke(main, ["match", str(tmp_path), "--push-pull", "b_plus=400,load=5k,grid_bias=-84",
+                                  "--reference", "S1", "--json"])
+    assert r.exit_code == 0, r.output
+    import json
+
+    groups = json.loads(r.output)["groups"]
+    assert sorted(tuple(sorted(g["units"])) for g in groups) == [("S1", "S3"), ("S2", "S4")]
+    r = CliRunner().invoke(main, ["match", str(tmp_path), "--push-pull", "b_plus=400,load=5k"])
+    assert r.exit_code == 1 and "--push-pull" in r.output and "Traceback" not in r.output

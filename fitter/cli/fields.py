@@ -41,7 +41,7 @@ OPTIONS: dict[str, str] = {
     # output stages (fitter.stage.output, fitter.service.output)
     "load": "--load", "turns_ratio": "--turns", "speaker": "--speaker", "r_primary": "--rdc",
     "grid_bias": "--bias", "thd": "--thd", "loads": "--load-sweep", "level": "--level",
-    "tube_a": "--tube-a", "tube_b": "--tube-b",
+    "tube_a": "--tube-a", "tube_b": "--tube-b", "push_pull": "--push-pull", "reference": "--reference",
 }
 
 

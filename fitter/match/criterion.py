@@ -106,7 +106,7 @@ FIGURES = {
     "rp": ("rp", "kohm", 1e-3),
     "mu": ("mu", "", 1.0),
     "gain": ("gain", "", 1.0),
-    "h2": ("H2 current", "mA", 1e3),
+    "h2": ("Ia(H2)", "mA", 1e3),
 }
 
 
