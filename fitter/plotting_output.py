@@ -17,7 +17,7 @@ import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
 from .plotting_stage import _save  # noqa: E402
-from .stage.output import waveforms  # noqa: E402
+from .stage.output import composite_characteristic, waveforms  # noqa: E402
 
 __all__ = ["plot_output", "save_output_plot"]
 
@@ -56,7 +56,8 @@ def plot_output(run, axes=None):
     st = res.stage
     tubes = res.fitted
     f = res.figures
-    ncol = 3 if sweep is not None else 2
+    se0 = res.stage.kind == "single-ended"
+    ncol = 2 + (sweep is not None) + (not se0)
     if axes is None:
         fig, axes = plt.subplots(1, ncol, figsize=(6.2 * ncol, 5.6))
     fig = axes[0].figure
@@ -132,8 +133,29 @@ def plot_output(run, axes=None):
     ax.legend(fontsize=7, loc="upper left")
     ax.grid(alpha=0.3, which="both")
 
-    if sweep is not None:
+    if not se:
         ax = axes[2]
+        q = st.reflected_load / 4.0
+        vmax = 1.1 * float(np.max(np.abs(w["v_load"]))) / 2.0
+        v = np.linspace(-vmax, vmax, 201)
+        drives = np.linspace(-f["vin_max"], f["vin_max"], 9)
+        ic = composite_characteristic(st, *tubes, drives=drives, v=v)
+        cmap = plt.get_cmap("coolwarm")
+        for i, (e, row) in enumerate(zip(drives, ic)):
+            ax.plot(v, 1e3 * row, color=cmap(i / (len(drives) - 1)), lw=1.0)
+            ax.annotate(f"{e:+.0f} V", (v[-1], 1e3 * row[-1]), xytext=(2, 0), textcoords="offset points",
+                        fontsize=7, va="center", color=cmap(i / (len(drives) - 1)), annotation_clip=False)
+        imb = f["imbalance"]
+        ax.plot(v, 1e3 * (v / q + imb), color="k", lw=1.6, label=f"load line Raa/4 = {q:.4g} ohm")
+        ax.plot(w["v_load"] / 2.0, 1e3 * (w["A.ia"] - w["B.ia"]), color="tab:red", lw=4.0, alpha=0.35,
+                label=f"swing at {f['p_max']:.3g} W")
+        ax.set_xlabel("half-primary voltage v [V] (plate A at B+ - v)")
+        ax.set_ylabel("composite current IA - IB [mA]")
+        ax.set_title("composite characteristic (grid drive per curve)", fontsize=10)
+        ax.legend(fontsize=7, loc="upper left")
+        ax.grid(alpha=0.3)
+    if sweep is not None:
+        ax = axes[-1]
         ax.plot(sweep.load, sweep.p_max, "-o", color="tab:red", ms=4, label="largest output [W]")
         ok = np.isfinite(sweep.p_thd)
         if np.any(ok):

@@ -116,6 +116,21 @@ def test_shared_cathode_resistor_push_pull_solves_both_ways():
         assert r.figures["p_max"] > 5.0
 
 
+def test_composite_characteristic_meets_the_load_line_at_the_solved_state():
+    # Common practice (the composite characteristic of a push-pull pair): the state at a
+    # grid drive e is where the curve of e crosses v = (Raa/4)(IA - IB - imbalance).
+    from fitter.stage.output import composite_characteristic
+
+    st = PushPullOutput(b_plus=400.0, load=4000.0, r_primary=200.0, grid_bias=-100.0)
+    e = np.array([-60.0, 0.0, 35.0, 90.0])
+    w = waveforms(st, TA, TB, vin=e)
+    v = w["v_load"] / 2.0
+    ic = composite_characteristic(st, TA, TB, drives=e, v=v)
+    assert np.allclose(np.diag(ic), w["A.ia"] - w["B.ia"], rtol=1e-9, atol=1e-12)
+    op = idle(st, TA, TB)
+    assert np.allclose(v, 1000.0 * (np.diag(ic) - (op["A.ia"] - op["B.ia"])), rtol=1e-9, atol=1e-9)
+
+
 def test_joint_and_bracketed_push_pull_solves_agree():
     # Two solution methods of the same equations (the fallback is the bracketed one).
     from fitter.stage.output import _pp_bracketed, _pp_joint

@@ -49,7 +49,7 @@ from .distortion import N_HARMONICS, _fmt_db, harmonic_amplitudes
 from .solver import StageSolveError, _Bank, _solve_outer, _solve_tube
 
 __all__ = ["SingleEndedOutput", "PushPullOutput", "OutputResult", "PowerSweep", "LoadSweep",
-           "solve_output", "load_sweep", "drive_limits", "waveforms", "idle"]
+           "solve_output", "load_sweep", "drive_limits", "waveforms", "idle", "composite_characteristic"]
 
 #: A tube carrying less than this fraction of its idle current is cut off (the end of the
 #: single-ended swing, the end of class A in push-pull); common practice for "cut-off".
@@ -375,6 +375,26 @@ def waveforms(stage, *triodes, vin) -> dict:
     """Public form of the quasi-static response (solves the operating point first)."""
     banks = _banks(stage, triodes)
     return _waveforms(stage, banks, _idle(stage, banks), vin)
+
+
+def composite_characteristic(stage, *triodes, drives, v):
+    """The push-pull composite characteristic: for each grid drive e (grid A at bias + e,
+    grid B at bias - e) and each half-primary voltage v (plate A at B+ - v - r IA, plate B at
+    B+ + v - r IB, cathode at its idle voltage), the composite current IA - IB [A], shape
+    (len(drives), len(v)).  The load line is v = (Raa / 4)(IA - IB - imbalance): where it
+    crosses a curve is the stage's state at that drive (common practice: the composite
+    characteristic of a push-pull pair)."""
+    if not isinstance(stage, PushPullOutput):
+        raise StageInputError("the composite characteristic is a push-pull's", field="stage")
+    banks = _banks(stage, triodes)
+    op = _idle(stage, banks)
+    e = np.asarray(drives, float)[:, None]
+    vv = np.asarray(v, float)[None, :]
+    r = stage.r_primary / 2.0
+    vk = op["vk"]
+    ia, *_ = _solve_tube(banks[0], stage.b_plus - vv - vk, r, stage._vg + e - vk, 0.0)
+    ib, *_ = _solve_tube(banks[1], stage.b_plus + vv - vk, r, stage._vg - e - vk, 0.0)
+    return ia - ib
 
 
 # ---------------------------------------------------------------------------
