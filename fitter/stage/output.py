@@ -458,8 +458,20 @@ def _drive_limits(stage, banks, op):
         # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
         # push-pull's cathode moves only with the rectified sum of the currents
         hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
-        grid = _first_crossing(lambda a: _margins(stage, banks, op, a)[0], hi)
-    cut = _first_crossing(lambda a: _margins(stage, banks, op, a)[1], grid if grid is not None else hi)
+        memo = {}
+
+        def both(a):  # the two searches share their first scan (the same amplitudes)
+            key = a.tobytes()
+            if key not in memo:
+                memo[key] = _margins(stage, banks, op, a)
+            return memo[key]
+
+        grid = _first_crossing(lambda a: both(a)[0], hi)
+        cut = _first_crossing(lambda a: both(a)[1], hi)
+        if cut is not None and grid is not None and cut >= grid:
+            cut = None
+        return {"grid": grid, "cutoff": cut}
+    cut = _first_crossing(lambda a: _margins(stage, banks, op, a)[1], grid)
     return {"grid": grid, "cutoff": cut}
 
 
