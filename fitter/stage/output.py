@@ -29,7 +29,8 @@ Method (quasi-static, mid-band, like :mod:`fitter.stage.distortion`):
 Figures (:func:`solve_output`): plate dissipation at idle and at full output against the
 limit, the largest output before grid current (or cut-off, single-ended), the output at a
 chosen THD, H2, H3 and THD against output power (30 levels), the grid drive for both, the
-output impedance at the secondary ((rp + Rdc) / n^2, rp + (mu + 1) Rk unbypassed) and the
+output impedance at the secondary ((rp + Rdc) / n^2, rp + (mu + 1) Rk unbypassed; push-pull
+the two halves in parallel on the half winding) and the
 damping factor, the primary's DC current (single-ended), the DC imbalance current and the
 class-A limit with the crossover dip of the composite transconductance (push-pull).
 :func:`load_sweep` gives power and distortion against the reflected load.
@@ -663,9 +664,14 @@ class OutputResult:
 
 
 def _z_out(stage, banks, op):
-    """Output impedance at the secondary [ohm]: the plate circuit's small-signal source
-    resistance (rp, rp + (mu+1) Rk with an unbypassed cathode resistor; push-pull rpA + rpB
-    plate to plate) plus the primary's DC resistance, over n^2."""
+    """Output impedance at the secondary [ohm].
+
+    Single-ended: the plate circuit's small-signal source resistance R = rp (rp + (mu+1) Rk
+    with an unbypassed cathode resistor) plus the primary's DC resistance, over n^2.
+    Push-pull: each half is a source R_A = rp_A + Rdc/2, R_B = rp_B + Rdc/2 on its half
+    winding; the ampere-turn balance puts them in parallel on the half-winding voltage, so
+    the whole primary sees 4 R_A R_B / (R_A + R_B) (= 2 rp + Rdc for equal halves), over n^2.
+    A shared unbypassed cathode resistor carries no differential current (equal halves)."""
     rps = []
     for b, p in zip(banks, stage.positions):
         gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
@@ -674,7 +680,10 @@ def _z_out(stage, banks, op):
         if stage.rk is not None and not stage.bypassed and stage.kind == "single-ended":
             rp = rp + (gvg * rp + 1.0) * stage.rk
         rps.append(rp)
-    return (sum(rps) + stage.r_primary) / stage.ratio ** 2
+    if stage.kind == "single-ended":
+        return (rps[0] + stage.r_primary) / stage.ratio ** 2
+    ra, rb = (r + stage.r_primary / 2.0 for r in rps)
+    return 4.0 * ra * rb / (ra + rb) / stage.ratio ** 2
 
 
 def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, errors: bool = False) -> OutputResult:
