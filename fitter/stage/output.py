@@ -46,7 +46,7 @@ import numpy as np
 from .. import CAUTION
 from ..triode import FittedTriode
 from .circuits import StageInputError, _check_number, _check_positive
-from .distortion import N_HARMONICS, _fmt_db, harmonic_amplitudes
+from .distortion import DB_FLOOR, N_HARMONICS, _fmt_db, harmonic_amplitudes
 from .solver import StageSolveError, _Bank, _solve_outer, _solve_tube
 
 __all__ = ["SingleEndedOutput", "PushPullOutput", "OutputResult", "PowerSweep", "LoadSweep",
@@ -499,9 +499,11 @@ class PowerSweep:
     h: np.ndarray
 
     def to_dict(self) -> dict:
+        """Lists by level; a harmonic under the numerical floor (-140 dB) is None."""
+        def db(a):
+            return [float(x) if x >= DB_FLOOR else None for x in a]
         return {"vin_peak_v": self.vin.tolist(), "power_w": self.power.tolist(),
-                "h2_db": [float(x) for x in self.h2], "h3_db": [float(x) for x in self.h3],
-                "thd_pct": (100.0 * self.thd).tolist()}
+                "h2_db": db(self.h2), "h3_db": db(self.h3), "thd_pct": (100.0 * self.thd).tolist()}
 
 
 def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES):
@@ -549,6 +551,12 @@ def _level_at_thd(stage, banks, op, sweep, target):
     return float(lo + (up - lo) * (target - tlo) / (tup - tlo))
 
 
+#: what the figures assume (reports and JSON state it)
+ASSUMPTIONS = ("quasi-static mid-band (the transformer is ideal, its magnetising current holds the idle "
+               "current; bypass capacitors hold their charge, so a bypassed cathode resistor's bias shift "
+               "in class AB is not modelled); no grid current")
+
+
 @dataclass
 class OutputResult:
     """Every figure of an output stage (SI units; ``to_dict`` gives W, mA, dB, %)."""
@@ -584,6 +592,7 @@ class OutputResult:
                        "vin_peak_v": f["vin_thd"]},
             "output_impedance_ohm": f["z_out"], "damping_factor": f["damping"],
             "sweep": self.sweep.to_dict(), "warnings": list(self.warnings),
+            "assumptions": ASSUMPTIONS, "caution": CAUTION,
         }
         if "errors" in f:
             e = f["errors"]
@@ -654,9 +663,7 @@ class OutputResult:
             s = self.sweep
             L.append(f"  {s.power[k]:9.3g} {_fmt_db(s.h2[k], 9)} {_fmt_db(s.h3[k], 9)} "
                      f"{100 * s.thd[k]:9.3f} {s.vin[k]:12.3g}")
-        L.append("  assumptions: quasi-static mid-band (the transformer is ideal, its magnetising current "
-                 "holds the idle current; bypass capacitors hold their charge, so a bypassed cathode "
-                 "resistor's bias shift in class AB is not modelled); no grid current")
+        L.append("  assumptions: " + ASSUMPTIONS)
         for w in self.warnings:
             L.append(f"  warning: {w}")
         L.append(CAUTION)
