@@ -78,6 +78,28 @@ def test_bad_input_is_one_line_naming_the_option(cards, args, text):
     assert text in res.output and "Traceback" not in res.output
 
 
+@pytest.mark.parametrize("option,value_", [
+    ("--turns", "1e308"), ("--turns", "1e-320"), ("--speaker", "1e-320"), ("--load", "1e-320"),
+    ("--pa-max", "1e-320"), ("--bplus", "1e308"), ("--load-sweep", "1e-320,3k"), ("--rdc", "nan"),
+])
+def test_implausible_values_are_refused_by_name(cards, option, value_):
+    # values that would overflow or divide by zero are input errors naming the option
+    base = {"--bplus": "330", "--load": "3k", "--bias": "-61"}
+    if option == "--turns":
+        base.pop("--load")
+    base[option] = value_
+    args = [x for kv in base.items() for x in kv]
+    res = CliRunner().invoke(main, ["output", "single-ended", "--tube", str(cards["a"]), *args])
+    assert res.exit_code == 1, res.output
+    assert res.output.startswith(f"error: {option}") and "Traceback" not in res.output
+
+
+def test_a_grid_at_the_onset_at_idle_is_a_failed_solve_not_nan(cards):
+    res = CliRunner().invoke(main, ["output", "single-ended", "--tube", str(cards["a"]), "--bplus", "330",
+                                    "--load", "3k", "--bias", "0"])
+    assert res.exit_code == 2 and "grid-current onset at idle" in res.output
+
+
 def test_missing_cards_are_input_errors(cards):
     res = CliRunner().invoke(main, ["output", "push-pull", "--tube-a", str(cards["a"]), "--bplus", "400",
                                     "--load", "5k", "--bias", "-84"])

@@ -68,6 +68,13 @@ def _check_bool(obj, name):
                               owner=type(obj).__name__)
 
 
+#: plausible magnitudes of the fields (field, low, high, unit): far outside them a value is a
+#: typo or a missing prefix, and the arithmetic would overflow or divide by zero
+_RANGES = (("b_plus", 1e-3, 1e5, "V"), ("load", 1.0, 1e8, "ohm"), ("turns_ratio", 1e-3, 1e4, ""),
+           ("speaker", 1e-2, 1e6, "ohm"), ("r_primary", 0.0, 1e7, "ohm"), ("grid_bias", 0.0, 1e5, "V"),
+           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"))
+
+
 @dataclass(frozen=True, kw_only=True)
 class _OutputCommon:
     """Fields shared by both output stages.
@@ -123,12 +130,21 @@ class _OutputCommon:
         _check_positive(self, "pa_max", optional=True)
         _check_number(self, "grid_onset")
         _check_bool(self, "bypassed")
+        for name, lo, hi, unit in _RANGES:
+            v = getattr(self, name)
+            if v is not None and not (lo <= abs(v) <= hi) and not (v == 0 and lo == 0):
+                raise StageInputError(f"{v!r} is not a plausible value here ({lo:g} to {hi:g} {unit} "
+                                      f"in magnitude)", field=name, owner=owner)
         if (self.load is None) == (self.turns_ratio is None):
             raise StageInputError("give the reflected load or the turns ratio (one of them)",
                                   field="load", owner=owner, label="load/turns_ratio")
         if (self.grid_bias is None) == (self.rk is None):
             raise StageInputError("give a fixed grid bias or a cathode resistor (one of them)",
                                   field="grid_bias", owner=owner, label="grid_bias/rk")
+        if not (1.0 <= self.reflected_load <= 1e8):
+            raise StageInputError(f"the reflected load {self.reflected_load:.4g} ohm is not a plausible "
+                                  f"transformer load (1 ohm to 100 Mohm)", field="load" if self.load is not None
+                                  else "turns_ratio", owner=owner)
         if self.grid_bias is not None and self.grid_bias > self.grid_onset:
             raise StageInputError(f"a fixed bias above the grid-current onset ({self.grid_onset:g} V) "
                                   f"draws grid current at idle, got {self.grid_bias!r}",
@@ -726,6 +742,9 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         raise StageSolveError("no drive limit found (neither grid current nor cut-off) within four "
                               "times the bias")
     vin_max, limit = min(ends)
+    if not vin_max > 1e-9 * stage.b_plus:
+        raise StageSolveError("the grid sits at the grid-current onset at idle: there is no drive before "
+                              "grid current (bias the grid below it)")
     amps = vin_max * np.linspace(1.0 / levels, 1.0, levels)
     w, h = _spectra(stage, banks, op, amps)
     sweep = _sweep_from(stage, amps, h)
@@ -857,7 +876,10 @@ def load_sweep(stage, *triodes, loads, thd: float = 0.05, level: float = 1.0) ->
         raise StageInputError(f"must be a positive power, got {level!r}", field="level")
     rows = []
     for RL in loads:
-        st = replace(stage, load=float(RL), turns_ratio=None)
+        try:
+            st = replace(stage, load=float(RL), turns_ratio=None)
+        except StageInputError as e:
+            raise StageInputError(e.message, field="loads") from None
         res = solve_output(st, *triodes, thd=thd, levels=N_LEVELS)
         s = res.sweep
         if level <= s.power[-1]:
