@@ -84,7 +84,8 @@ def plot_output(run, axes=None):
     else:
         ax.axvline(st.b_plus, color="0.35", lw=1.2, ls="--", label="DC load line (no resistance)")
     if se:
-        r_ac = st.r_primary + st.reflected_load
+        # plate-cathode voltage against current: an unbypassed cathode resistor adds its slope
+        r_ac = st.r_primary + st.reflected_load + (rk if not st.bypassed else 0.0)
         i = np.linspace(0, ia_top / 1e3, 50)
         i0, v0 = res.op["tube.ia"], res.op["tube.va"]
         ax.plot(v0 - r_ac * (i - i0), 1e3 * i, color="tab:red", lw=1.2,
