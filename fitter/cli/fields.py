@@ -41,6 +41,10 @@ OPTIONS: dict[str, str] = {
     "figure_tolerance": "--figure-tolerance", "weights": "--weights", "distance": "--distance",
     "grades": "--grades", "bottle_balance": "--bottle-balance", "extrapolate": "--extrapolate",
     "errors": "--errors", "time_limit": "--time-limit",
+    # output stages (fitter.stage.output, fitter.service.output)
+    "load": "--load", "turns_ratio": "--turns", "speaker": "--speaker", "r_primary": "--rdc",
+    "grid_bias": "--bias", "thd": "--thd", "loads": "--load-sweep",
+    "tube_a": "--tube-a", "tube_b": "--tube-b", "push_pull": "--push-pull", "reference": "--reference",
 }
 
 

@@ -50,6 +50,19 @@ def _mapping(text, option, percent=True):
     return out
 
 
+def _stage_fields(text):
+    """``b_plus=400,load=5k,grid_bias=-84`` -> {field: number} (engineering notation)."""
+    if not text:
+        return None
+    out = {}
+    for part in str(text).split(","):
+        if "=" not in part:
+            _fail(f"--push-pull: cannot read {part!r}; use field=value, e.g. b_plus=400,load=5k,grid_bias=-84")
+        k, v = (x.strip() for x in part.split("=", 1))
+        out[k] = (v.lower() in ("true", "yes")) if k == "bypassed" else _num(v, f"--push-pull {k}")
+    return out
+
+
 def _labels(text):
     return [s.strip() for s in text.split(",") if s.strip()] if text else None
 
@@ -86,6 +99,13 @@ def _grades(text):
 @click.option("--slot", type=click.Choice(["bottom", "top"]), default=None,
               help="Match units for one slot of the stack, with --partner in the other slot.")
 @click.option("--partner", default=None, help="Label of the unit in the other slot (with --slot).")
+@click.option("--push-pull", "push_pull", default=None,
+              help="Push-pull position: the output stage's fields, e.g. b_plus=400,load=5k,grid_bias=-84 "
+                   "(see 'platebook output push-pull'); compares each unit's idle current and H2 current "
+                   "(figures ia,h2: a pair's DC imbalance and H2).")
+@click.option("--reference", default=None,
+              help="Push-pull position: unit on the other side (default: the one of median current).")
+@click.option("--level", default=None, help="Push-pull position: drive for H2, a fraction of the largest (0.8).")
 @click.option("--target-ma", default=None, help="Stacked assignment: target current [mA] (default: median).")
 @click.option("--target-split", default="50", show_default=True,
               help="Stacked assignment: target share of the tube voltage across the bottom tube [%].")
@@ -96,8 +116,9 @@ def _grades(text):
               help="Quads: all four within tolerance, or two matched pairs (sides) whose sums match.")
 @click.option("--tolerance", default="5", show_default=True,
               help="P [%]: Ia and gm may differ by at most P % of the pair's mean.")
-@click.option("--figures", "figure_list", default="ia,gm", show_default=True,
-              help="Figures compared: of ia, gm, rp, mu, gain (gain: stage positions).")
+@click.option("--figures", "figure_list", default=None,
+              help="Figures compared: of ia, gm, rp, mu, gain (gain: stage positions), h2 (push-pull) "
+                   "[default: ia,gm; ia,h2 with --push-pull].")
 @click.option("--figure-tolerance", default=None, help="Per-figure tolerance [%], e.g. ia=5,gm=10.")
 @click.option("--weights", default=None, help="Per-figure weights of the mismatch, e.g. ia=1,gm=0.5.")
 @click.option("--distance", type=click.Choice(["max", "sum"]), default="max", show_default=True,
@@ -113,14 +134,15 @@ def _grades(text):
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
 @click.option("--csv", "csv_path", default=None, help="Write a CSV (one row per unit) for labelling.")
 def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid, stages, slot, partner,
-              target_ma, target_split, same_bottle, group, quad_mode, tolerance, figure_list,
+              push_pull, reference, level, target_ma, target_split, same_bottle, group, quad_mode, tolerance, figure_list,
               figure_tolerance, weights, distance, grades, only, exclude, bottle_balance, extrapolate,
               errors, time_limit, as_json, csv_path):
     """Match the units in FITS by what each does in the position it will work in.
 
     FITS is the JSON printed by 'platebook fit --json' or a folder of model cards.
-    Give one position: --va/--vg (fixed bias), --bplus/--ra/--rk (cathode bias), or
-    --stack with --slot and --partner (one slot of a stacked stage).  With --stack and
+    Give one position: --va/--vg (fixed bias), --bplus/--ra/--rk (cathode bias),
+    --stack with --slot and --partner (one slot of a stacked stage), or --push-pull (a
+    side of a push-pull output stage: pairs matched by their DC imbalance and H2).  With --stack and
     --stages N, assign units to the bottom and top of N identical stacks instead.
     """
     if csv_path == "-":
@@ -131,10 +153,11 @@ def match_cmd(fits, va, vg, bplus, ra, rk, unbypassed, stack_kind, r_top, r_mid,
         "va": _num(va, "--va"), "vg": _num(vg, "--vg"), "bplus": _num(bplus, "--bplus"), "ra": _num(ra, "--ra"),
         "rk": _num(rk, "--rk"), "bypassed": not unbypassed, "stack": stack_kind, "r_top": _num(r_top, "--r-top"),
         "r_mid": _num(r_mid, "--r-mid"), "slot": slot, "partner": partner, "stages": stages,
+        "push_pull": _stage_fields(push_pull), "reference": reference, "level": _num(level, "--level"),
         "target_ma": _num(target_ma, "--target-ma"),
         "target_split": _num(target_split, "--target-split", percent=True) if given else None,
         "same_bottle": same_bottle, "group": int(group), "quad": quad_mode,
-        "tolerance": _num(tolerance, "--tolerance", percent=True), "figures": _labels(figure_list) or [],
+        "tolerance": _num(tolerance, "--tolerance", percent=True), "figures": (None if figure_list is None else (_labels(figure_list) or [])),
         "figure_tolerance": _mapping(figure_tolerance, "--figure-tolerance") or None,
         "weights": _mapping(weights, "--weights", percent=False) or None, "distance": distance,
         "grades": _grades(grades), "bottle_balance": _num(bottle_balance, "--bottle-balance", percent=True),

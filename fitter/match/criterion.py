@@ -98,13 +98,15 @@ def _positive(name, v, allow_zero=False, field=None):
                          subject=name, field=field)
 
 
-#: figures every position gives; stages also give "gain"
+#: figures every position gives; stages also give "gain", the push-pull slot "h2" (the
+#: second-harmonic plate current, see fitter.match.positions.PushPullSlot)
 FIGURES = {
     "ia": ("Ia", "mA", 1e3),
     "gm": ("gm", "mA/V", 1e3),
     "rp": ("rp", "kohm", 1e-3),
     "mu": ("mu", "", 1.0),
     "gain": ("gain", "", 1.0),
+    "h2": ("Ia(H2)", "mA", 1e3),
 }
 
 

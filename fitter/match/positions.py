@@ -126,6 +126,119 @@ class StackedSlot:
 
 
 
+@dataclass(frozen=True)
+class PushPullSlot:
+    """A side of a push-pull output stage (:class:`fitter.stage.output.PushPullOutput`):
+    matching by what the pair does.
+
+    A pair's trouble in push-pull is its DC imbalance (a standing current in the primary,
+    which saturates the core) and the even harmonics the halves no longer cancel (H2).
+    Neither is a figure of one tube, so each unit is put in side A opposite ``reference``
+    (a typical unit of the type) and two figures are taken from that solve:
+
+    * ``ia``: its idle plate current in the stage.  With fixed bias the DC imbalance of a
+      pair is exactly the difference of the two idle currents (the transformer has no DC
+      voltage), so the relative difference of ``ia`` is the imbalance as a fraction of the
+      mean current.  With a shared cathode resistor each current also depends on the
+      partner a little; the reference stands in for it.
+    * ``h2``: the amplitude of its plate current's second harmonic [A] at ``level`` (a
+      fraction of the reference pair's largest drive), signed so that it is positive for a
+      rising transconductance.  The output of a push-pull is the difference of the two
+      plate currents; the grids are in antiphase, so the second harmonics of the two
+      currents are in phase and cancel in that difference but for their difference.  Each
+      tube is a generator of second-harmonic current g2 behind its rp; measured opposite the
+      reference, h2 = g2 - v2 / rp with v2 = Z (g2 - g2_ref) (Z: the load in parallel with
+      the two rp), so h2_A - h2_B = (g2_A - g2_B)(1 - Z / rp), and the pair's H2 / H1 is
+      proportional to |h2_A - h2_B| with one constant for the stage and type (to first
+      order: a test finds the ratio the same within 15 % over pairs whose units differ in
+      curvature; units that differ only in scale leave a far smaller H2 of higher order,
+      and a near-zero h2 difference).  The relative difference of ``h2`` thus ranks pairs
+      by their predicted H2, as the relative difference of ``ia`` ranks them by their DC
+      imbalance.
+
+    ``gm``, ``rp``, ``mu`` (at each unit's own idle point) are given too, so the usual
+    criteria still work here.  :func:`pair_prediction` solves a chosen pair in the stage
+    for the figures themselves.
+    """
+
+    stage: object
+    reference: FittedTriode
+    level: float = 0.5
+
+    def __post_init__(self):
+        from ..stage.output import PushPullOutput
+
+        if not isinstance(self.stage, PushPullOutput):
+            raise MatchError(f"'stage' must be a PushPullOutput, got {type(self.stage).__name__}",
+                             subject="push-pull slot", field="stage")
+        if not isinstance(self.reference, FittedTriode):
+            raise MatchError("'reference' must be a FittedTriode", subject="push-pull slot", field="reference")
+        _positive("push-pull level", self.level, field="level")
+        if self.level > 1:
+            raise MatchError(f"must be a fraction of the largest drive (0 to 1], got {self.level!r}",
+                             subject="push-pull level", field="level")
+
+    def describe(self) -> str:
+        st = self.stage
+        bias = f"grid {st.grid_bias:g} V" if st.grid_bias is not None else f"shared Rk {st.rk:g} ohm"
+        return (f"push-pull side (B+ = {st.b_plus:g} V, {st.reflected_load:g} ohm plate to plate, {bias}), "
+                f"opposite {self.reference.label}, H2 at {self.level:g} of the largest drive")
+
+    def to_dict(self) -> dict:
+        from dataclasses import asdict
+
+        return {"kind": "push-pull", "stage": asdict(self.stage), "reference": self.reference.label,
+                "level": float(self.level)}
+
+
+def _push_pull_values(position, units):
+    from ..stage import StageInputError, StageSolveError
+    from ..stage.output import _banks, _drive_limits, _idle, _waveforms
+
+    st = position.stage
+    banks_ref = _banks(st, (position.reference, position.reference))
+    op_ref = _idle(st, banks_ref)
+    lim = _drive_limits(st, banks_ref, op_ref)
+    amp = position.level * lim["grid"]
+    theta = 2 * np.pi * np.arange(128) / 128
+    vin = amp * np.sin(theta)
+    n = len(units)
+    out = {k: np.full(n, np.nan) for k in ("ia", "gm", "rp", "mu", "va", "vg", "h2")}
+    for k, u in enumerate(units):
+        try:
+            banks = _banks(st, (u, position.reference))
+            op = _idle(st, banks)
+            w = _waveforms(st, banks, op, vin)
+        except (StageSolveError, StageInputError):  # the stage cannot run it (cut off): no figures
+            continue
+        ia = w["A.ia"]
+        out["h2"][k] = -(2.0 / theta.size) * float(ia @ np.cos(2 * theta))
+        out["ia"][k] = op["A.ia"]
+        out["va"][k] = op["A.va"]
+        out["vg"][k] = op["A.vgk"]
+        dva, dvg = u.gradient(op["A.va"], op["A.vgk"])
+        dva, dvg = float(dva), float(dvg)
+        out["gm"][k] = dvg
+        out["rp"][k] = 1.0 / dva if dva > 0 else np.inf
+        out["mu"][k] = dvg * out["rp"][k]
+    return out
+
+
+def pair_prediction(position: PushPullSlot, a: FittedTriode, b: FittedTriode) -> dict:
+    """The pair (a, b) solved in the position's stage at its level: ``imbalance_ma`` (A - B),
+    ``h2_db``, ``h3_db``, ``thd_pct`` and ``power_w``."""
+    from ..stage.output import _banks, _drive_limits, _idle, _spectra, _sweep_from
+
+    st = position.stage
+    banks_ref = _banks(st, (position.reference, position.reference))
+    amp = position.level * _drive_limits(st, banks_ref, _idle(st, banks_ref))["grid"]
+    banks = _banks(st, (a, b))
+    op = _idle(st, banks)
+    s = _sweep_from(st, [amp], _spectra(st, banks, op, [amp])[1])
+    return {"imbalance_ma": 1e3 * (op["A.ia"] - op["B.ia"]), "h2_db": float(s.h2[0]),
+            "h3_db": float(s.h3[0]), "thd_pct": 100 * float(s.thd[0]), "power_w": float(s.power[0])}
+
+
 @dataclass
 class UnitFigures:
     """Each unit's figures in a position (SI units).
@@ -237,8 +350,10 @@ def _values(position, units):
         return _fixed_bias_values(units, position.va, position.vg)
     if isinstance(position, (CathodeBias, StackedSlot)):
         return _stage_values(position, units)
+    if isinstance(position, PushPullSlot):
+        return _push_pull_values(position, units)
     raise MatchError(
-        f"unknown position {type(position).__name__}; use FixedBias, CathodeBias or StackedSlot")
+        f"unknown position {type(position).__name__}; use FixedBias, CathodeBias, StackedSlot or PushPullSlot")
 
 
 def unit_figures(units: Sequence[FittedTriode], position, errors: bool = False,
@@ -284,11 +399,13 @@ def unit_figures(units: Sequence[FittedTriode], position, errors: bool = False,
             problem[k] = "its model gives no finite figures at this position"
         elif ia <= 0 or gm <= 0:
             problem[k] = "cut off at this position (Ia = 0)"
+        elif "h2" in values and not values["h2"][k] > 0:
+            problem[k] = "its second-harmonic current in this push-pull stage is not positive (no curvature to compare)"
         elif outside[k] and not extrapolate:
             problem[k] = "the position is outside its fitted data (extrapolation not allowed)"
     errs = None
     if errors:
-        names = [k for k in ("ia", "gm", "rp", "mu", "gain") if k in values]
+        names = [k for k in ("ia", "gm", "rp", "mu", "gain", "h2") if k in values]
         errs = {k: np.full(n, np.nan) for k in names}
         for k, u in enumerate(units):
             if u.covariance is None or not u.free:

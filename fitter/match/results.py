@@ -203,7 +203,7 @@ class MatchResult:
             lines.append("Quads: " + ("four units all within tolerance" if self.quad_mode == "all"
                                       else "two matched pairs whose summed figures match (sides A and B)"))
         lines.append("")
-        figs = [f for f in ("ia", "gm", "rp", "mu", "gain") if f in self.figures.values]
+        figs = [f for f in ("ia", "gm", "rp", "mu", "gain", "h2") if f in self.figures.values]
         head = f"  {'group':<7}{'grade':<9}{'unit':<16}" + "".join(
             f"{FIGURES[f][0] + (' [' + FIGURES[f][1] + ']' if FIGURES[f][1] else ''):>13}" for f in figs) + \
             f"{'mismatch':>11}"

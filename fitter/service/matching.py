@@ -38,8 +38,8 @@ SPEC_FIELDS = {
     "units": "the fitted units themselves (a list of FittedTriode), instead of a source",
     "only": "labels of the units to use (default: all)",
     "exclude": "labels of units to leave out",
-    "position": "the kind of position, 'fixed-bias', 'cathode-bias' or 'stacked-slot' (default: the one "
-                "whose fields are given); its fields must then be the only position fields given",
+    "position": "the kind of position, 'fixed-bias', 'cathode-bias', 'stacked-slot' or 'push-pull' (default: "
+                "the one whose fields are given); its fields must then be the only position fields given",
     "va": "fixed-bias position: plate voltage [V]",
     "vg": "fixed-bias position: grid voltage [V]",
     "bplus": "cathode-biased or stacked position: B+ [V]",
@@ -68,6 +68,12 @@ SPEC_FIELDS = {
     "extrapolate": "let units whose data do not cover the position take part",
     "errors": "propagate fit covariances to each unit's figures",
     "time_limit": "solver time limit [s] (default 60)",
+    "push_pull": "push-pull position: the output stage's fields (fitter.stage.output.PushPullOutput: "
+                 "b_plus, load or turns_ratio, grid_bias or rk, ...), a mapping; the figures then "
+                 "default to ia, h2 (DC imbalance and H2 of a pair)",
+    "reference": "push-pull position: label of the unit on the other side while each unit's figures "
+                 "are taken (default: the unit of median idle current)",
+    "level": "push-pull position: drive for the h2 figure, a fraction of the largest (default 0.8)",
 }
 
 #: fields only a stacked assignment (``stages``) uses
@@ -75,7 +81,7 @@ _STACKED_ONLY = ("target_ma", "target_split", "same_bottle")
 
 #: the fields that belong to one kind of position only
 _POSITION_FIELDS = {"fixed-bias": ("va", "vg"), "cathode-bias": ("ra", "bypassed"),
-                    "stacked-slot": ("slot", "partner")}
+                    "stacked-slot": ("slot", "partner"), "push-pull": ("push_pull", "reference", "level")}
 
 
 def match(spec: Mapping) -> MatchResult | StackAssignment:
@@ -134,7 +140,7 @@ def match(spec: Mapping) -> MatchResult | StackAssignment:
                             extrapolate=extrapolate, time_limit=time_limit)
         return dataclasses.replace(res, excluded=failed + res.excluded)
     position, units = s.position(stack, units)
-    criterion = s.criterion()
+    criterion = s.criterion(push_pull=s.get("push_pull") is not None)
     bottle_balance = s.number("bottle_balance", positive=True)
     group = s.get("group", 2)
     if isinstance(group, str) and group.strip() in ("2", "4"):
@@ -257,11 +263,15 @@ class _Spec:
                         raise MatchError(f"belongs to a {other} position, not a {kind} one", field=f, subject=f)
         va, vg, bplus, ra, rk = (self.number(f) for f in ("va", "vg", "bplus", "ra", "rk"))
         slot = self.d.get("slot")
+        pp = self.d.get("push_pull")
         given = [(text, f) for text, f, v in (("{va}/{vg}", "va", va is not None or vg is not None),
-                                              ("{ra}", "ra", ra is not None), ("{slot}", "slot", slot is not None)) if v]
+                                              ("{ra}", "ra", ra is not None), ("{slot}", "slot", slot is not None),
+                                              ("{push_pull}", "push_pull", pp is not None)) if v]
         if len(given) > 1:
             raise MatchError(f"give one position: {' and '.join(t for t, _ in given)} were both given",
-                             field=given[1][1], refs=("va", "vg", "ra", "slot"))
+                             field=given[1][1], refs=("va", "vg", "ra", "slot", "push_pull"))
+        if pp is not None:
+            return self.push_pull(pp, units), units
         if va is not None or vg is not None:
             if va is None or vg is None:
                 raise MatchError("fixed-bias position: give both {va} and {vg}", field="vg" if vg is None else "va",
@@ -288,8 +298,47 @@ class _Spec:
                          "{slot}/{partner} (or {stages} for a stacked assignment)",
                          refs=("va", "vg", "bplus", "ra", "rk", "stack", "slot", "partner", "stages"))
 
-    def criterion(self) -> Criterion:
-        figures = self.d.get("figures", ("ia", "gm"))
+    def push_pull(self, fields, units):
+        """The push-pull position: the stage from its fields, the reference unit by label or
+        the unit of median idle current in the stage."""
+        from ..match import PushPullSlot, unit_figures
+        from ..stage import StageInputError
+        from .output import build_output
+        from .specs import SpecError
+
+        if not isinstance(fields, Mapping):
+            raise MatchError("must map the push-pull stage's fields to values, e.g. {'b_plus': 400, "
+                             "'load': 5000, 'grid_bias': -84}", field="push_pull", subject="push_pull")
+        circuit = {}
+        for k, v in fields.items():
+            if isinstance(v, str):
+                try:
+                    v = parse_value(v, str(k))
+                except ValueError as e:
+                    raise MatchError(str(e), field="push_pull", subject="push_pull") from None
+            circuit[str(k)] = v
+        try:
+            stage = build_output("push-pull", circuit)
+        except (StageInputError, SpecError) as e:
+            raise MatchError(f"{e.field}: {e.message}", field="push_pull", subject="push_pull") from None
+        level = self.number("level", positive=True)
+        level = 0.8 if level is None else level
+        ref = self.d.get("reference")
+        if ref is not None:
+            found = [u for u in units if u.label == ref]
+            if not found:
+                raise MatchError(f"unknown unit {shown(ref)!r}", field="reference", subject="reference")
+            return PushPullSlot(stage, found[0], level)
+        first = PushPullSlot(stage, units[0], level)
+        ia = unit_figures(units, first, extrapolate=True).values["ia"]
+        ok = [k for k in range(len(units)) if ia[k] == ia[k]]
+        if not ok:
+            raise MatchError("no unit conducts in this push-pull stage", field="push_pull", subject="push_pull")
+        ok.sort(key=lambda k: ia[k])
+        return PushPullSlot(stage, units[ok[len(ok) // 2]], level)
+
+    def criterion(self, push_pull: bool = False) -> Criterion:
+        figures = self.d.get("figures", ("ia", "h2") if push_pull else ("ia", "gm"))
         if isinstance(figures, str):
             figures = [x.strip() for x in figures.split(",") if x.strip()]
         if not isinstance(figures, (list, tuple)):

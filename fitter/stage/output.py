@@ -1,0 +1,892 @@
+"""Output stages: a single-ended and a push-pull power stage driving a loudspeaker
+through an output transformer (or a choke and a reflected load).
+
+The stage descriptions are plain frozen dataclasses with named numeric fields (SI units),
+like :mod:`fitter.stage.circuits`, so that a generic sweep can vary any field.
+
+Method (quasi-static, mid-band, like :mod:`fitter.stage.distortion`):
+
+* The transformer is ideal (no leakage, no loss but the primary's DC resistance, whose
+  magnetising inductance is large): at DC it is a short through ``r_primary``; in the
+  signal band its magnetising current holds the idle current (an inductor is a current
+  battery, as the bypass capacitors are voltage batteries), and the load current
+  ``I - I0`` flows into the reflected load.  So the plate sees ``r_primary`` on the DC
+  load line and ``r_primary + load`` on the AC load line through the operating point;
+  only the reflected load takes power.
+* Single-ended: plate = B+ + RL I0 - (Rdc + RL) I; with a bypassed cathode resistor the
+  cathode holds Rk I0, unbypassed it follows Rk I.  One call of the tube kernel
+  (:func:`fitter.stage.solver._solve_tube`) per waveform.
+* Push-pull: a centre-tapped ideal transformer.  With ``v`` the voltage across each half
+  primary (plate A = B+ - r IA - v, plate B = B+ - r IB + v, r = r_primary / 2), the
+  ampere-turn balance gives v = (Raa / 4) (IA - IB - (IA0 - IB0)); the full primary carries
+  2 v into the plate-to-plate load Raa.  ``v`` is found by a bracketed Newton iteration
+  whose residual has slope >= 1 (:func:`fitter.stage.solver._solve_outer`), each tube by the
+  kernel.  A shared cathode resistor adds the cathode voltage as an outer unknown (DC, and
+  the signal when it is not bypassed).
+* Harmonics from one period (:func:`fitter.stage.distortion.harmonic_amplitudes`) of the
+  voltage across the reflected load; output power = H1^2 / (2 RL).
+
+Figures (:func:`solve_output`): plate dissipation at idle and at full output against the
+limit, the largest output before grid current (or cut-off, single-ended), the output at a
+chosen THD, H2, H3 and THD against output power (30 levels), the grid drive for both, the
+output impedance at the secondary ((rp + Rdc) / n^2, rp + (mu + 1) Rk unbypassed; push-pull
+the two halves in parallel on the half winding) and the
+damping factor, the primary's DC current (single-ended), the DC imbalance current and the
+class-A limit with the crossover dip of the composite transconductance (push-pull).
+:func:`load_sweep` gives power and distortion against the reflected load.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, replace
+
+import numpy as np
+
+from .. import CAUTION
+from ..triode import FittedTriode
+from .circuits import StageInputError, _check_number, _check_positive
+from .distortion import DB_FLOOR, N_HARMONICS, _fmt_db, harmonic_amplitudes
+from .solver import StageSolveError, _Bank, _solve_outer, _solve_tube
+
+__all__ = ["SingleEndedOutput", "PushPullOutput", "OutputResult", "PowerSweep", "LoadSweep",
+           "solve_output", "load_sweep", "drive_limits", "waveforms", "idle", "composite_characteristic"]
+
+#: A tube carrying less than this fraction of its idle current is cut off (the end of the
+#: single-ended swing, the end of class A in push-pull); common practice for "cut-off".
+CUTOFF_FRACTION = 0.01
+#: Samples per period for harmonics (H2..H10 need more than 20; 128 resolves them to far
+#: below 0.01 dB for these smooth waveforms: a test compares with 1024).
+N_SAMPLES = 128
+#: Levels of the power sweep.
+N_LEVELS = 30
+
+
+def _check_bool(obj, name):
+    if not isinstance(getattr(obj, name), bool):
+        raise StageInputError(f"must be true or false, got {getattr(obj, name)!r}", field=name,
+                              owner=type(obj).__name__)
+
+
+#: plausible magnitudes of the fields (field, low, high, unit): far outside them a value is a
+#: typo or a missing prefix, and the arithmetic would overflow or divide by zero
+_RANGES = (("b_plus", 1e-3, 1e5, "V"), ("load", 1.0, 1e8, "ohm"), ("turns_ratio", 1e-3, 1e4, ""),
+           ("speaker", 1e-2, 1e6, "ohm"), ("r_primary", 0.0, 1e7, "ohm"), ("grid_bias", 0.0, 1e5, "V"),
+           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"))
+
+
+@dataclass(frozen=True, kw_only=True)
+class _OutputCommon:
+    """Fields shared by both output stages.
+
+    Parameters
+    ----------
+    b_plus : float
+        Supply at the primary's centre tap or top [V].
+    load : float or None
+        Reflected load [ohm]: single-ended the primary load, push-pull plate to plate.
+        Give it, or ``turns_ratio``.
+    turns_ratio : float or None
+        Primary : secondary turns ratio n (push-pull: the whole primary); the reflected
+        load is then n^2 * ``speaker``.
+    speaker : float
+        Loudspeaker (secondary) impedance [ohm], for the damping factor, the secondary
+        voltage and (with ``turns_ratio``) the reflected load.
+    r_primary : float
+        DC resistance of the primary [ohm] (push-pull: plate to plate, half per side).
+    grid_bias : float or None
+        Fixed bias: the grid's DC voltage [V] (negative).  Give it, or ``rk``.
+    rk : float or None
+        Cathode resistor [ohm] (push-pull: shared by both cathodes).
+    bypassed : bool
+        The cathode resistor is bypassed (its voltage holds the DC value in the signal band).
+    pa_max : float or None
+        Plate dissipation limit of each tube [W]; None: not checked.
+    grid_onset : float
+        Grid-cathode voltage where grid current starts [V] (0 V: common practice; real
+        directly heated tubes begin slightly below).
+    """
+
+    b_plus: float
+    load: float | None = None
+    turns_ratio: float | None = None
+    speaker: float = 8.0
+    r_primary: float = 0.0
+    grid_bias: float | None = None
+    rk: float | None = None
+    bypassed: bool = True
+    pa_max: float | None = None
+    grid_onset: float = 0.0
+
+    def __post_init__(self):
+        owner = type(self).__name__
+        _check_positive(self, "b_plus")
+        _check_positive(self, "load", optional=True)
+        _check_positive(self, "turns_ratio", optional=True)
+        _check_positive(self, "speaker")
+        _check_positive(self, "r_primary", allow_zero=True)
+        _check_number(self, "grid_bias", optional=True)
+        _check_positive(self, "rk", optional=True)
+        _check_positive(self, "pa_max", optional=True)
+        _check_number(self, "grid_onset")
+        _check_bool(self, "bypassed")
+        for name, lo, hi, unit in _RANGES:
+            v = getattr(self, name)
+            if v is not None and not (lo <= abs(v) <= hi) and not (v == 0 and lo == 0):
+                raise StageInputError(f"{v!r} is not a plausible value here ({lo:g} to {hi:g} {unit} "
+                                      f"in magnitude)", field=name, owner=owner)
+        if (self.load is None) == (self.turns_ratio is None):
+            raise StageInputError("give the reflected load or the turns ratio (one of them)",
+                                  field="load", owner=owner, label="load/turns_ratio")
+        if (self.grid_bias is None) == (self.rk is None):
+            raise StageInputError("give a fixed grid bias or a cathode resistor (one of them)",
+                                  field="grid_bias", owner=owner, label="grid_bias/rk")
+        if not (1.0 <= self.reflected_load <= 1e8):
+            raise StageInputError(f"the reflected load {self.reflected_load:.4g} ohm is not a plausible "
+                                  f"transformer load (1 ohm to 100 Mohm)", field="load" if self.load is not None
+                                  else "turns_ratio", owner=owner)
+        if self.grid_bias is not None and self.grid_bias > self.grid_onset:
+            raise StageInputError(f"a fixed bias above the grid-current onset ({self.grid_onset:g} V) "
+                                  f"draws grid current at idle, got {self.grid_bias!r}",
+                                  field="grid_bias", owner=owner)
+
+    @property
+    def reflected_load(self) -> float:
+        """The reflected load [ohm] (plate to plate for push-pull)."""
+        return self.load if self.load is not None else self.turns_ratio ** 2 * self.speaker
+
+    @property
+    def ratio(self) -> float:
+        """Primary : secondary turns ratio."""
+        return self.turns_ratio if self.turns_ratio is not None else math.sqrt(self.load / self.speaker)
+
+    @property
+    def _rk(self) -> float:
+        return 0.0 if self.rk is None else float(self.rk)
+
+    @property
+    def _vg(self) -> float:
+        return 0.0 if self.grid_bias is None else float(self.grid_bias)
+
+
+@dataclass(frozen=True, kw_only=True)
+class SingleEndedOutput(_OutputCommon):
+    """A single-ended output stage: one power triode, its plate load a transformer's primary
+    (or a choke feeding the load through a capacitor: the same circuit), see
+    :class:`_OutputCommon` for the fields."""
+
+    kind = "single-ended"
+    positions = ("tube",)
+
+
+@dataclass(frozen=True, kw_only=True)
+class PushPullOutput(_OutputCommon):
+    """A push-pull output stage: two power triodes (A and B), grids driven in antiphase, a
+    centre-tapped primary (``load`` plate to plate), fixed bias or one shared cathode
+    resistor; class A or AB as the bias makes it.  See :class:`_OutputCommon`."""
+
+    kind = "push-pull"
+    positions = ("A", "B")
+
+
+# ---------------------------------------------------------------------------
+# Equations
+# ---------------------------------------------------------------------------
+
+
+def _banks(stage, triodes):
+    n = len(stage.positions)
+    if len(triodes) != n:
+        raise StageInputError(f"a {stage.kind} stage takes {n} tube(s), got {len(triodes)}", field="tubes")
+    for t in triodes:
+        if not isinstance(t, FittedTriode):
+            raise StageInputError(f"expected a fitted tube, got {type(t).__name__}", field="tubes")
+    return [_Bank.of([t]) for t in triodes]
+
+
+def _pp_tubes(banks, b_plus, r, v, vk, vga, vgb, xa=None, xb=None):
+    """Both tubes of the push-pull at half-primary voltage v and cathode voltage vk."""
+    ia, gaa, gga, da = _solve_tube(banks[0], b_plus - v - vk, r, vga - vk, 0.0, xa)
+    ib, gab, ggb, db = _solve_tube(banks[1], b_plus + v - vk, r, vgb - vk, 0.0, xb)
+    return ia, ib, (gaa, gga, da), (gab, ggb, db)
+
+
+_JOINT_MAXIT = 40
+
+
+def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
+    """Joint Newton iteration on (IA, IB, v, vk) for every sample at once; the tube
+    equations are eliminated per sample, leaving a 2 x 2 (or 1 x 1) system in (v, vk).
+    Returns None when any sample has not converged (the bracketed solve then takes over)."""
+    B = stage.b_plus
+    r = stage.r_primary / 2.0
+    q = stage.reflected_load / 4.0
+    rk = stage._rk
+    shape = np.broadcast(np.asarray(vga), np.asarray(vgb)).shape
+    solve_v = d0 is not None
+    solve_k = vk is None
+    if x0 is None:
+        ia = np.zeros(shape)
+        ib = np.zeros(shape)
+        v = np.zeros(shape)
+        k = np.zeros(shape)
+    else:
+        ia, ib, v, k = (np.array(np.broadcast_to(x, shape), float) for x in x0)
+    if not solve_k:
+        k = np.array(np.broadcast_to(np.asarray(vk, float), shape))
+    tol = 1e-11 * B
+    for _ in range(_JOINT_MAXIT):
+        fa, gaa, gga = banks[0].current_and_gradient(B - r * ia - v - k, vga - k)
+        fb, gab, ggb = banks[1].current_and_gradient(B - r * ib + v - k, vgb - k)
+        R1 = ia - fa
+        R2 = ib - fb
+        ca = 1.0 + r * gaa
+        cb = 1.0 + r * gab
+        sa = gaa + gga
+        sb = gab + ggb
+        # dIA = (-R1 - gaa dv - sa dk) / ca ; dIB = (-R2 + gab dv - sb dk) / cb
+        if solve_v:
+            R3 = v - q * (ia - ib - d0)
+            # R3 + dv - q (dIA - dIB) = 0
+            a11 = 1.0 + q * (gaa / ca + gab / cb)
+            a12 = q * (sa / ca - sb / cb)
+            b1 = -R3 + q * (-R1 / ca + R2 / cb)
+        if solve_k:
+            R4 = k - rk * (ia + ib)
+            # R4 + dk - rk (dIA + dIB) = 0
+            a21 = rk * (gaa / ca - gab / cb)
+            a22 = 1.0 + rk * (sa / ca + sb / cb)
+            b2 = -R4 + rk * (-R1 / ca - R2 / cb)
+        if solve_v and solve_k:
+            det = a11 * a22 - a12 * a21
+            dv = (b1 * a22 - a12 * b2) / det
+            dk = (a11 * b2 - a21 * b1) / det
+        elif solve_v:
+            dv, dk = b1 / a11, 0.0
+        elif solve_k:
+            dv, dk = 0.0, b2 / a22
+        else:
+            dv = dk = 0.0
+        dia = (-R1 - gaa * dv - sa * dk) / ca
+        dib = (-R2 + gab * dv - sb * dk) / cb
+        ia = ia + dia
+        ib = ib + dib
+        v = v + dv
+        k = k + dk
+        if not np.all(np.isfinite(ia) & np.isfinite(ib)):
+            return None
+        if (np.max(np.abs(dv), initial=0.0) <= tol and np.max(np.abs(dk), initial=0.0) <= tol
+                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
+            return v, ia, ib, k
+    return None
+
+
+def _pp_solve(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
+    """Push-pull solve: the joint Newton iteration, else the bracketed one."""
+    got = _pp_joint(stage, banks, vga, vgb, vk, d0, x0)
+    if got is not None:
+        return got
+    return _pp_bracketed(stage, banks, vga, vgb, vk, d0)
+
+
+def _pp_bracketed(stage, banks, vga, vgb, vk=None, d0=None):
+    """Push-pull currents for grid voltages (arrays).  ``vk`` None: the shared cathode
+    resistor sets the cathode voltage; ``d0`` None: DC (no transformer voltage)."""
+    B = stage.b_plus
+    r = stage.r_primary / 2.0
+    q = stage.reflected_load / 4.0
+    shape = np.broadcast(np.asarray(vga), np.asarray(vgb)).shape
+
+    def with_v(vk_):
+        if d0 is None:
+            ia, ib, ga, gb = _pp_tubes(banks, B, r, 0.0, vk_, vga, vgb)
+            return np.zeros(shape), ia, ib, ga, gb
+
+        def fun(v):
+            ia, ib, ga, gb = _pp_tubes(banks, B, r, v, vk_, vga, vgb)
+            F = v - q * (ia - ib - d0)
+            dF = 1.0 + q * (ga[0] / ga[2] + gb[0] / gb[2])
+            return F, dF, (ia, ib, ga, gb)
+
+        v, (ia, ib, ga, gb) = _solve_outer(fun, np.zeros(shape), np.full(shape, -2.0 * B),
+                                           np.full(shape, 2.0 * B), 1e-10 * B)
+        return v, ia, ib, ga, gb
+
+    if vk is not None:
+        v, ia, ib, _, _ = with_v(vk)
+        return v, ia, ib, np.broadcast_to(np.asarray(vk, float), shape)
+    rk = stage._rk
+
+    def fun_k(vk_):
+        v, ia, ib, ga, gb = with_v(vk_)
+        F = vk_ - rk * (ia + ib)
+        dF = 1.0 + rk * ((ga[0] + ga[1]) / ga[2] + (gb[0] + gb[1]) / gb[2])
+        return F, dF, (v, ia, ib)
+
+    vk_, (v, ia, ib) = _solve_outer(fun_k, np.zeros(shape), np.zeros(shape), np.full(shape, 2.0 * B),
+                                    1e-10 * B)
+    return v, ia, ib, vk_
+
+
+def idle(stage, *triodes) -> dict:
+    """The DC operating point: per tube ``<pos>.va``, ``.vgk``, ``.ia``, ``.pa``; ``vk``."""
+    banks = _banks(stage, triodes)
+    return _idle(stage, banks)
+
+
+def _idle(stage, banks) -> dict:
+    rk, vg = stage._rk, stage._vg
+    if isinstance(stage, SingleEndedOutput):
+        i, *_ = _solve_tube(banks[0], stage.b_plus, stage.r_primary + rk, vg, rk)
+        i = float(i)
+        va = stage.b_plus - (stage.r_primary + rk) * i
+        op = {"vk": rk * i, "tube.va": va, "tube.vgk": vg - rk * i, "tube.ia": i, "tube.pa": va * i}
+    else:
+        if stage.rk is None:
+            _, ia, ib, vk = _pp_solve(stage, banks, vg, vg, vk=0.0)
+        else:
+            _, ia, ib, vk = _pp_solve(stage, banks, vg, vg)
+        vk = float(vk)
+        op = {"vk": vk}
+        for p, i in (("A", float(ia)), ("B", float(ib))):
+            va = stage.b_plus - stage.r_primary / 2.0 * i - vk
+            op.update({f"{p}.va": va, f"{p}.vgk": vg - vk, f"{p}.ia": i, f"{p}.pa": va * i})
+    if min(op[f"{p}.ia"] for p in stage.positions) <= 1e-7:
+        who = ", ".join(p for p in stage.positions if op[f"{p}.ia"] <= 1e-7)
+        raise StageSolveError(f"tube {who} is cut off at idle (no plate current): raise the bias "
+                              f"voltage or lower the cathode resistor")
+    return op
+
+
+def _waveforms(stage, banks, op, vin) -> dict:
+    """Quasi-static response to the grid signal ``vin`` (any shape; push-pull: +vin on grid A,
+    -vin on grid B).  Returns arrays: ``v_load`` (voltage across the reflected load [V],
+    positive when the plate (A) swings down), per tube ``.ia``, ``.va``, ``.vgk``."""
+    vin = np.asarray(vin, float)
+    rk, vg, RL = stage._rk, stage._vg, stage.reflected_load
+    if isinstance(stage, SingleEndedOutput):
+        i0 = op["tube.ia"]
+        vk0 = op["vk"]
+        if stage.bypassed or rk == 0.0:
+            a0, a1, b0, b1 = stage.b_plus + RL * i0 - vk0, stage.r_primary + RL, vg + vin - vk0, 0.0
+        else:
+            a0, a1, b0, b1 = stage.b_plus + RL * i0, stage.r_primary + RL + rk, vg + vin, rk
+        # start from the linear response (a few iterations fewer than from the idle current)
+        ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
+        x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
+        i, *_ = _solve_tube(banks[0], a0, a1, b0, b1, x0=x0)
+        vk = vk0 if (stage.bypassed or rk == 0.0) else rk * i
+        plate = stage.b_plus + RL * i0 - (stage.r_primary + RL) * i
+        return {"v_load": RL * (i - i0), "tube.ia": i, "tube.va": plate - vk, "tube.vgk": vg + vin - vk}
+    d0 = op["A.ia"] - op["B.ia"]
+    hold = stage.rk is None or stage.bypassed
+    x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
+    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=op["vk"] if hold else None, d0=d0, x0=x0)
+    r = stage.r_primary / 2.0
+    return {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
+            "A.va": stage.b_plus - r * ia - v - vk, "B.va": stage.b_plus - r * ib + v - vk,
+            "A.vgk": vg + vin - vk, "B.vgk": vg - vin - vk}
+
+
+def waveforms(stage, *triodes, vin) -> dict:
+    """Public form of the quasi-static response (solves the operating point first)."""
+    banks = _banks(stage, triodes)
+    return _waveforms(stage, banks, _idle(stage, banks), vin)
+
+
+def composite_characteristic(stage, *triodes, drives, v):
+    """The push-pull composite characteristic: for each grid drive e (grid A at bias + e,
+    grid B at bias - e) and each half-primary voltage v (plate A at B+ - v - r IA, plate B at
+    B+ + v - r IB, cathode at its idle voltage), the composite current IA - IB [A], shape
+    (len(drives), len(v)).  The load line is v = (Raa / 4)(IA - IB - imbalance): where it
+    crosses a curve is the stage's state at that drive (common practice: the composite
+    characteristic of a push-pull pair)."""
+    if not isinstance(stage, PushPullOutput):
+        raise StageInputError("the composite characteristic is a push-pull's", field="stage")
+    banks = _banks(stage, triodes)
+    op = _idle(stage, banks)
+    e = np.asarray(drives, float)[:, None]
+    vv = np.asarray(v, float)[None, :]
+    r = stage.r_primary / 2.0
+    vk = op["vk"]
+    ia, *_ = _solve_tube(banks[0], stage.b_plus - vv - vk, r, stage._vg + e - vk, 0.0)
+    ib, *_ = _solve_tube(banks[1], stage.b_plus + vv - vk, r, stage._vg - e - vk, 0.0)
+    return ia - ib
+
+
+# ---------------------------------------------------------------------------
+# Drive limits
+# ---------------------------------------------------------------------------
+
+
+def _margins(stage, banks, op, amps):
+    """(grid margin, cut-off margin) at each amplitude: positive while inside.  The extremes
+    of a quasi-static swing are at the sine's peaks (the transfer is monotone)."""
+    amps = np.asarray(amps, float)
+    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1))
+    grid = np.min([stage.grid_onset - np.max(w[f"{p}.vgk"], axis=-1) for p in stage.positions], axis=0)
+    cut = np.min([np.min(w[f"{p}.ia"], axis=-1) - CUTOFF_FRACTION * op[f"{p}.ia"] for p in stage.positions],
+                 axis=0)
+    return grid, cut
+
+
+def _first_crossing(fun, hi, lo=0.0, n=64, passes=2):
+    """Smallest a in (lo, hi] where fun(a) <= 0 (fun > 0 at lo): a scan of ``n`` points, an
+    ``n``-section of the bracket (each pass one vectorised call), then linear interpolation
+    of fun inside the last bracket (1/n^2 of the range: fun is smooth there, so the root is
+    found to far below 1e-6 of the range); None when fun stays positive up to hi."""
+    a = np.linspace(lo, hi, n + 1)
+    m = np.empty_like(a)
+    m[0] = np.inf
+    m[1:] = fun(a[1:])
+    for p in range(passes):
+        bad = np.nonzero(m <= 0)[0]
+        if bad.size == 0:
+            return None
+        k = bad[0]
+        a_lo, a_up, m_lo, m_up = a[k - 1], a[k], m[k - 1], m[k]
+        if p == passes - 1:
+            break
+        a = np.linspace(a_lo, a_up, n + 1)
+        m = np.empty_like(a)
+        m[0], m[-1] = m_lo, m_up
+        m[1:-1] = fun(a[1:-1])
+    if not np.isfinite(m_lo):
+        return float(a_lo)
+    return float(a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up))
+
+
+def drive_limits(stage, *triodes) -> dict:
+    """Peak grid drive [V] (per grid) where grid current begins (``grid``) and where a tube
+    cuts off (``cutoff``; push-pull: the end of class A), None where not reached."""
+    banks = _banks(stage, triodes)
+    return _drive_limits(stage, banks, _idle(stage, banks))
+
+
+def _drive_limits(stage, banks, op):
+    vgk0 = max(op[f"{p}.vgk"] for p in stage.positions)
+    head = stage.grid_onset - vgk0
+    fixed_cathode = stage.rk is None or stage.bypassed
+    if fixed_cathode:
+        # the cathode holds its DC voltage: the grid reaches the onset when the drive
+        # equals the headroom, exactly
+        grid = head
+    else:
+        # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
+        # push-pull's cathode moves only with the rectified sum of the currents
+        hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
+        memo = {}
+
+        def both(a):  # the two searches share their first scan (the same amplitudes)
+            key = a.tobytes()
+            if key not in memo:
+                memo[key] = _margins(stage, banks, op, a)
+            return memo[key]
+
+        grid = _first_crossing(lambda a: both(a)[0], hi)
+        cut = _first_crossing(lambda a: both(a)[1], hi)
+        if cut is not None and grid is not None and cut >= grid:
+            cut = None
+        return {"grid": grid, "cutoff": cut}
+    cut = _first_crossing(lambda a: _margins(stage, banks, op, a)[1], grid)
+    return {"grid": grid, "cutoff": cut}
+
+
+# ---------------------------------------------------------------------------
+# Results
+# ---------------------------------------------------------------------------
+
+
+def _db(x):
+    with np.errstate(divide="ignore"):
+        return 20.0 * np.log10(np.maximum(np.asarray(x, float), 1e-300))
+
+
+@dataclass
+class PowerSweep:
+    """H2, H3 and THD against output power: ``vin`` peak grid drive per grid [V], ``power``
+    [W], ``h2``, ``h3`` [dB re H1], ``thd`` (fraction), ``h`` the amplitudes H1..H10 [V]."""
+
+    vin: np.ndarray
+    power: np.ndarray
+    h2: np.ndarray
+    h3: np.ndarray
+    thd: np.ndarray
+    h: np.ndarray
+
+    def to_dict(self) -> dict:
+        """Lists by level; a harmonic under the numerical floor (-140 dB) is None."""
+        def db(a):
+            return [float(x) if x >= DB_FLOOR else None for x in a]
+        return {"vin_peak_v": self.vin.tolist(), "power_w": self.power.tolist(),
+                "h2_db": db(self.h2), "h3_db": db(self.h3), "thd_pct": (100.0 * self.thd).tolist()}
+
+
+def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES):
+    amps = np.atleast_1d(np.asarray(amps, float))
+    theta = 2 * np.pi * np.arange(n_samples) / n_samples
+    vin = amps[:, None] * np.sin(theta)[None, :]
+    w = _waveforms(stage, banks, op, vin)
+    h = harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
+    return w, h
+
+
+def _sweep_from(stage, amps, h):
+    h1 = h[:, 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        thd = np.sqrt(np.sum(h[:, 1:] ** 2, axis=1)) / h1
+        h2 = _db(h[:, 1] / h1)
+        h3 = _db(h[:, 2] / h1)
+    power = h1 ** 2 / (2.0 * stage.reflected_load)
+    return PowerSweep(np.asarray(amps, float), power, h2, h3, thd, h)
+
+
+def _level_at_thd(stage, banks, op, sweep, target):
+    """Drive where THD first reaches ``target`` (interpolated in the sweep, then refined by
+    bisection); None when it stays below up to the sweep's end."""
+    over = np.nonzero(sweep.thd >= target)[0]
+    if over.size == 0:
+        return None
+    k = over[0]
+    if k == 0:
+        lo, up = 0.0, sweep.vin[0]
+        tlo = 0.0
+    else:
+        lo, up = sweep.vin[k - 1], sweep.vin[k]
+        tlo = sweep.thd[k - 1]
+    tup = sweep.thd[k]
+    # THD grows smoothly with the drive: interpolate between the bracketing levels, then
+    # one secant step from a solve at the estimate
+    x = lo + (up - lo) * (target - tlo) / (tup - tlo)
+    _, h = _spectra(stage, banks, op, [x])
+    tx = _sweep_from(stage, [x], h).thd[0]
+    if tx < target:
+        lo, tlo = x, tx
+    else:
+        up, tup = x, tx
+    return float(lo + (up - lo) * (target - tlo) / (tup - tlo))
+
+
+#: what the figures assume (reports and JSON state it)
+ASSUMPTIONS = ("quasi-static mid-band (the transformer is ideal, its magnetising current holds the idle "
+               "current; bypass capacitors hold their charge, so a bypassed cathode resistor's bias shift "
+               "in class AB is not modelled); no grid current")
+
+
+@dataclass
+class OutputResult:
+    """Every figure of an output stage (SI units; ``to_dict`` gives W, mA, dB, %)."""
+
+    stage: object
+    tubes: list[str]
+    op: dict
+    figures: dict
+    sweep: PowerSweep
+    warnings: list[str] = field(default_factory=list)
+    fitted: tuple = ()  # the FittedTriode objects (for plots), not in to_dict
+
+    def to_dict(self) -> dict:
+        f = self.figures
+        st = self.stage
+        fields = {k: v for k, v in asdict(st).items()}
+        tubes = {}
+        for p, label in zip(st.positions, self.tubes):
+            tubes[p] = {"tube": label, "va_v": self.op[f"{p}.va"], "vgk_v": self.op[f"{p}.vgk"],
+                        "ia_ma": 1e3 * self.op[f"{p}.ia"], "pa_idle_w": self.op[f"{p}.pa"],
+                        "pa_full_w": f["pa_full"][p], "ia_full_ma": 1e3 * f["ia_full"][p]}
+
+        def opt(x, scale=1.0):
+            return None if x is None else scale * x
+
+        out = {
+            "kind": st.kind, "stage": fields, "reflected_load_ohm": st.reflected_load,
+            "turns_ratio": st.ratio, "tubes": tubes, "cathode_v": self.op["vk"],
+            "pa_max_w": st.pa_max,
+            "max_output": {"power_w": f["p_max"], "vin_peak_v": f["vin_max"], "limit": f["limit"],
+                           "thd_pct": 100 * f["thd_max"], "secondary_v_rms": f["vsec_max"]},
+            "at_thd": {"thd_pct": 100 * f["thd_target"], "power_w": f["p_thd"],
+                       "vin_peak_v": f["vin_thd"]},
+            "output_impedance_ohm": f["z_out"], "damping_factor": f["damping"],
+            "sweep": self.sweep.to_dict(), "warnings": list(self.warnings),
+            "assumptions": ASSUMPTIONS, "caution": CAUTION,
+        }
+        if "errors" in f:
+            e = f["errors"]
+
+            def num(x, k=1.0):
+                return None if not math.isfinite(x) else k * x
+
+            out["errors"] = {"ia_ma": {p: num(e[f"ia_{'A' if p == 'tube' else p}"], 1e3) for p in st.positions},
+                             "power_max_w": num(e["p_max"]), "thd_max_pct": num(e["thd_max"], 100.0),
+                             "power_at_thd_w": num(e["p_thd"]), "output_impedance_ohm": num(e["z_out"])}
+        if st.kind == "single-ended":
+            out["primary_dc_ma"] = 1e3 * self.op["tube.ia"]
+            out["cutoff_vin_peak_v"] = f["vin_cut"]
+        else:
+            out["imbalance_ma"] = 1e3 * f["imbalance"]
+            out["class_a"] = {"vin_peak_v": f["vin_cut"], "power_w": f["p_class_a"],
+                              "class": f["class"], "crossover_gm_ratio": f["gm_dip"]}
+        return out
+
+    def report(self) -> str:
+        st = self.stage
+        f = self.figures
+        L = []
+        L.append(f"{st.kind.capitalize()} output stage: B+ {st.b_plus:g} V, reflected load "
+                 f"{st.reflected_load:.4g} ohm{' plate to plate' if st.kind == 'push-pull' else ''} "
+                 f"(n {st.ratio:.3g}:1 into {st.speaker:g} ohm), primary {st.r_primary:g} ohm DC, "
+                 + (f"fixed bias {st.grid_bias:g} V" if st.grid_bias is not None else
+                    f"cathode resistor {st.rk:g} ohm {'bypassed' if st.bypassed else 'unbypassed'}"))
+        for p, label in zip(st.positions, self.tubes):
+            pa = self.op[f"{p}.pa"]
+            lim = "" if st.pa_max is None else f" of {st.pa_max:g} W ({100 * pa / st.pa_max:.0f} %)"
+            L.append(f"  {'tube' if p == 'tube' else 'tube ' + p} {label}: Va {self.op[f'{p}.va']:.1f} V, "
+                     f"Vgk {self.op[f'{p}.vgk']:.2f} V, Ia {1e3 * self.op[f'{p}.ia']:.2f} mA, "
+                     f"dissipation {pa:.2f} W{lim} idle; at full output {f['pa_full'][p]:.2f} W, "
+                     f"mean Ia {1e3 * f['ia_full'][p]:.1f} mA")
+        if st.kind == "single-ended":
+            L.append(f"  DC current in the primary: {1e3 * self.op['tube.ia']:.1f} mA")
+        else:
+            L.append(f"  DC imbalance in the primary: {1e3 * f['imbalance']:+.2f} mA (A - B)")
+        L.append(f"  largest output before {f['limit']}: {f['p_max']:.3g} W "
+                 f"({f['vsec_max']:.3g} V rms at the secondary), THD {100 * f['thd_max']:.2f} %, "
+                 f"grid drive {f['vin_max']:.3g} V peak{' per grid' if st.kind == 'push-pull' else ''}")
+        if f["p_thd"] is None:
+            L.append(f"  THD stays below {100 * f['thd_target']:g} % up to that limit")
+        else:
+            L.append(f"  output at {100 * f['thd_target']:g} % THD: {f['p_thd']:.3g} W, grid drive "
+                     f"{f['vin_thd']:.3g} V peak")
+        if st.kind == "push-pull":
+            if f["class"] == "A":
+                L.append("  class A over the whole swing (neither tube cuts off)")
+            else:
+                L.append(f"  class AB: class A up to {f['p_class_a']:.3g} W (grid drive {f['vin_cut']:.3g} V)")
+            L.append(f"  crossover: the composite transconductance at idle is {100 * f['gm_dip']:.0f} % of its "
+                     f"largest over the swing")
+        L.append(f"  output impedance at the secondary {f['z_out']:.3g} ohm, damping factor {f['damping']:.3g}")
+        if "errors" in f:
+            e = f["errors"]
+
+            def pm(x, fmt, k=1.0):
+                return "unknown (no covariance on the card)" if not math.isfinite(x) else f"+-{format(k * x, fmt)}"
+
+            L.append(f"  error bars (one sigma, from the fits' covariance): largest output {pm(e['p_max'], '.2g')} W, "
+                     f"THD there {pm(e['thd_max'], '.2g', 100)} %, idle current "
+                     + ", ".join(f"{pm(e['ia_A' if p == 'tube' else 'ia_' + p], '.2g', 1e3)} mA" for p in st.positions))
+        L.append("  power [W]   H2 [dB]   H3 [dB]   THD [%]   grid drive [V pk]")
+        idx = np.unique(np.linspace(0, len(self.sweep.power) - 1, 8).round().astype(int))
+        for k in idx:
+            s = self.sweep
+            L.append(f"  {s.power[k]:9.3g} {_fmt_db(s.h2[k], 9)} {_fmt_db(s.h3[k], 9)} "
+                     f"{100 * s.thd[k]:9.3f} {s.vin[k]:12.3g}")
+        L.append("  assumptions: " + ASSUMPTIONS)
+        for w in self.warnings:
+            L.append(f"  warning: {w}")
+        L.append(CAUTION)
+        return "\n".join(L)
+
+
+def _z_out(stage, banks, op):
+    """Output impedance at the secondary [ohm].
+
+    Single-ended: the plate circuit's small-signal source resistance R = rp (rp + (mu+1) Rk
+    with an unbypassed cathode resistor) plus the primary's DC resistance, over n^2.
+    Push-pull: each half is a source R_A = rp_A + Rdc/2, R_B = rp_B + Rdc/2 on its half
+    winding; the ampere-turn balance puts them in parallel on the half-winding voltage, so
+    the whole primary sees 4 R_A R_B / (R_A + R_B) (= 2 rp + Rdc for equal halves), over n^2.
+    A shared unbypassed cathode resistor carries no differential current (equal halves)."""
+    rps = []
+    for b, p in zip(banks, stage.positions):
+        gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
+        gva, gvg = float(gva), float(gvg)
+        rp = 1.0 / gva if gva > 0 else math.inf
+        if stage.rk is not None and not stage.bypassed and stage.kind == "single-ended":
+            rp = rp + (gvg * rp + 1.0) * stage.rk
+        rps.append(rp)
+    if stage.kind == "single-ended":
+        return (rps[0] + stage.r_primary) / stage.ratio ** 2
+    ra, rb = (r + stage.r_primary / 2.0 for r in rps)
+    return 4.0 * ra * rb / (ra + rb) / stage.ratio ** 2
+
+
+def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, errors: bool = False) -> OutputResult:
+    """Solve an output stage: operating point and every figure (see the module docstring).
+
+    Parameters
+    ----------
+    stage : SingleEndedOutput or PushPullOutput
+    *triodes : FittedTriode
+        One tube (single-ended) or two (push-pull, A then B).
+    thd : float
+        THD (fraction) at which the output power is reported (5 %: common practice for
+        single-ended triode ratings).
+    levels : int
+        Levels of the power sweep (up to the largest output).
+    errors : bool
+        Also propagate each tube's fit covariance (central differences, as
+        :func:`fitter.triode.propagate`) to the main figures: ``figures["errors"]``, one-sigma
+        [SI], NaN where a card has no covariance.  One whole solve per perturbed parameter
+        (10-20 solves): off by default.
+    """
+    if isinstance(thd, bool) or not isinstance(thd, (int, float)) or not (0 < thd < 1):
+        raise StageInputError(f"must be a fraction between 0 and 1, got {thd!r}", field="thd")
+    if isinstance(levels, bool) or not isinstance(levels, int) or not (2 <= levels <= 1000):
+        raise StageInputError(f"must be a whole number from 2 to 1000, got {levels!r}", field="levels")
+    banks = _banks(stage, triodes)
+    op = _idle(stage, banks)
+    lim = _drive_limits(stage, banks, op)
+    se = stage.kind == "single-ended"
+    ends = [x for x in ((lim["grid"], "grid current"), (lim["cutoff"] if se else None, "cut-off"))
+            if x[0] is not None]
+    if not ends:
+        raise StageSolveError("no drive limit found (neither grid current nor cut-off) within four "
+                              "times the bias")
+    vin_max, limit = min(ends)
+    if not vin_max > 1e-9 * stage.b_plus:
+        raise StageSolveError("the grid sits at the grid-current onset at idle: there is no drive before "
+                              "grid current (bias the grid below it)")
+    amps = vin_max * np.linspace(1.0 / levels, 1.0, levels)
+    w, h = _spectra(stage, banks, op, amps)
+    sweep = _sweep_from(stage, amps, h)
+    vin_thd = _level_at_thd(stage, banks, op, sweep, thd)
+    if vin_thd is not None:
+        _, h_t = _spectra(stage, banks, op, [vin_thd])
+        p_thd = float(_sweep_from(stage, [vin_thd], h_t).power[0])
+    else:
+        p_thd = None
+    pa_full = {p: float(np.mean(w[f"{p}.va"][-1] * w[f"{p}.ia"][-1])) for p in stage.positions}
+    ia_full = {p: float(np.mean(w[f"{p}.ia"][-1])) for p in stage.positions}
+    p_max = float(sweep.power[-1])
+    figures = {
+        "vin_max": float(vin_max), "limit": limit, "p_max": p_max, "thd_max": float(sweep.thd[-1]),
+        "vsec_max": math.sqrt(p_max * stage.speaker), "thd_target": float(thd),
+        "p_thd": p_thd, "vin_thd": vin_thd, "pa_full": pa_full, "ia_full": ia_full,
+        "vin_cut": lim["cutoff"], "z_out": _z_out(stage, banks, op),
+    }
+    figures["damping"] = stage.speaker / figures["z_out"]
+    if not se:
+        figures["imbalance"] = op["A.ia"] - op["B.ia"]
+        # crossover: the composite transconductance (slope of the load voltage against the
+        # grid drive) at the idle point against its largest over the swing; a cold bias makes
+        # the middle flat (a notch), 1.0 means no dip
+        x = np.linspace(-vin_max, vin_max, 201)
+        g = np.gradient(_waveforms(stage, banks, op, x)["v_load"], x)
+        figures["gm_dip"] = float(g[100] / np.max(g))
+        if lim["cutoff"] is None or lim["cutoff"] >= vin_max:
+            figures.update({"class": "A", "p_class_a": p_max, "vin_cut": None})
+        else:
+            _, hc = _spectra(stage, banks, op, [lim["cutoff"]])
+            figures["p_class_a"] = float(_sweep_from(stage, [lim["cutoff"]], hc).power[0])
+            figures["class"] = "AB"
+    warn = []
+    for p, t in zip(stage.positions, triodes):
+        why = t.outside_reason(np.concatenate([[op[f"{p}.va"]], w[f"{p}.va"][-1]]),
+                               np.concatenate([[op[f"{p}.vgk"]], w[f"{p}.vgk"][-1]]))
+        if why:
+            warn.append(why + " (over the full-output swing)")
+        if stage.pa_max is not None and op[f"{p}.pa"] > stage.pa_max:
+            warn.append(f"{t.label} dissipates {op[f'{p}.pa']:.3g} W at idle, above the "
+                        f"{stage.pa_max:g} W limit")
+        elif stage.pa_max is not None and pa_full[p] > stage.pa_max:
+            warn.append(f"{t.label} dissipates {pa_full[p]:.3g} W at full output, above the "
+                        f"{stage.pa_max:g} W limit")
+    if errors:
+        figures["errors"] = _errors(stage, triodes, thd, levels)
+    return OutputResult(stage, [t.label for t in triodes], op, figures, sweep, warn, tuple(triodes))
+
+
+#: the figures that get error bars (name -> how to read it from a result)
+_ERROR_FIGURES = ("ia_A", "ia_B", "p_max", "thd_max", "p_thd", "z_out")
+
+
+def _main_figures(res: "OutputResult") -> np.ndarray:
+    f = res.figures
+    pos = res.stage.positions
+    ia = [res.op[f"{p}.ia"] for p in pos] + [math.nan] * (2 - len(pos))
+    return np.array(ia + [f["p_max"], f["thd_max"], math.nan if f["p_thd"] is None else f["p_thd"], f["z_out"]])
+
+
+def _errors(stage, triodes, thd, levels) -> dict:
+    from ..triode import error_from_differences, perturbed
+
+    var = np.zeros(len(_ERROR_FIGURES))
+    known = False
+    for i, t in enumerate(triodes):
+        if t.covariance is None or not t.free:
+            var[:] = np.nan
+            continue
+        known = True
+        sets, steps = perturbed(t)
+        rows = []
+        for tt in sets:
+            ts = list(triodes)
+            ts[i] = tt
+            rows.append(_main_figures(solve_output(stage, *ts, thd=thd, levels=levels)))
+        var += error_from_differences(rows, steps, t.covariance) ** 2
+    err = np.sqrt(var) if known else np.full(len(_ERROR_FIGURES), np.nan)
+    return dict(zip(_ERROR_FIGURES, (float(x) for x in err)))
+
+
+# ---------------------------------------------------------------------------
+# Reflected-load sweep (single-ended and push-pull alike)
+# ---------------------------------------------------------------------------
+
+
+@dataclass
+class LoadSweep:
+    """Power and distortion against the reflected load: ``load`` [ohm], ``p_max`` [W] (the
+    largest output), ``thd_max`` at it, ``p_thd`` [W] at the THD target (nan: not reached),
+    ``thd_at`` THD at the fixed ``level`` [W] (nan: beyond the largest output)."""
+
+    load: np.ndarray
+    p_max: np.ndarray
+    thd_max: np.ndarray
+    p_thd: np.ndarray
+    thd_at: np.ndarray
+    level: float
+    thd_target: float
+
+    def to_dict(self) -> dict:
+        def lst(a, s=1.0):
+            return [None if not np.isfinite(x) else s * float(x) for x in a]
+        return {"load_ohm": self.load.tolist(), "power_max_w": lst(self.p_max),
+                "thd_at_max_pct": lst(self.thd_max, 100), "power_at_thd_w": lst(self.p_thd),
+                "thd_target_pct": 100 * self.thd_target, "level_w": self.level,
+                "thd_at_level_pct": lst(self.thd_at, 100)}
+
+    def report(self) -> str:
+        L = [f"reflected load [ohm]  largest output [W]  THD there [%]  at {100 * self.thd_target:g} % THD [W]"
+             f"  THD at {self.level:g} W [%]"]
+        for i in range(len(self.load)):
+            def f(x, fmt):
+                return format(x, fmt) if np.isfinite(x) else "-"
+            L.append(f"{self.load[i]:20.4g} {self.p_max[i]:19.3g} {100 * self.thd_max[i]:14.2f} "
+                     f"{f(self.p_thd[i], '20.3g'):>20} {f(100 * self.thd_at[i], '18.3f'):>18}")
+        L.append(CAUTION)
+        return "\n".join(L)
+
+
+def load_sweep(stage, *triodes, loads, thd: float = 0.05, level: float = 1.0) -> LoadSweep:
+    """Output power and distortion against the reflected load (``loads`` [ohm]); the stage's
+    other fields stay (the turns ratio, if given, is replaced by each load)."""
+    loads = np.asarray(loads, float)
+    if loads.ndim != 1 or loads.size == 0 or not np.all(np.isfinite(loads)) or np.any(loads <= 0):
+        raise StageInputError("must be a list of positive resistances", field="loads")
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not (level > 0 and math.isfinite(level)):
+        raise StageInputError(f"must be a positive power, got {level!r}", field="level")
+    rows = []
+    for RL in loads:
+        try:
+            st = replace(stage, load=float(RL), turns_ratio=None)
+        except StageInputError as e:
+            raise StageInputError(e.message, field="loads") from None
+        res = solve_output(st, *triodes, thd=thd, levels=N_LEVELS)
+        s = res.sweep
+        if level <= s.power[-1]:
+            thd_at = float(np.interp(level, s.power, s.thd))
+        else:
+            thd_at = math.nan
+        p_thd = res.figures["p_thd"]
+        rows.append((res.figures["p_max"], res.figures["thd_max"], math.nan if p_thd is None else p_thd, thd_at))
+    a = np.array(rows)
+    return LoadSweep(loads, a[:, 0], a[:, 1], a[:, 2], a[:, 3], float(level), float(thd))
