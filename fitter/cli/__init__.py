@@ -78,3 +78,4 @@ from . import fitcmd  # noqa: E402,F401
 from . import export  # noqa: E402,F401
 from . import stage  # noqa: E402,F401
 from . import match  # noqa: E402,F401
+from . import stock  # noqa: E402,F401

@@ -401,6 +401,8 @@ def list_tubes(ledger: Ledger, tube_type: str | None = None, grade: str | None =
     q = q.order_by(order.desc() if descending else order, page.c.label, Section.name)
     rows: dict = {}
     with ledger.read() as s:
+        if tube_type is not None:
+            _type(s, tube_type)
         n = s.scalar(total)
         for r in s.execute(q):
             t = rows.get(r.tid)
