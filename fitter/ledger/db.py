@@ -71,7 +71,8 @@ def resolve_url(text: str | None = None) -> URL:
         return URL.create("sqlite", database=str(Path(text).expanduser()))
     try:
         url = make_url(text)
-    except ArgumentError:
+        _ = url.port  # a port that is not a number is found here
+    except (ArgumentError, ValueError, TypeError):
         # the text may hold a password: never echo it
         raise LedgerError("cannot read the database URL; expected sqlite:///PATH or "
                           "postgresql+psycopg://USER@HOST/DBNAME", field="db") from None
@@ -142,10 +143,10 @@ class Ledger:
     def read(self):
         """A session for reading (one snapshot on PostgreSQL; WAL snapshot on SQLite)."""
         with self._sessions() as s:
-            if self.dialect == "sqlite":
-                s.info["read_only"] = True
             try:
                 yield s
+            except SQLAlchemyError as e:
+                raise LedgerError(f"database error on {self.describe()}: {scrub(e, self.url)}") from None
             finally:
                 s.rollback()
 

@@ -187,10 +187,10 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     try:
         read = read_curves([path])
     except CurveReadError as e:
-        raise InputError(str(e), file=shown(path)) from None
+        raise InputError(str(e)) from None  # every issue names its file, line and column
     problems = [i for i in (check_for_model(u, m) for u in read.units) if i]
     if problems:
-        raise InputError(str(CurveReadError(problems)), file=shown(path))
+        raise InputError(str(CurveReadError(problems)))
     if not read.units:
         raise InputError("no units in the file", file=shown(path))
     out.notes = list(read.notes)
@@ -329,8 +329,8 @@ def tube_detail(ledger: Ledger, label: str) -> dict:
         grades = [{"grade": g.grade, "basis": g.basis, "by": g.decided_by, "at": g.decided_at}
                   for g in s.scalars(select(Grade).where(Grade.tube_id == t.id).order_by(Grade.id))]
         groups = [{"group": g.id, "kind": g.kind, "status": g.status, "order": g.order_ref}
-                  for g in s.scalars(select(Group).join(GroupMember, GroupMember.group_id == Group.id)
-                                     .where(GroupMember.tube_id == t.id).distinct().order_by(Group.id))]
+                  for g in s.scalars(select(Group).where(Group.id.in_(
+                      select(GroupMember.group_id).where(GroupMember.tube_id == t.id))).order_by(Group.id))]
         events = [{"at": e.at, "who": e.who, "action": e.action, "detail": e.detail}
                   for e in s.scalars(select(Event).where(Event.tube_id == t.id).order_by(Event.id))]
         return {"label": t.label, "type": tt.designation, "status": t.status, "location": t.location,
@@ -663,11 +663,12 @@ def refit(ledger: Ledger, designation: str, who: str, model: str = "koren", jobs
                          .where(Tube.type_id == tt.id, Measurement.superseded.is_(False))
                          .order_by(Measurement.id)).all()
         test_va, test_vg = tt.test_va, tt.test_vg
-    units, ids = [], []
-    for mm, label, name, src in rows:
-        p = unpack_points(mm.points, mm.n_points)
-        units.append(CurveSet(label, name or None, p["va"], p["vg"], p["ia"], p["ig"], source=src, lines=p["lines"]))
-        ids.append(mm.id)
+        units, ids = [], []
+        for mm, label, name, src in rows:
+            p = unpack_points(mm.points, mm.n_points)
+            units.append(CurveSet(label, name or None, p["va"], p["vg"], p["ia"], p["ig"], source=src,
+                                  lines=p["lines"]))
+            ids.append(mm.id)
     if not units:
         return {"type": designation, "refitted": 0, "failed": [], "engine": engine_version()}
     results = [rs[0] for rs in fit_many(units, [m.name], processes=jobs)]
