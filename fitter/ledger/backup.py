@@ -52,7 +52,7 @@ def dump(ledger: Ledger) -> dict:
     """Every row of every table, ordered by id: ``{table: [dict, ...]}`` (what the tests
     compare before and after an interrupted import, a restore, or a copy)."""
     out = {}
-    with ledger.engine.connect() as c:
+    with ledger.read_engine.connect() as c:
         for name in TABLES:
             t = _table(name)
             out[name] = [dict(r._mapping) for r in c.execute(select(t).order_by(t.c.id))]
@@ -98,7 +98,7 @@ def backup(ledger: Ledger, folder) -> dict:
         raise InputError(str(e), field="folder") from None
     manifest = {"format": BACKUP_FORMAT, "version": BACKUP_VERSION, "schema": HEAD, "platebook": __version__,
                 "tables": {}}
-    with ledger.engine.connect() as c:
+    with ledger.read_engine.connect() as c:
         for name in TABLES:
             t = _table(name)
             cols = [col.name for col in t.columns]

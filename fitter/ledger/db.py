@@ -126,11 +126,13 @@ class Ledger:
         concurrent inserts).
     """
 
-    def __init__(self, url: URL, engine: Engine):
+    def __init__(self, url: URL, engine: Engine, read_engine: Engine | None = None):
         self.url = url
         self.engine = engine
+        self.read_engine = read_engine or engine
         self.retries = 0
         self._sessions = sessionmaker(engine, expire_on_commit=False)
+        self._readers = sessionmaker(self.read_engine, expire_on_commit=False)
 
     @property
     def dialect(self) -> str:
@@ -141,8 +143,9 @@ class Ledger:
 
     @contextmanager
     def read(self):
-        """A session for reading (one snapshot on PostgreSQL; WAL snapshot on SQLite)."""
-        with self._sessions() as s:
+        """A session for reading (on SQLite a deferred transaction: a WAL snapshot that
+        neither waits for nor blocks the writer)."""
+        with self._readers() as s:
             try:
                 yield s
             except SQLAlchemyError as e:
@@ -173,9 +176,11 @@ class Ledger:
 
     def close(self):
         self.engine.dispose()
+        if self.read_engine is not self.engine:
+            self.read_engine.dispose()
 
 
-def _sqlite_hooks(engine: Engine):
+def _sqlite_hooks(engine: Engine, write: bool):
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_conn, _record):
         # let SQLAlchemy's "begin" event issue BEGIN (the sqlite3 module's own implicit
@@ -190,7 +195,7 @@ def _sqlite_hooks(engine: Engine):
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn):
-        conn.exec_driver_sql("BEGIN IMMEDIATE")
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if write else "BEGIN")
 
 
 def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = True) -> Ledger:
@@ -222,11 +227,13 @@ def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = T
                     raise LedgerError(f"cannot create the ledger's folder {path.parent}: {e.strerror or e}",
                                       field="db") from None
             engine = create_engine(url, poolclass=NullPool)
-            _sqlite_hooks(engine)
+            _sqlite_hooks(engine, write=True)
+            reader = create_engine(url, poolclass=NullPool)
+            _sqlite_hooks(reader, write=False)
         else:
             engine = create_engine(url, pool_pre_ping=False, pool_size=2, max_overflow=4,
                                    connect_args={"connect_timeout": 10, "application_name": "platebook"})
-        ledger = Ledger(url, engine)
+        ledger = Ledger(url, engine, reader if url.drivername == "sqlite" else None)
         if upgrade:
             from .schema import upgrade as _upgrade
 
@@ -242,4 +249,4 @@ def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = T
 
 
 def table_names(ledger: Ledger) -> list[str]:
-    return sorted(inspect(ledger.engine).get_table_names())
+    return sorted(inspect(ledger.read_engine).get_table_names())

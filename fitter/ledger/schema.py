@@ -257,7 +257,7 @@ def upgrade(ledger) -> bool:
 
     from .db import LedgerError
 
-    with ledger.engine.connect() as c:
+    with ledger.read_engine.connect() as c:
         rev = current_revision(c)
     if rev == HEAD:
         return False
