@@ -520,27 +520,31 @@ def grade_tube(sections, ia_nom, gm_nom, weak_pct, balance_pct):
 
 
 def stock_units(ledger: Ledger, designation: str, statuses=("in-stock",)):
-    """(type, [FittedTriode]) of the tubes of a type with the given statuses, their
-    sections' current fits, in label order; sections without a converged fit are left out
-    (and listed)."""
+    """(type, [FittedTriode], skipped) of the tubes of a type with the given statuses, from
+    their sections' current fits, in label order; sections whose latest fit failed are
+    left out (and listed in ``skipped``).  One query, plain columns (no ORM objects)."""
+    cols = [getattr(Fit, k) for k in CARD_FIELDS]
     with ledger.read() as s:
         tt = _type(s, designation)
-        q = select(Tube.label, Section.name, Fit) \
-            .join(Section, Section.tube_id == Tube.id)
         lm = select(Measurement.section_id.label("sid"), func.max(Measurement.id).label("mid")) \
             .join(Section, Section.id == Measurement.section_id).join(Tube, Tube.id == Section.tube_id) \
             .where(Measurement.superseded.is_(False), Tube.type_id == tt.id, Tube.status.in_(statuses)) \
             .group_by(Measurement.section_id).subquery()
         lf = select(Fit.measurement_id.label("mid"), func.max(Fit.id).label("fid")) \
             .join(lm, lm.c.mid == Fit.measurement_id).group_by(Fit.measurement_id).subquery()
-        q = q.join(lm, lm.c.sid == Section.id).join(lf, lf.c.mid == lm.c.mid).join(Fit, Fit.id == lf.c.fid) \
+        q = select(Tube.label, Section.name, Fit.id, Fit.model, Fit.converged, *cols) \
+            .join(Section, Section.tube_id == Tube.id) \
+            .join(lm, lm.c.sid == Section.id).join(lf, lf.c.mid == lm.c.mid).join(Fit, Fit.id == lf.c.fid) \
             .order_by(Tube.label, Section.name)
         units, skipped = [], []
-        for label, name, f in s.execute(q):
-            if not f.converged:
+        for row in s.execute(q):
+            label, name = row[0], row[1]
+            if not row.converged:
                 skipped.append({"unit": f"{label}:{name}" if name else label, "reason": "its latest fit failed"})
                 continue
-            units.append(triode_of(f, label, name))
+            d = dict(zip(CARD_FIELDS, row[5:]))
+            d.update(model=row.model, tube=label, section=name or None)
+            units.append(unit_from_fields(d, "ledger", f"fit {row.id}.")[0])
         info = type_dict(tt)
     return info, units, skipped
 
