@@ -18,7 +18,7 @@ from . import fail, main
 
 #: the service's field names, as this front end calls them
 OPTION_OF = {"db": "--db", "user": "--user", "type": "--type", "va": "--va", "vg": "--vg", "group": "--group",
-             "accept": "--accept", "order": "--order", "labels": "LABEL", "files": "FILE", "model": "--model",
+             "accept": "--accept", "group_id": "GROUP", "order": "--order", "labels": "LABEL", "files": "FILE", "model": "--model",
              "sort": "--sort", "status": "--status", "limit": "--limit", "offset": "--offset",
              "weak_pct": "--weak", "balance_pct": "--balance", "position": "--va/--vg", "folder": "FOLDER",
              "target": "TARGET", "nominal_card": "--nominal-card", "pa_max": "--pa-max", "vhk_max": "--vhk-max"}
@@ -180,9 +180,10 @@ def grade_cmd(ctx, tube_type, weak_pct, balance_pct, as_json):
 @click.option("--reserve", "reserve_order", default=None, metavar="ORDER",
               help="Reserve the groups found (or those named by --accept) for this order.")
 @click.option("--accept", default=None, help="With --reserve: the group numbers to reserve, e.g. 1,3.")
+@click.option("--include-weak", is_flag=True, help="Let tubes whose latest grade is weak take part.")
 @_json
 @click.pass_context
-def match_cmd(ctx, tube_type, va, vg, group, tolerance, extrapolate, reserve_order, accept, as_json):
+def match_cmd(ctx, tube_type, va, vg, group, tolerance, extrapolate, reserve_order, accept, include_weak, as_json):
     """Match tubes straight from the ledger; optionally reserve the groups for an order."""
     from ..service import stock as svc
 
@@ -193,7 +194,7 @@ def match_cmd(ctx, tube_type, va, vg, group, tolerance, extrapolate, reserve_ord
         except ValueError:
             fail(f"--accept: cannot read {accept!r}; give group numbers such as 1,3")
     _run(ctx, svc.match, as_json, tube_type=tube_type, va=va, vg=vg, group=group, tolerance_pct=tolerance,
-         extrapolate=extrapolate, reserve_order=reserve_order, accept=picks)
+         extrapolate=extrapolate, reserve_order=reserve_order, accept=picks, include_weak=include_weak)
 
 
 @stock.command("reserve")
@@ -216,7 +217,7 @@ def labels_cmd(ctx, group, as_json):
     """Text labels for the tubes of a reserved or sold GROUP."""
     from ..service import stock as svc
 
-    _run(ctx, svc.labels, as_json, group=group)
+    _run(ctx, svc.labels, as_json, group_id=group)
 
 
 @stock.command("sell")

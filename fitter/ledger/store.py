@@ -546,6 +546,10 @@ def stock_units(ledger: Ledger, designation: str, statuses=("in-stock",)):
             d.update(model=row.model, tube=label, section=name or None)
             units.append(unit_from_fields(d, "ledger", f"fit {row.id}.")[0])
         info = type_dict(tt)
+        lg = select(Grade.tube_id.label("tid"), func.max(Grade.id).label("gid")) \
+            .join(Tube, Tube.id == Grade.tube_id).where(Tube.type_id == tt.id).group_by(Grade.tube_id).subquery()
+        info["grades"] = {label: (g, basis) for label, g, basis in s.execute(
+            select(Tube.label, Grade.grade, Grade.basis).join(lg, lg.c.tid == Tube.id).join(Grade, Grade.id == lg.c.gid))}
     return info, units, skipped
 
 
@@ -636,7 +640,7 @@ def group_labels(ledger: Ledger, group_id: int) -> dict:
     with ledger.read() as s:
         g = s.get(Group, group_id)
         if g is None:
-            raise InputError(f"no group {group_id}", field="group")
+            raise InputError(f"no group {group_id}", field="group_id")
         rows = s.execute(select(Tube.label, Section.name).join(GroupMember, GroupMember.tube_id == Tube.id)
                          .outerjoin(Section, Section.id == GroupMember.section_id)
                          .where(GroupMember.group_id == g.id).order_by(GroupMember.id)).all()

@@ -241,10 +241,15 @@ def grade(db=None, user="", tube_type="", weak_pct=80.0, balance_pct=10.0) -> Re
 # -- matching and reservations ----------------------------------------------------
 
 
+#: latest grades that keep a tube out of matching unless asked (``include_weak``)
+WEAK_GRADES = ("weak", "weak, unbalanced")
+
+
 def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", tolerance_pct=5.0,
-          figures=("ia", "gm"), extrapolate=False, reserve_order=None, accept=None) -> Result:
+          figures=("ia", "gm"), extrapolate=False, reserve_order=None, accept=None, include_weak=False) -> Result:
     """Match the unreserved in-stock tubes of a type at a fixed-bias position (default: the
-    type's test position): section pairs or quads, or whole bottles (dual triodes).  With
+    type's test position): section pairs or quads, or whole bottles (dual triodes).  Tubes
+    whose latest grade is weak stay out (listed) unless ``include_weak``.  With
     ``reserve_order``, reserve the groups numbered in ``accept`` (default all) for it."""
     from ..bottles import match_bottles
     from ..ledger import store
@@ -254,6 +259,11 @@ def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", toler
         raise InputError(f"must be pairs, quads or bottles, got {group!r}", field="group")
     with _ledger(db) as ledger:
         info, units, skipped = store.stock_units(ledger, tube_type)
+        if not include_weak:
+            weak = {t: g for t, g in info["grades"].items() if g[0] in WEAK_GRADES}
+            skipped += [{"unit": u.label, "reason": f"graded {weak[u.tube][0]}: {weak[u.tube][1].split(' (nominal')[0]}"}
+                        for u in units if u.tube in weak]
+            units = [u for u in units if u.tube not in weak]
         if not units:
             raise InputError(f"no in-stock, unreserved tube of type {shown(tube_type)} has a fitted measurement",
                              field="type")
@@ -264,6 +274,7 @@ def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", toler
                 if not info["dual"]:
                     raise InputError(f"type {shown(tube_type)} is a single triode: match pairs", field="group")
                 res = match_bottles(units, position, crit, extrapolate=extrapolate)
+                res.excluded = [{"bottle": x["unit"], "reason": x["reason"]} for x in skipped] + res.excluded
                 groups = [{"members": [tuple(u.split(":", 1)) for side in p.sides for u in side],
                            "mismatch_pct": 100 * p.mismatch, "grade": p.grade, "name": f"B{k}"}
                           for k, p in enumerate(res.pairs, 1)]
@@ -312,14 +323,14 @@ def reserve(db=None, user="", labels=(), order="", kind="set") -> Result:
                                                   + ", ".join(shown(x) for x in m["members"]),))
 
 
-def labels(db=None, group=None) -> Result:
+def labels(db=None, group_id=None) -> Result:
     """Printable text labels for a reserved or sold group: one per tube."""
     from ..ledger import store
 
-    if not isinstance(group, int) or group < 1:
-        raise InputError(f"must be a group number, got {group!r}", field="group")
+    if not isinstance(group_id, int) or group_id < 1:
+        raise InputError(f"must be a group number, got {group_id!r}", field="group_id")
     with _ledger(db) as ledger:
-        g = store.group_labels(ledger, group)
+        g = store.group_labels(ledger, group_id)
         figures = {}
         for m in g["members"]:
             tube = m.split(":", 1)[0]

@@ -143,6 +143,13 @@ def test_grade_names_the_weak_section_and_the_imbalance(db, stock_file):
     d = svc.show_tube(db, "T003").data
     assert d["grades"][-1]["by"] == "carl" and d["grades"][-1]["grade"] == "weak, unbalanced"
     assert svc.list_tubes(db, grade="weak, unbalanced").data["total"] == 1
+    # a weak tube stays out of matching (named, with its grade) unless asked for
+    m = svc.match(db, "carl", "DT", group="pairs", tolerance_pct=50)
+    out = {e["unit"]: e["reason"] for e in m.data["excluded"]}
+    assert out["T003:B"].startswith("graded weak, unbalanced: section B gm")
+    assert not any("T003" in u for g in m.data["groups"] for u in g["units"])
+    m = svc.match(db, "carl", "DT", group="pairs", tolerance_pct=50, include_weak=True)
+    assert "T003:B" not in {e["unit"] for e in m.data["excluded"]}
 
 
 def test_list_filters_sorts_and_pages(db, stock_file):
@@ -173,7 +180,7 @@ def test_bottles_are_matched_reserved_sold_and_recorded(db, stock_file):
     again = svc.match(db, "dee", "DT", group="pairs", tolerance_pct=50)
     offered = {u.split(":")[0] for g in again.data["groups"] for u in g["units"]}
     assert not offered & reserved
-    lab = svc.labels(db, group=m.data["reserved"][0]["group"])
+    lab = svc.labels(db, group_id=m.data["reserved"][0]["group"])
     assert len(lab.lines) == 4 and all("order ORDER-7" in x for x in lab.lines)
     sold = svc.set_status(db, "eve", sorted(reserved), "sold", order="ORDER-7")
     assert [r["was"] for r in sold.data["tubes"]] == ["reserved", "reserved"]
