@@ -165,7 +165,7 @@ class Ledger:
                 with self._sessions() as s:
                     with s.begin():
                         return fn(s, *args, **kw)
-            except (OperationalError, IntegrityError, DBAPIError) as e:
+            except SQLAlchemyError as e:
                 if attempt < MAX_RETRIES and _retryable(e):
                     self.retries += 1
                     time.sleep(delay * (0.5 + random.random()))

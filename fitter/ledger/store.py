@@ -128,12 +128,13 @@ class ImportOutcome:
     notes: list = field(default_factory=list)
 
 
-def fit_row(result, test_va, test_vg, who) -> Fit:
-    """A :class:`Fit` row from an engine :class:`~fitter.fit.FitResult`."""
+def fit_fields(result, test_va, test_vg) -> dict:
+    """The columns of a :class:`Fit` row (less who and when) from an engine
+    :class:`~fitter.fit.FitResult`, with the figures at the type's test position."""
+    base = {"model": result.model.name, "engine_version": engine_version(), "label": result.label}
     if not result.converged:
-        return Fit(model=result.model.name, converged=False, failure=result.failure or "fit failed",
-                   params={}, stderr={}, free=[], covariance=None, figures={}, valid_range=None, envelope=None,
-                   engine_version=engine_version(), fitted_at=now(), fitted_by=who)
+        return dict(base, converged=False, failure=result.failure or "fit failed", params={}, stderr={}, free=[],
+                    covariance=None, figures={}, valid_range=None, envelope=None)
     triode = result.triode
     card = card_dict(triode, result.figures())
     ss = triode.small_signal(test_va, test_vg, check=False)
@@ -141,10 +142,46 @@ def fit_row(result, test_va, test_vg, who) -> Fit:
     def num(x):
         return float(x) if x is not None and math.isfinite(x) else None
 
-    return Fit(model=result.model.name, converged=True, failure=None,
-               **{k: card[k] for k in CARD_FIELDS}, figures=card["fit"],
-               ia_test=num(ss.ia), ia_test_err=num(ss.ia_err), gm_test=num(ss.gm), gm_test_err=num(ss.gm_err),
-               engine_version=engine_version(), fitted_at=now(), fitted_by=who)
+    return dict(base, converged=True, failure=None, **{k: card[k] for k in CARD_FIELDS}, figures=card["fit"],
+                ia_test=num(ss.ia), ia_test_err=num(ss.ia_err), gm_test=num(ss.gm), gm_test_err=num(ss.gm_err))
+
+
+def _fit_chunk(args):
+    from ..fit import fit_many
+
+    units, model, va, vg = args
+    return [fit_fields(rs[0], va, vg) for rs in fit_many(units, [model], processes=1)]
+
+
+def fit_units(units, model: str, test_va: float, test_vg: float, jobs: int | None = None, progress=None) -> list:
+    """Fit every unit with :func:`fitter.fit.fit_many` and turn each result into the columns
+    of its :class:`Fit` row, on all cores: each worker fits a chunk and returns the rows
+    only (much less to send back than the fit results with their residuals)."""
+    import os
+
+    nproc = jobs or os.cpu_count() or 1
+    if nproc <= 1 or len(units) < 8:
+        out = _fit_chunk((units, model, test_va, test_vg))
+        if progress:
+            progress(len(units))
+        return out
+    import multiprocessing as mp
+
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    size = max(1, min(32, len(units) // (4 * nproc)))
+    chunks = [(units[k:k + size], model, test_va, test_vg) for k in range(0, len(units), size)]
+    out = []
+    with ctx.Pool(nproc) as pool:
+        for rows in pool.imap(_fit_chunk, chunks):
+            out.extend(rows)
+            if progress:
+                progress(len(rows))
+    return out
+
+
+def _fit(fields: dict, who: str, measurement_id: int) -> Fit:
+    f = {k: v for k, v in fields.items() if k != "label"}
+    return Fit(**f, measurement_id=measurement_id, fitted_at=now(), fitted_by=who)
 
 
 def triode_of(fit: Fit, tube: str, section: str):
@@ -163,7 +200,6 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     again.  A bad file stores nothing: the error lists every problem with file, line and
     column.  A unit whose tube label is known becomes a re-test of that tube.
     """
-    from ..fit import fit_many
     from ..models import get_model
     from ..reader import CurveReadError, check_for_model, read_curves
 
@@ -194,7 +230,8 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     if not read.units:
         raise InputError("no units in the file", file=shown(path))
     out.notes = list(read.notes)
-    results = [rs[0] for rs in fit_many(read.units, [m.name], processes=jobs, progress=progress)]
+    units = read.units  # the points exactly as read (the fit works on a cleaned copy)
+    rows = fit_units(units, m.name, test_va, test_vg, jobs, progress)
 
     def run(s):
         if s.scalar(select(SourceFile.id).where(SourceFile.sha256 == sha)) is not None:
@@ -204,7 +241,7 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
                          imported_by=who)
         s.add(src)
         s.flush()
-        labels = sorted({r.tube for r in results})
+        labels = sorted({u.tube for u in units})
         tubes = {t.label: t for t in s.scalars(select(Tube).where(Tube.label.in_(labels)))}
         new = []
         for label in labels:
@@ -223,7 +260,7 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
         secs = {(sec.tube_id, sec.name): sec for sec in s.scalars(
             select(Section).where(Section.tube_id.in_(list(tube_ids.values()))))}
         fresh = []
-        for r in results:
+        for r in units:
             key = (tube_ids[r.tube], r.section or "")
             if key not in secs:
                 secs[key] = Section(tube_id=key[0], name=key[1])
@@ -234,9 +271,8 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
             Measurement.section_id.in_([sec.id for sec in secs.values()]))).all())
         at = now()
         meas = []
-        for r in results:
-            u = r.unit
-            sec = secs[(tube_ids[r.tube], r.section or "")]
+        for u in units:
+            sec = secs[(tube_ids[u.tube], u.section or "")]
             meas.append(Measurement(section_id=sec.id, source_id=src.id, n_points=u.n_points,
                                     points=pack_points(u.va, u.vg, u.ia, u.ig, u.lines),
                                     has_grid_current=u.ig is not None, retest=sec.id in measured,
@@ -244,22 +280,17 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
                                     notes=notes or "", superseded=False))
         s.add_all(meas)
         s.flush()
-        fits = []
-        for r, mm in zip(results, meas):
-            f = fit_row(r, test_va, test_vg, who)
-            f.measurement_id = mm.id
-            fits.append(f)
-        s.add_all(fits)
-        retested = sorted({r.tube for r, mm in zip(results, meas) if mm.retest})
+        s.add_all([_fit(f, who, mm.id) for f, mm in zip(rows, meas)])
+        retested = sorted({u.tube for u, mm in zip(units, meas) if mm.retest})
         for label in sorted(set(labels)):
             kind = "retest" if label in retested else "import"
             _event(s, who, kind, f"{'re-tested' if kind == 'retest' else 'measured'} from {shown(path.name)} "
                    f"(sha256 {sha[:12]})", tube_ids[label])
         out.tubes_new = new
         out.retested = retested
-        out.sections = len(results)
-        out.points = int(sum(r.n_points for r in results))
-        out.failed = [{"unit": r.label, "reason": r.failure} for r in results if not r.converged]
+        out.sections = len(units)
+        out.points = int(sum(u.n_points for u in units))
+        out.failed = [{"unit": f["label"], "reason": f["failure"]} for f in rows if not f["converged"]]
         return out
 
     return ledger.work(run)
@@ -655,7 +686,6 @@ def group_labels(ledger: Ledger, group_id: int) -> dict:
 def refit(ledger: Ledger, designation: str, who: str, model: str = "koren", jobs: int | None = None) -> dict:
     """Fit every non-superseded measurement of a type again with the current engine.  Old
     fits stay (each marked with its engine version); the new ones become current."""
-    from ..fit import fit_many
     from ..models import get_model
     from ..reader import CurveSet
 
@@ -679,17 +709,14 @@ def refit(ledger: Ledger, designation: str, who: str, model: str = "koren", jobs
             ids.append(mm.id)
     if not units:
         return {"type": designation, "refitted": 0, "failed": [], "engine": engine_version()}
-    results = [rs[0] for rs in fit_many(units, [m.name], processes=jobs)]
+    rows = fit_units(units, m.name, test_va, test_vg, jobs)
 
     def run(s):
-        for r, mid in zip(results, ids):
-            f = fit_row(r, test_va, test_vg, who)
-            f.measurement_id = mid
-            s.add(f)
+        s.add_all([_fit(f, who, mid) for f, mid in zip(rows, ids)])
         _event(s, who, "refit", f"re-fitted {len(ids)} measurement(s) of type {designation} with engine "
                f"{engine_version()} ({m.name})")
         return {"type": designation, "refitted": len(ids), "engine": engine_version(),
-                "failed": [{"unit": r.label, "reason": r.failure} for r in results if not r.converged]}
+                "failed": [{"unit": f["label"], "reason": f["failure"]} for f in rows if not f["converged"]]}
 
     return ledger.work(run)
 

@@ -50,6 +50,16 @@ def test_importing_the_same_file_twice_stores_it_once(db, stock_file):
     assert len(before["source_files"]) == 1 and len(before["measurements"]) == 4
     # the file's bytes are kept exactly as read, with their SHA-256
     assert before["source_files"][0]["content"] == path.read_bytes()
+    # and the points exactly as the reader gave them, in file order with their lines (the fit
+    # works on a sorted, cleaned copy; the ledger keeps what was read)
+    from fitter.ledger.schema import unpack_points
+
+    raw = read_curves([path]).units
+    for unit, m in zip(raw, before["measurements"]):
+        p = unpack_points(m["points"], m["n_points"])
+        for k in ("va", "vg", "ia", "lines"):
+            assert np.array_equal(p[k], getattr(unit, k)), k
+        assert p["ig"] is None
     led.close()
 
 
