@@ -274,7 +274,10 @@ def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", toler
                 if not info["dual"]:
                     raise InputError(f"type {shown(tube_type)} is a single triode: match pairs", field="group")
                 res = match_bottles(units, position, crit, extrapolate=extrapolate)
-                res.excluded = [{"bottle": x["unit"], "reason": x["reason"]} for x in skipped] + res.excluded
+                gone = {}
+                for x in skipped:  # one line per bottle
+                    gone.setdefault(x["unit"].split(":", 1)[0], x["reason"])
+                res.excluded = [{"bottle": b, "reason": r} for b, r in gone.items()] + res.excluded
                 groups = [{"members": [tuple(u.split(":", 1)) for side in p.sides for u in side],
                            "mismatch_pct": 100 * p.mismatch, "grade": p.grade, "name": f"B{k}"}
                           for k, p in enumerate(res.pairs, 1)]
