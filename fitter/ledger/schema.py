@@ -142,9 +142,7 @@ class Fit(Base):
     valid_range: Mapped[dict | None] = mapped_column(JSON)  # as in a card (va_v, vg_v, ia_ma)
     envelope: Mapped[dict | None] = mapped_column(JSON)  # as in a card
     ia_test: Mapped[float | None] = mapped_column(Float)  # [A] at the type's test position
-    ia_test_err: Mapped[float | None] = mapped_column(Float)
     gm_test: Mapped[float | None] = mapped_column(Float)  # [S]
-    gm_test_err: Mapped[float | None] = mapped_column(Float)
     engine_version: Mapped[str] = mapped_column(String(32))
     fitted_at: Mapped[str] = mapped_column(String(40))
     fitted_by: Mapped[str] = mapped_column(String(64))
