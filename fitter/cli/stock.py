@@ -21,7 +21,8 @@ OPTION_OF = {"db": "--db", "user": "--user", "type": "--type", "va": "--va", "vg
              "accept": "--accept", "group_id": "GROUP", "order": "--order", "labels": "LABEL", "files": "FILE", "model": "--model",
              "sort": "--sort", "status": "--status", "limit": "--limit", "offset": "--offset",
              "weak_pct": "--weak", "balance_pct": "--balance", "position": "--va/--vg", "folder": "FOLDER",
-             "target": "TARGET", "nominal_card": "--nominal-card", "pa_max": "--pa-max", "vhk_max": "--vhk-max"}
+             "target": "TARGET", "nominal_card": "--nominal-card", "pa_max": "--pa-max", "vhk_max": "--vhk-max", "location": "--location", "notes": "--notes",
+             "measurement": "MEASUREMENT", "label": "LABEL"}
 
 USER_ENV = "PLATEBOOK_USER"
 
@@ -253,6 +254,31 @@ def retire_cmd(ctx, labels, reason, as_json):
     from ..service import stock as svc
 
     _run(ctx, svc.set_status, as_json, labels=list(labels), status="retired", reason=reason)
+
+
+@stock.command("edit")
+@click.argument("label")
+@click.option("--location", default=None, help="Where the tube is kept.")
+@click.option("--notes", default=None, help="Free notes on the tube.")
+@_json
+@click.pass_context
+def edit_cmd(ctx, label, location, notes, as_json):
+    """Set where tube LABEL is kept, or its notes (the history keeps the old values)."""
+    from ..service import stock as svc
+
+    _run(ctx, svc.edit, as_json, label=label, location=location, notes=notes)
+
+
+@stock.command("supersede")
+@click.argument("measurement", type=int)
+@click.option("--reason", default="", help="Why.")
+@_json
+@click.pass_context
+def supersede_cmd(ctx, measurement, reason, as_json):
+    """Mark MEASUREMENT (its number in 'stock show') superseded: kept, no longer current."""
+    from ..service import stock as svc
+
+    _run(ctx, svc.supersede, as_json, measurement=measurement, reason=reason)
 
 
 @stock.command("refit")

@@ -361,6 +361,14 @@ def tube_detail(ledger: Ledger, label: str) -> dict:
                     d["drift"] = drift_of(test_figures(f0, t.label, sec.name, tt.test_va, tt.test_vg), now_ss)
                     d["drift"]["first_measured_at"] = first[sec.id][0].measured_at
             sections.append(d)
+        names = {x.id: x.name for x in secs}
+        measurements = [{"measurement": m.id, "section": names[m.section_id] or None, "at": m.measured_at,
+                         "by": m.measured_by, "source": src, "points": m.n_points, "superseded": m.superseded,
+                         "retest": m.retest, "instrument": m.instrument, "notes": m.notes}
+                        for m, src in s.execute(select(Measurement, SourceFile.name)
+                                                .join(SourceFile, SourceFile.id == Measurement.source_id)
+                                                .where(Measurement.section_id.in_(list(names)))
+                                                .order_by(Measurement.id))]
         grades = [{"grade": g.grade, "basis": g.basis, "by": g.decided_by, "at": g.decided_at}
                   for g in s.scalars(select(Grade).where(Grade.tube_id == t.id).order_by(Grade.id))]
         groups = [{"group": g.id, "kind": g.kind, "status": g.status, "order": g.order_ref}
@@ -370,7 +378,8 @@ def tube_detail(ledger: Ledger, label: str) -> dict:
                   for e in s.scalars(select(Event).where(Event.tube_id == t.id).order_by(Event.id))]
         return {"label": t.label, "type": tt.designation, "status": t.status, "location": t.location,
                 "notes": t.notes, "test_position": {"va": tt.test_va, "vg": tt.test_vg},
-                "sections": sections, "grades": grades, "groups": groups, "history": events}
+                "sections": sections, "measurements": measurements, "grades": grades, "groups": groups,
+                "history": events}
 
 
 def test_figures(f: Fit, tube: str, section: str, va: float, vg: float):
@@ -670,6 +679,49 @@ def set_status(ledger: Ledger, labels, status: str, who: str, reason: str = "", 
     return ledger.work(run)
 
 
+def edit_tube(ledger: Ledger, label: str, who: str, location: str | None = None, notes: str | None = None) -> dict:
+    """Set where a tube is kept and its notes (the history keeps the earlier values)."""
+    if location is None and notes is None:
+        raise InputError("give a location or notes to set", field="location")
+
+    def run(s):
+        t = _tube(s, label)
+        changes = []
+        if location is not None:
+            changes.append(f"location {t.location!r} -> {location!r}")
+            t.location = plain_text(location, "location", max_len=200, empty=True)
+        if notes is not None:
+            changes.append(f"notes {t.notes!r} -> {notes!r}")
+            t.notes = plain_text(notes, "notes", max_len=2000, empty=True)
+        _event(s, who, "edit", "; ".join(changes), t.id)
+        return {"label": t.label, "location": t.location, "notes": t.notes}
+
+    return ledger.work(run)
+
+
+def supersede(ledger: Ledger, measurement_id: int, who: str, reason: str = "") -> dict:
+    """Mark a measurement superseded: it stays, with its fits, but no longer gives the
+    section's current figures (the section's latest other measurement does)."""
+    if not isinstance(measurement_id, int) or measurement_id < 1:
+        raise InputError(f"must be a measurement number, got {measurement_id!r}", field="measurement")
+
+    def run(s):
+        m = s.get(Measurement, measurement_id)
+        if m is None:
+            raise InputError(f"no measurement {measurement_id}", field="measurement")
+        if m.superseded:
+            raise InputError(f"measurement {measurement_id} is already superseded", field="measurement")
+        m.superseded = True
+        sec = s.get(Section, m.section_id)
+        t = s.get(Tube, sec.tube_id)
+        name = f"{t.label}:{sec.name}" if sec.name else t.label
+        _event(s, who, "supersede", f"measurement {measurement_id} of {name} superseded"
+               + (f": {reason}" if reason else ""), t.id)
+        return {"measurement": measurement_id, "unit": name}
+
+    return ledger.work(run)
+
+
 def history(ledger: Ledger, label: str | None = None, limit: int = 50) -> list:
     with ledger.read() as s:
         q = select(Event, Tube.label).outerjoin(Tube, Tube.id == Event.tube_id)
@@ -756,5 +808,5 @@ def card_of(ledger: Ledger, label: str, section: str | None = None) -> list:
 
 
 __all__ = ["add_type", "list_types", "import_file", "tube_detail", "drift_of", "list_tubes", "grade_type",
-           "grade_tube", "stock_units", "reserve", "set_status", "history", "group_labels", "refit", "card_of",
+           "grade_tube", "stock_units", "reserve", "set_status", "edit_tube", "supersede", "history", "group_labels", "refit", "card_of",
            "ImportOutcome"]

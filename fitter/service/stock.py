@@ -21,7 +21,7 @@ from ..errors import InputError
 from ..text import shown
 
 __all__ = ["Result", "init", "add_type", "types", "import_files", "list_tubes", "show_tube", "grade", "match",
-           "reserve", "labels", "set_status", "refit", "history", "backup", "restore", "copy"]
+           "reserve", "labels", "set_status", "edit", "supersede", "refit", "history", "backup", "restore", "copy"]
 
 
 @dataclass(frozen=True)
@@ -202,6 +202,10 @@ def show_tube(db=None, label="") -> Result:
             dr = s["drift"]
             lines.append(f"    drift since {dr['first_measured_at'][:10]}: Ia {_pm(dr['ia_pct'], dr['ia_pct_err'])}, "
                          f"gm {_pm(dr['gm_pct'], dr['gm_pct_err'])}")
+    lines.append("measurements:")
+    lines += [f"  #{m['measurement']:<5} {shown(m['section'] or '-'):<4} {m['at'][:16]}  {shown(m['by']):<10} "
+              f"{shown(m['source'])} ({m['points']} points)" + (" superseded" if m["superseded"] else "")
+              for m in d["measurements"]]
     if d["grades"]:
         g = d["grades"][-1]
         lines.append(f"grade: {g['grade']} ({shown(g['basis'])}; by {shown(g['by'])}, {g['at'][:16]})")
@@ -358,6 +362,23 @@ def set_status(db=None, user="", labels=(), status="", reason="", order=None) ->
         rows = store.set_status(ledger, list(labels), status, _user(user), reason, order)
     return Result("status", {"tubes": rows},
                   tuple(f"{shown(r['label'])}: {r['was']} -> {r['status']}" for r in rows))
+
+
+def edit(db=None, user="", label="", location=None, notes=None) -> Result:
+    from ..ledger import store
+
+    with _ledger(db) as ledger:
+        d = store.edit_tube(ledger, label, _user(user), location, notes)
+    return Result("edit", d, (f"{shown(d['label'])}: kept at {shown(d['location']) or '-'}; notes: {shown(d['notes']) or '-'}",))
+
+
+def supersede(db=None, user="", measurement=None, reason="") -> Result:
+    from ..ledger import store
+
+    with _ledger(db) as ledger:
+        d = store.supersede(ledger, measurement, _user(user), reason)
+    return Result("supersede", d, (f"measurement {d['measurement']} of {shown(d['unit'])} superseded; it stays in the "
+                                   "ledger with its fits",))
 
 
 # -- maintenance ------------------------------------------------------------------

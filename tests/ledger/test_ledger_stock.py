@@ -228,3 +228,44 @@ def test_the_cli_imports_the_demo_stock_and_says_caution(platebook, tmp_path):
     assert "16 section(s), 4124 points; 8 new tube(s)" in out and CAUTION in out
     code, out, err = platebook("stock", "--db", db, "list", "--type", "NOPE")
     assert code == 1 and err.startswith("error: --type: no tube type 'NOPE'")
+
+
+def test_a_superseded_measurement_stays_but_no_longer_gives_the_figures(db, stock_file):
+    _setup(db)
+    first, _ = stock_file("first.csv", n_tubes=1, seed=31)
+    second, _ = stock_file("second.csv", n_tubes=1, seed=32, kg1_scale={"T001": 1.3})
+    svc.import_files(db, "ann", [first], "DT", jobs=1)
+    before = svc.show_tube(db, "T001").data["sections"][0]["ia_ma"]
+    svc.import_files(db, "ann", [second], "DT", jobs=1)
+    d = svc.show_tube(db, "T001").data
+    assert d["sections"][0]["ia_ma"] < before  # the re-test is current
+    newest = [m["measurement"] for m in d["measurements"] if m["section"] == "A"][-1]
+    svc.supersede(db, "bob", newest, reason="socket contact was loose")
+    d = svc.show_tube(db, "T001").data
+    assert d["sections"][0]["ia_ma"] == pytest.approx(before, rel=1e-12)  # back to the first
+    assert len(d["measurements"]) == 4 and sum(m["superseded"] for m in d["measurements"]) == 1
+    assert d["history"][-1]["action"] == "supersede" and "loose" in d["history"][-1]["detail"]
+    with pytest.raises(InputError, match="already superseded"):
+        svc.supersede(db, "bob", newest)
+    e = svc.edit(db, "bob", "T001", location="shelf B3")
+    assert e.data["location"] == "shelf B3" and svc.show_tube(db, "T001").data["location"] == "shelf B3"
+
+
+def test_nominal_figures_come_from_a_datasheet_card(db, synth, tube_types, tmp_path, stock_file):
+    from fitter.card import save_card
+
+    # the "datasheet" card: Koren's published 12AU7 set itself (from memory, tests/conftest.py)
+    tt = tube_types["12AU7"]
+    u = synth(tt, noise=0.0, tube="SHEET").curveset()
+    triode = fit_curves(u, "koren").raise_for_failure().triode
+    card = save_card(tmp_path / "sheet.json", triode)
+    svc.init(db)
+    d = svc.add_type(db, "ann", "DT", VA, VG, nominal_card=str(card)).data
+    expect = get_model("koren").current(VA, VG, **tt.params)  # the published set's own current
+    assert d["nominal_ia_ma"] == pytest.approx(1e3 * expect, rel=1e-3)
+    assert d["nominal_basis"] == "datasheet card sheet.json (koren)"
+    path, _ = stock_file(n_tubes=2, seed=33)
+    svc.import_files(db, "ann", [path], "DT", jobs=1)
+    g = svc.grade(db, "ann", "DT").data
+    assert g["nominal_basis"] == "datasheet card sheet.json (koren)"
+    assert g["nominal_ia_ma"] == pytest.approx(d["nominal_ia_ma"], rel=1e-12)
