@@ -245,20 +245,31 @@ def current_revision(connection) -> str | None:
     return MigrationContext.configure(connection).get_current_revision()
 
 
+def _stamped_head(connection) -> bool:
+    """Is the database stamped with :data:`HEAD`?  (Alembic's version table, read directly.)"""
+    from sqlalchemy import inspect, text
+
+    if "alembic_version" not in inspect(connection).get_table_names():
+        return False
+    return connection.execute(text("SELECT version_num FROM alembic_version")).scalars().all() == [HEAD]
+
+
 def upgrade(ledger) -> bool:
     """Bring the ledger's schema to :data:`HEAD` (Alembic); True when it changed anything.
 
     Runs in one transaction (both databases have transactional DDL), retried like any unit
     of work, so two processes opening a new ledger at once do not trip over each other.
     """
-    from alembic import command
-
     from .db import LedgerError
 
     with ledger.read_engine.connect() as c:
+        if _stamped_head(c):  # the usual case: no need to load Alembic at all
+            return False
         rev = current_revision(c)
     if rev == HEAD:
         return False
+    from alembic import command
+
     if rev is not None and rev not in _known_revisions():
         raise LedgerError(f"the ledger's schema (revision {rev}) is newer than this Platebook knows; "
                           "update Platebook", field="db")
