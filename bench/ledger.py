@@ -153,6 +153,7 @@ def fill_ledger(ledger, units, who="bench"):
         s.add_all(fits)
 
     ledger.work(run)
+    ledger.analyze()  # as an import of many units does
 
 
 def fit_file(path, units):

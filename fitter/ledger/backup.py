@@ -211,7 +211,9 @@ def _load(ledger: Ledger, rows_by_table: dict) -> dict:
         return {name: len(rows) for name, rows in rows_by_table.items()}
 
     try:
-        return ledger.work(run)
+        done = ledger.work(run)
+        ledger.analyze()
+        return done
     except InputError:
         raise
     except Exception as e:  # a constraint the rows break: a damaged back-up

@@ -174,6 +174,19 @@ class Ledger:
                 raise LedgerError(f"database error on {self.describe()}: {scrub(e, self.url)}") from None
         raise AssertionError("unreachable")
 
+    def analyze(self):
+        """Refresh the query planner's statistics after a bulk write.  PostgreSQL plans from
+        them: right after 10,000 rows arrive in an empty table it still believes the table
+        has one row and joins by nested loops (seconds instead of milliseconds) until its
+        autovacuum gets round to it.  SQLite's plans here do not depend on statistics."""
+        if self.dialect != "postgresql":
+            return
+        try:
+            with self.engine.connect() as c:
+                c.execution_options(isolation_level="AUTOCOMMIT").exec_driver_sql("ANALYZE")
+        except SQLAlchemyError:
+            pass  # statistics are an optimisation; the rows are committed already
+
     def close(self):
         self.engine.dispose()
         if self.read_engine is not self.engine:

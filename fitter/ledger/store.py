@@ -31,6 +31,8 @@ CARD_FIELDS = ("params", "stderr", "free", "covariance", "valid_range", "envelop
 #: default grading thresholds: a section below this share of nominal Ia or gm is weak [%];
 #: a dual bottle whose sections differ by more than this is out of balance [%]
 WEAK_PCT = 80.0
+#: an import or re-fit of this many units refreshes the planner's statistics (Ledger.analyze)
+BULK_ROWS = 100
 BALANCE_PCT = 10.0
 
 
@@ -314,7 +316,10 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
         out.failed = [{"unit": f["label"], "reason": f["failure"]} for f in rows if not f["converged"]]
         return out
 
-    return ledger.work(run)
+    done = ledger.work(run)
+    if len(units) >= BULK_ROWS:
+        ledger.analyze()
+    return done
 
 
 # -- reading a tube back -----------------------------------------------------------
@@ -802,7 +807,10 @@ def refit(ledger: Ledger, designation: str, who: str, model: str = "koren", jobs
         return {"type": designation, "refitted": len(ids), "engine": engine_version(),
                 "failed": [{"unit": f["label"], "reason": f["failure"]} for f in rows if not f["converged"]]}
 
-    return ledger.work(run)
+    done = ledger.work(run)
+    if len(ids) >= BULK_ROWS:
+        ledger.analyze()
+    return done
 
 
 def card_of(ledger: Ledger, label: str, section: str | None = None) -> list:
