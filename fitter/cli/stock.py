@@ -17,12 +17,15 @@ import click
 from . import fail, main
 
 #: the service's field names, as this front end calls them
-OPTION_OF = {"db": "--db", "user": "--user", "type": "--type", "va": "--va", "vg": "--vg", "group": "--group",
-             "accept": "--accept", "group_id": "GROUP", "order": "--order", "labels": "LABEL", "files": "FILE", "model": "--model",
-             "sort": "--sort", "status": "--status", "limit": "--limit", "offset": "--offset",
-             "weak_pct": "--weak", "balance_pct": "--balance", "position": "--va/--vg", "folder": "FOLDER",
-             "target": "TARGET", "nominal_card": "--nominal-card", "pa_max": "--pa-max", "vhk_max": "--vhk-max", "location": "--location", "notes": "--notes",
-             "measurement": "MEASUREMENT", "label": "LABEL"}
+OPTION_OF = {
+    "db": "--db", "user": "--user", "type": "--type", "va": "--va", "vg": "--vg", "group": "--group",
+    "accept": "--accept", "group_id": "GROUP", "order": "--order", "labels": "LABEL", "files": "FILE",
+    "model": "--model", "sort": "--sort", "status": "--status", "limit": "--limit", "offset": "--offset",
+    "weak_pct": "--weak", "balance_pct": "--balance", "position": "--va/--vg", "folder": "FOLDER",
+    "target": "TARGET", "nominal_card": "--nominal-card", "pa_max": "--pa-max", "vhk_max": "--vhk-max",
+    "location": "--location", "notes": "--notes", "instrument": "--instrument", "measurement": "MEASUREMENT",
+    "label": "LABEL",
+}
 
 USER_ENV = "PLATEBOOK_USER"
 

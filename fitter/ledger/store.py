@@ -225,6 +225,8 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     from ..reader import CurveReadError, check_for_model, read_curves
 
     path = Path(path)
+    instrument = plain_text(instrument or "", "instrument", max_len=200, empty=True)
+    notes = plain_text(notes or "", "notes", max_len=2000, empty=True)
     try:
         raw = path.read_bytes()
     except OSError as e:
