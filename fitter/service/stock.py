@@ -14,7 +14,8 @@ PostgreSQL ledger) and closed at the end.
 from __future__ import annotations
 
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Callable
 
 from .. import CAUTION
 from ..errors import InputError
@@ -27,12 +28,29 @@ __all__ = ["Result", "init", "add_type", "types", "import_files", "list_tubes", 
 @dataclass(frozen=True)
 class Result:
     """A use case's outcome: ``kind`` names it, ``data`` holds it (JSON-ready), ``lines``
-    the readable report; ``failed`` is True when a fit failed (the CLI exits 2)."""
+    the readable report; ``failed`` is True when a fit failed (the CLI exits 2).
+
+    A large result (a listing of 10,000 tubes, a match) gives ``make_data`` / ``make_lines``
+    instead: functions that build the data or the report when, and only if, asked for."""
 
     kind: str
-    data: dict
-    lines: tuple = ()
+    given_data: dict | None = None
+    given_lines: tuple = ()
     failed: bool = False
+    make_data: Callable[[], dict] | None = field(default=None, repr=False, compare=False)
+    make_lines: Callable[[], list] | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def data(self) -> dict:
+        if self.given_data is None and self.make_data is not None:
+            object.__setattr__(self, "given_data", self.make_data())
+        return self.given_data
+
+    @property
+    def lines(self) -> tuple:
+        if not self.given_lines and self.make_lines is not None:
+            object.__setattr__(self, "given_lines", tuple(self.make_lines()))
+        return self.given_lines
 
     def to_dict(self) -> dict:
         return {"result": self.kind, **self.data, "caution": CAUTION}
@@ -165,6 +183,10 @@ def list_tubes(db=None, tube_type=None, grade=None, status=None, sort="label", d
 
     with _ledger(db) as ledger:
         d = store.list_tubes(ledger, tube_type, grade, status, sort, descending, limit, offset)
+    return Result("list", d, make_lines=lambda: _list_lines(d, offset))
+
+
+def _list_lines(d, offset):
     lines = [f"{'tube':<14}{'type':<10}{'status':<10}{'sect':<6}{'Ia mA':>9}{'gm mA/V':>9}  grade"]
     for t in d["tubes"]:
         secs = t["sections"] or [{"section": None, "ia_ma": None, "gm_ms": None}]
@@ -175,7 +197,7 @@ def list_tubes(db=None, tube_type=None, grade=None, status=None, sort="label", d
     shown_n = len(d["tubes"])
     lines.append(f"{shown_n} of {d['total']} tube(s)" + (f" from {offset + 1}" if offset else "")
                  + ("; figures at each type's test position" if shown_n else ""))
-    return Result("list", d, tuple(lines))
+    return lines
 
 
 def show_tube(db=None, label="") -> Result:
@@ -297,9 +319,8 @@ def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", toler
                 kind = "section pair" if group == "pairs" else "section quad"
         except MatchError as e:
             raise InputError(str(e), field="position") from None
-        data = res.to_dict()
-        data["type"] = info["type"]
-        lines = [res.table()]
+        extra = {"type": info["type"]}
+        tail = []
         if reserve_order is not None:
             picks = list(range(1, len(groups) + 1)) if not accept else list(accept)
             for k in picks:
@@ -307,13 +328,16 @@ def match(db=None, user="", tube_type="", va=None, vg=None, group="pairs", toler
                     raise InputError(f"no group {k!r} in this match (1 .. {len(groups)})", field="accept")
             chosen = [groups[k - 1] for k in picks]
             made = store.reserve(ledger, chosen, reserve_order, _user(user), kind, position.to_dict(), crit.to_dict())
-            data["reserved"] = made
-            lines.append("")
+            extra["reserved"] = made
+            tail.append("")
             for g, m in zip(chosen, made):
-                lines.append(f"reserved {g['name']} as group {m['group']} for order {shown(reserve_order)}: "
-                             + ", ".join(shown(x) for x in m["members"]))
-    lines = [ln for ln in "\n".join(lines).split("\n") if ln != CAUTION]
-    return Result("match", data, tuple(lines))
+                tail.append(f"reserved {g['name']} as group {m['group']} for order {shown(reserve_order)}: "
+                            + ", ".join(shown(x) for x in m["members"]))
+
+    def lines():
+        return [ln for ln in res.table().split("\n") if ln != CAUTION] + tail
+
+    return Result("match", make_data=lambda: {**res.to_dict(), **extra}, make_lines=lines)
 
 
 def reserve(db=None, user="", labels=(), order="", kind="set") -> Result:
