@@ -23,7 +23,7 @@ Side by side, in one run (the goals are issue 9, section 7):
 4. **Concurrency**: 20 ``platebook stock import`` processes started at once into one ledger
    (20 small files of 2 bottles each), wall time and the retries they needed, per database.
 
-PostgreSQL: a throwaway cluster is started as in the tests (``tests/ledger/conftest.py``)
+PostgreSQL: a throwaway cluster is started as in the tests (``tests/ledger/pgcluster.py``)
 unless ``--pg URL`` names a server database to use (it must be empty: the bench creates its
 own databases there only when it started the cluster).  The load average and the sha1 of the
 ledger's code are printed so runs can be compared.
@@ -299,7 +299,7 @@ def main(argv=None):
     if args.pg:
         pg_factory = lambda: args.pg  # noqa: E731
     elif not args.no_pg:
-        conf = _load(ROOT / "tests" / "ledger" / "conftest.py", "platebook_ledger_conftest")
+        conf = _load(ROOT / "tests" / "ledger" / "pgcluster.py", "platebook_pgcluster")
         bindir = conf.pg_bindir()
         if bindir:
             cluster = conf.PgCluster(bindir)
