@@ -46,6 +46,9 @@ HOME_ENV = "PLATEBOOK_HOME"
 BUSY_TIMEOUT_MS = 30_000
 #: retries of a unit of work that met a lock, a serialisation failure or a concurrent insert
 MAX_RETRIES = 60
+#: of those, retries after a unique key was taken by a concurrent writer (more means a real
+#: conflict in the data, reported at once)
+MAX_KEY_RETRIES = 5
 
 
 class LedgerError(InputError):
@@ -160,13 +163,15 @@ class Ledger:
         ``fn`` must do nothing but database work (it may run several times).
         """
         delay = 0.005
+        taken = 0  # retries after a unique key was taken: one normally settles it
         for attempt in range(MAX_RETRIES + 1):
             try:
                 with self._sessions() as s:
                     with s.begin():
                         return fn(s, *args, **kw)
             except SQLAlchemyError as e:
-                if attempt < MAX_RETRIES and _retryable(e):
+                taken += isinstance(e, IntegrityError)
+                if attempt < MAX_RETRIES and taken <= MAX_KEY_RETRIES and _retryable(e):
                     self.retries += 1
                     time.sleep(delay * (0.5 + random.random()))
                     delay = min(delay * 1.6, 0.5)

@@ -343,8 +343,9 @@ def _latest_fits(s, tube_ids=None, first=False):
     return {sid: (m, f) for sid, m, f in s.execute(q)}
 
 
-def _tube(s, label) -> Tube:
-    t = s.scalar(select(Tube).where(Tube.label == label))
+def _tube(s, label, lock=False) -> Tube:
+    q = select(Tube).where(Tube.label == label)
+    t = s.scalar(q.with_for_update() if lock else q)
     if t is None:
         raise InputError(f"no tube labelled {shown(label)!r} in the ledger", field="label")
     return t
@@ -641,7 +642,10 @@ def reserve(ledger: Ledger, groups, order: str, who: str, kind: str, position: d
         for g in groups:
             members = g["members"]
             labels = sorted({m[0] for m in members})
-            tubes = {t.label: t for t in s.scalars(select(Tube).where(Tube.label.in_(labels)))}
+            # FOR UPDATE: two clerks reserving the same tube at once on PostgreSQL queue here,
+            # and the second sees it reserved (SQLite's writer lock does the same)
+            tubes = {t.label: t for t in s.scalars(select(Tube).where(Tube.label.in_(labels))
+                                                   .order_by(Tube.id).with_for_update())}
             for lab in labels:
                 if lab not in tubes:
                     raise InputError(f"no tube labelled {shown(lab)!r}", field="labels")
@@ -681,7 +685,7 @@ def set_status(ledger: Ledger, labels, status: str, who: str, reason: str = "", 
     def run(s):
         out = []
         for lab in labels:
-            t = _tube(s, lab)
+            t = _tube(s, lab, lock=True)
             if t.status in ("sold", "retired"):
                 raise InputError(f"tube {shown(lab)} is already {t.status}; nothing was changed", field="labels")
             if status == "in-stock" and t.status != "reserved":
@@ -710,7 +714,7 @@ def edit_tube(ledger: Ledger, label: str, who: str, location: str | None = None,
         raise InputError("give a location or notes to set", field="location")
 
     def run(s):
-        t = _tube(s, label)
+        t = _tube(s, label, lock=True)
         changes = []
         if location is not None:
             changes.append(f"location {t.location!r} -> {location!r}")
