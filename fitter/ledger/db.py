@@ -27,7 +27,7 @@ import time
 from contextlib import contextmanager
 from pathlib import Path
 
-from sqlalchemy import create_engine, event, inspect
+from sqlalchemy import create_engine, event
 from sqlalchemy.engine import URL, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, SQLAlchemyError
 from sqlalchemy.orm import sessionmaker
@@ -264,7 +264,3 @@ def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = T
                           field="db") from None
     except Exception as e:  # psycopg / sqlite3 errors outside SQLAlchemy's wrapping
         raise LedgerError(f"cannot open the ledger {safe_url(url)}: {scrub(e, url)}", field="db") from None
-
-
-def table_names(ledger: Ledger) -> list[str]:
-    return sorted(inspect(ledger.read_engine).get_table_names())
