@@ -22,7 +22,7 @@ import unicodedata
 
 from .errors import InputError
 
-__all__ = ["shown", "csv_cell", "plain_text", "MAX_NAME"]
+__all__ = ["shown", "csv_cell", "csv_value", "plain_text", "MAX_NAME"]
 
 #: Longest tube or section name accepted (characters).
 MAX_NAME = 64
@@ -66,6 +66,25 @@ def csv_cell(value):
     if s and s[0] in "=+-@\t\r" and not _NUMBER.match(s):
         return "'" + s
     return s
+
+
+def csv_value(value, digits: int = 6):
+    """A report's value for a CSV cell: a number to ``digits`` significant digits (written
+    unquoted), an empty cell for a missing or non-finite one, ``true``/``false``, or text made
+    safe by :func:`csv_cell`."""
+    import math
+    import numbers
+
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return str(value).lower()
+    if isinstance(value, numbers.Integral):
+        return int(value)
+    if isinstance(value, numbers.Real):
+        f = float(value)
+        return float(f"{f:.{digits}g}") if math.isfinite(f) else ""
+    return csv_cell(str(value))
 
 
 def plain_text(value, field: str, *, max_len: int = MAX_NAME, empty: bool = False,

@@ -252,7 +252,8 @@ def test_engine_messages_name_no_command_line_flag():
 
 # -- no numerics and no file reading in the thinned command modules -------------
 
-THIN = ["fitcmd.py", "stage.py", "export.py", "fields.py", "options.py", "__init__.py", "output.py"]
+THIN = ["fitcmd.py", "stage.py", "export.py", "fields.py", "options.py", "__init__.py", "output.py", "stock.py",
+        "design.py", "match.py"]
 
 
 @pytest.mark.parametrize("name", THIN)

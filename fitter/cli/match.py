@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import csv
 import json
-import math
 
 import click
 
@@ -186,7 +185,7 @@ def _write_csv(path, rows):
     import io
 
     from ..outfiles import OutputError, write_atomic
-    from ..text import csv_cell
+    from ..text import csv_value
 
     if not rows:
         rows = [{"group": "", "unit": ""}]
@@ -194,24 +193,9 @@ def _write_csv(path, rows):
     w = csv.writer(out, quoting=csv.QUOTE_NONNUMERIC, lineterminator="\n")
     w.writerow(list(rows[0].keys()))
     for r in rows:
-        w.writerow([_csv_value(v, csv_cell) for v in r.values()])
+        w.writerow([csv_value(v) for v in r.values()])
     try:
         write_atomic(path, out.getvalue())
     except OutputError as e:
         _fail(f"--csv {e}")
 
-
-def _csv_value(v, csv_cell):
-    import numbers
-
-    if v is None:
-        return ""
-    if isinstance(v, bool):
-        return str(v).lower()
-    if isinstance(v, numbers.Integral):
-        return int(v)
-    if isinstance(v, numbers.Real):
-        f = float(v)
-        # 6 significant digits, written as a number (QUOTE_NONNUMERIC leaves it unquoted)
-        return float(f"{f:.6g}") if math.isfinite(f) else ""
-    return csv_cell(str(v))
