@@ -72,7 +72,10 @@ def _check_bool(obj, name):
 #: typo or a missing prefix, and the arithmetic would overflow or divide by zero
 _RANGES = (("b_plus", 1e-3, 1e5, "V"), ("load", 1.0, 1e8, "ohm"), ("turns_ratio", 1e-3, 1e4, ""),
            ("speaker", 1e-2, 1e6, "ohm"), ("r_primary", 0.0, 1e7, "ohm"), ("grid_bias", 0.0, 1e5, "V"),
-           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"))
+           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"),
+           ("cgk", 0.0, 1e-6, "F"), ("cga", 0.0, 1e-6, "F"), ("cak", 0.0, 1e-6, "F"), ("rs", 0.0, 1e8, "ohm"),
+           ("c_in", 1e-15, 1.0, "F"), ("rg", 1.0, 1e9, "ohm"), ("ck", 1e-12, 10.0, "F"),
+           ("l_primary", 1e-3, 1e5, "H"))
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -105,6 +108,24 @@ class _OutputCommon:
     grid_onset : float
         Grid-cathode voltage where grid current starts [V] (0 V: common practice; real
         directly heated tubes begin slightly below).
+
+    The remaining fields only shape the frequency response
+    (:func:`fitter.stage.frequency.response`); the defaults leave a flat, ideal stage and
+    change none of the quasi-static figures.
+
+    cgk, cga, cak : float
+        Interelectrode capacitances of each tube [F].
+    rs : float
+        Resistance of the driving source [ohm] (each grid's, push-pull).
+    c_in : float or None
+        Coupling capacitor to each grid [F]; None: direct coupling.
+    rg : float or None
+        Grid resistor to AC ground [ohm] (the grid leak, or the bias feed); None: none.
+    ck : float or None
+        The cathode bypass capacitor [F] (needs ``bypassed``); None: an ideal bypass.
+    l_primary : float or None
+        Magnetising inductance of the whole primary [H] (the low-frequency corner); None:
+        an ideal transformer.
     """
 
     b_plus: float
@@ -117,6 +138,14 @@ class _OutputCommon:
     bypassed: bool = True
     pa_max: float | None = None
     grid_onset: float = 0.0
+    cgk: float = 0.0
+    cga: float = 0.0
+    cak: float = 0.0
+    rs: float = 0.0
+    c_in: float | None = None
+    rg: float | None = None
+    ck: float | None = None
+    l_primary: float | None = None
 
     def __post_init__(self):
         owner = type(self).__name__
@@ -130,6 +159,10 @@ class _OutputCommon:
         _check_positive(self, "pa_max", optional=True)
         _check_number(self, "grid_onset")
         _check_bool(self, "bypassed")
+        for name in ("cgk", "cga", "cak", "rs"):
+            _check_positive(self, name, allow_zero=True)
+        for name in ("c_in", "rg", "ck", "l_primary"):
+            _check_positive(self, name, optional=True)
         for name, lo, hi, unit in _RANGES:
             v = getattr(self, name)
             if v is not None and not (lo <= abs(v) <= hi) and not (v == 0 and lo == 0):
@@ -145,6 +178,11 @@ class _OutputCommon:
             raise StageInputError(f"the reflected load {self.reflected_load:.4g} ohm is not a plausible "
                                   f"transformer load (1 ohm to 100 Mohm)", field="load" if self.load is not None
                                   else "turns_ratio", owner=owner)
+        if self.ck is not None and (self.rk is None or not self.bypassed):
+            raise StageInputError("a bypass capacitor needs a bypassed cathode resistor", field="ck", owner=owner)
+        if self.c_in is not None and self.rg is None:
+            raise StageInputError("a coupling capacitor needs a grid resistor to hold the grid's DC voltage",
+                                  field="rg", owner=owner)
         if self.grid_bias is not None and self.grid_bias > self.grid_onset:
             raise StageInputError(f"a fixed bias above the grid-current onset ({self.grid_onset:g} V) "
                                   f"draws grid current at idle, got {self.grid_bias!r}",
