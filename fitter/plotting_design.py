@@ -47,7 +47,7 @@ def plot_response(fr, axes=None):
     ap.set_ylabel("phase [deg]")
     ap.set_xlabel("frequency [Hz]")
     tubes = " / ".join(fr.labels)
-    ag.set_title(f"{stage_title(fr.stage)} with {tubes}: frequency response\n"
+    ag.set_title(f"{fr.title} with {tubes}: frequency response\n"
                  "(linearised at the operating point; source 1 V behind Rs)", fontsize=10)
     for ax in axes:
         ax.grid(True, which="both", alpha=0.3)

@@ -161,3 +161,36 @@ def test_impossible_response_fields_name_the_field(fields, field):
     with pytest.raises(StageInputError) as e:
         SingleEndedOutput(b_plus=300.0, load=3000.0, **fields)
     assert e.value.field == field
+
+
+def test_cli_response_option_reports_and_plots_the_secondary_response(tmp_path):
+    # The CLI carries the same numbers as the engine (checked against ngspice above), plus a
+    # response plot; a coupling capacitor without a grid resistor is refused by option.
+    import json
+
+    from click.testing import CliRunner
+
+    from fitter import CAUTION
+    from fitter.card import save_card
+    from fitter.cli import main
+
+    card = save_card(tmp_path / "PA.koren.json", TA)
+    png = tmp_path / "resp.png"
+    args = ["output", "single-ended", "--tube", str(card), "--bplus", "300", "--load", "3k", "--rdc", "150",
+            "--bias", "-61", "--rs", "20k", "--cin", "220n", "--rg", "100k", "--l-primary", "12",
+            "--cgk", "9p", "--cga", "15p", "--cak", "4p"]
+    res = CliRunner().invoke(main, args + ["--response", "--json"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.output)["frequency_response"]
+    st, tubes = STAGES["se-fixed"]
+    fr = response(st, *tubes)
+    assert d["midband_gain"] == pytest.approx(fr.midband, rel=1e-12)
+    assert d["f_low_hz"] == pytest.approx(fr.f_low, rel=1e-12)
+    assert d["f_high_hz"] == pytest.approx(fr.f_high, rel=1e-12)
+    res = CliRunner().invoke(main, args + ["--response-plot", str(png)], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    assert "-3 dB high" in res.output and res.output.count(CAUTION) == 1
+    assert png.read_bytes()[:4] == b"\x89PNG"
+    res = CliRunner().invoke(main, args[:-12] + ["--cin", "1u"])
+    assert res.exit_code == 1 and res.output.strip().endswith(
+        "--rg: a coupling capacitor needs a grid resistor to hold the grid's DC voltage")

@@ -66,6 +66,13 @@ class FrequencyResponse:
     notes: list = field(default_factory=list)
 
     @property
+    def title(self) -> str:
+        """The stage's name: "Common-cathode stage", "Push-pull output stage", ..."""
+        if _is_output_stage(self.stage):
+            return f"{self.stage.kind.capitalize()} output stage"
+        return stage_title(self.stage)
+
+    @property
     def gain_db(self) -> np.ndarray:
         return 20 * np.log10(np.abs(self.gain))
 
@@ -80,7 +87,7 @@ class FrequencyResponse:
         out_stage = _is_output_stage(self.stage)
         return {
             "kind": self.stage.kind if out_stage else stage_kind(self.stage),
-            "title": f"{self.stage.kind.capitalize()} output stage" if out_stage else stage_title(self.stage),
+            "title": self.title,
             "tubes": list(self.labels),
             "output": self.output,
             "midband_gain": self.midband,
