@@ -95,7 +95,7 @@ def plot_sweep(sw, figures=None):
     for ax in axes[-1]:
         ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
     who = sw.units_text
-    fig.suptitle(f"{stage_title(sw.stage)}: sweep of {sw.field} with {who}"
+    fig.suptitle(f"{sw.title}: sweep of {sw.field} with {who}"
                  + (" (line: median, band: min..max)" if sw.n_units > 1 else ""), fontsize=10)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     fig.tight_layout(rect=(0, 0.03, 1, 0.97))

@@ -38,7 +38,7 @@ def _loads(text):
     return tuple(value(p.strip(), "--load-sweep", optional=False) for p in parts)
 
 
-_STAGE_OPTS = [
+_CORE_OPTS = [
     click.option("--bplus", default=None, help="Supply at the primary (centre tap for push-pull) [V]."),
     click.option("--load", default=None,
                  help="Reflected load [ohm] (push-pull: plate to plate); or give --turns."),
@@ -51,6 +51,20 @@ _STAGE_OPTS = [
     click.option("--unbypassed", is_flag=True, help="The cathode resistor has no bypass capacitor."),
     click.option("--pa-max", default=None, help="Plate dissipation limit of each tube [W]."),
     click.option("--grid-onset", default="0", show_default=True, help="Grid-cathode voltage where grid current starts [V]."),
+]
+_FREQ_OPTS = [
+    click.option("--cgk", default="0", show_default=True, help="Grid-cathode capacitance of each tube [F], e.g. 9p."),
+    click.option("--cga", default="0", show_default=True, help="Grid-plate capacitance of each tube [F]."),
+    click.option("--cak", default="0", show_default=True, help="Plate-cathode capacitance of each tube [F]."),
+    click.option("--rs", default="0", show_default=True, help="Resistance of the driving source [ohm]."),
+    click.option("--cin", default=None, help="Coupling capacitor to each grid [F] (needs --rg)."),
+    click.option("--rg", default=None, help="Grid resistor to AC ground [ohm]."),
+    click.option("--ck", default=None, help="Cathode bypass capacitor [F] (default: an ideal bypass)."),
+    click.option("--l-primary", default=None, help="Magnetising inductance of the whole primary [H]."),
+]
+#: the circuit's options (shared with ``platebook sweep single-ended|push-pull``)
+CIRCUIT_OPTS = _CORE_OPTS + _FREQ_OPTS
+_STAGE_OPTS = CIRCUIT_OPTS + [
     click.option("--thd", default="5%", show_default=True, help="THD at which the output power is reported."),
     click.option("--load-sweep", default=None,
                  help="Also sweep the reflected load over these values, e.g. 1.5k,2k,3k,5k,8k."),
@@ -60,14 +74,6 @@ _STAGE_OPTS = [
     click.option("--response", is_flag=True,
                  help="Also the frequency response at the secondary (1 Hz to 1 MHz, -3 dB points)."),
     click.option("--response-plot", default=None, help="Save the frequency response (gain, phase) to this PNG."),
-    click.option("--cgk", default="0", show_default=True, help="Grid-cathode capacitance of each tube [F], e.g. 9p."),
-    click.option("--cga", default="0", show_default=True, help="Grid-plate capacitance of each tube [F]."),
-    click.option("--cak", default="0", show_default=True, help="Plate-cathode capacitance of each tube [F]."),
-    click.option("--rs", default="0", show_default=True, help="Resistance of the driving source [ohm]."),
-    click.option("--cin", default=None, help="Coupling capacitor to each grid [F] (needs --rg)."),
-    click.option("--rg", default=None, help="Grid resistor to AC ground [ohm]."),
-    click.option("--ck", default=None, help="Cathode bypass capacitor [F] (default: an ideal bypass)."),
-    click.option("--l-primary", default=None, help="Magnetising inductance of the whole primary [H]."),
     click.option("--json", "json", is_flag=True, help="Print one JSON object."),
 ]
 
@@ -78,7 +84,8 @@ def _apply(opts, fn):
     return fn
 
 
-def _circuit(o) -> dict:
+def circuit_fields(o) -> dict:
+    """The stage's fields (SI) from the options of :data:`CIRCUIT_OPTS`."""
     c = {"b_plus": value(o["bplus"], "--bplus", optional=False), "load": value(o["load"], "--load"),
          "turns_ratio": value(o["turns"], "--turns"), "speaker": value(o["speaker"], "--speaker"),
          "r_primary": value(o["rdc"], "--rdc"), "grid_bias": value(o["bias"], "--bias"),
@@ -93,7 +100,7 @@ def _circuit(o) -> dict:
 def _run(kind, o, tubes):
     from ..service.output import run_output
 
-    spec = OutputSpec(kind, _circuit(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
+    spec = OutputSpec(kind, circuit_fields(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
                       level=value(o["level"], "--level", optional=False), errors=o["errors"],
                       response=o["response"] or o["response_plot"] is not None)
     try:
