@@ -149,7 +149,9 @@ def sweep_group():
     Current, voltage across and dissipation of each tube, gain, output impedance, headroom
     (where THD reaches --thd-limit, or grid current / cut-off), THD at --level,
     heater-cathode margin and the slew limit into --cload, for one tube or over a stock
-    (--spread: min / median / max).  Same circuit options as ``platebook stage``.
+    (--spread: min / median / max).  Same circuit options as ``platebook stage``; the
+    single-ended and push-pull output stages take those of ``platebook output`` and report
+    output power, THD, damping and dissipation instead.
     CAUTION: tube circuits work at lethal voltages; follow local codes and licensed practice.
     """
 
