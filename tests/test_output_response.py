@@ -36,6 +36,12 @@ STAGES = {
                                 c_in=0.22e-6, rg=100e3, l_primary=40.0, **CAPS), (TA, TB)),
     "pp-cathode-unbypassed": (PushPullOutput(b_plus=450.0, load=5000.0, r_primary=150.0, rk=650.0, bypassed=False,
                                              rs=10e3, c_in=0.1e-6, rg=220e3, l_primary=30.0, **CAPS), (TA, TB)),
+    "se-leakage-winding": (SingleEndedOutput(b_plus=300.0, load=3000.0, r_primary=150.0, grid_bias=-61.0, rs=2e3,
+                                             c_in=0.22e-6, rg=100e3, l_primary=12.0, l_leak=8e-3, c_winding=1e-9,
+                                             **CAPS), (TA,)),
+    "pp-leakage-winding": (PushPullOutput(b_plus=400.0, load=5000.0, r_primary=200.0, grid_bias=-84.0, rs=2e3,
+                                          c_in=0.22e-6, rg=100e3, l_primary=40.0, l_leak=15e-3, c_winding=0.5e-9,
+                                          **CAPS), (TA, TB)),
     "pp-cathode-ck": (PushPullOutput(b_plus=450.0, load=5000.0, r_primary=150.0, rk=650.0, ck=47e-6, rs=10e3,
                                      c_in=0.1e-6, rg=220e3, l_primary=30.0, **CAPS), (TA, TB)),
 }
@@ -70,15 +76,30 @@ def _ac_netlist(st, tubes):
             L.append(f"Ck k 0 {(ng.BIG_C if st.ck is None else st.ck)!r}")
     lm = 1e6 if st.l_primary is None else st.l_primary
     if se:
-        L += [f"VB bp 0 DC {st.b_plus!r}", f"Rdc bp ct {st.r_primary!r}",
+        # the winding resistance and the leakage inductance in series on the supply side of
+        # the transformer (the same series loop as ours), the winding capacitance at the plate
+        if st.l_leak > 0:
+            L += [f"Rdc bp ct1 {st.r_primary!r}", f"Lleak ct1 ct {st.l_leak!r}"]
+        else:
+            L.append(f"Rdc bp ct {st.r_primary!r}")
+        if st.c_winding > 0:
+            L.append(f"Cw plate 0 {st.c_winding!r}")
+        L += [f"VB bp 0 DC {st.b_plus!r}",
               f"LM ct plate {lm!r}", f"ES s2 0 ct plate {1 / n!r}", "VsS s2 sec DC 0",
               f"FS ct plate VsS {1 / n!r}", f"Rspk sec 0 {st.speaker!r}", "X1 plate g k PTA"]
         plates = [("1", "plate", "g")]
     else:
         r = st.r_primary / 2
+        # leakage: half in each side's series branch; winding capacitance plate to plate
+        if st.l_leak > 0:
+            L += [f"RA xa ya {r!r}", f"LA ya pa {st.l_leak / 2!r}", f"RB xb yb {r!r}", f"LB yb pb {st.l_leak / 2!r}"]
+        else:
+            L += [f"RA xa pa {r!r}", f"RB xb pb {r!r}"]
+        if st.c_winding > 0:
+            L.append(f"Cw pa pb {st.c_winding!r}")
         L += [f"VB ct 0 DC {st.b_plus!r}",
-              f"LM ct xa {lm / 4!r}", "FA ct xa VsB 1", f"FS ct xa VsS {2 / n!r}", f"RA xa pa {r!r}",
-              "EB xb2 ct ct xa 1", "VsB xb2 xb DC 0", f"RB xb pb {r!r}",
+              f"LM ct xa {lm / 4!r}", "FA ct xa VsB 1", f"FS ct xa VsS {2 / n!r}",
+              "EB xb2 ct ct xa 1", "VsB xb2 xb DC 0",
               f"ES s2 0 ct xa {2 / n!r}", "VsS s2 sec DC 0", f"Rspk sec 0 {st.speaker!r}",
               "XA pa ga k PTA", "XB pb gb k PTB"]
         plates = [("a", "pa", "ga"), ("b", "pb", "gb")]
@@ -143,9 +164,12 @@ def test_class_a_push_pull_is_a_generator_of_twice_mu_behind_twice_rp():
 def test_response_fields_leave_the_quasi_static_figures_unchanged():
     # Regression against the same stage without the response fields (the code's own figures):
     # the capacitances, source and inductance only shape the frequency response.
-    st, tubes = STAGES["pp-cathode-ck"]
     from dataclasses import replace
-    plain = replace(st, cgk=0.0, cga=0.0, cak=0.0, rs=0.0, c_in=None, rg=None, ck=None, l_primary=None)
+
+    st, tubes = STAGES["pp-cathode-ck"]
+    st = replace(st, l_leak=10e-3, c_winding=1e-9)
+    plain = replace(st, cgk=0.0, cga=0.0, cak=0.0, rs=0.0, c_in=None, rg=None, ck=None, l_primary=None,
+                    l_leak=0.0, c_winding=0.0)
     a, b = solve_output(st, *tubes), solve_output(plain, *tubes)
     assert a.figures["p_max"] == b.figures["p_max"] and a.figures["thd_max"] == b.figures["thd_max"]
 
@@ -194,3 +218,14 @@ def test_cli_response_option_reports_and_plots_the_secondary_response(tmp_path):
     res = CliRunner().invoke(main, args[:-12] + ["--cin", "1u"])
     assert res.exit_code == 1 and res.output.strip().endswith(
         "--rg: a coupling capacitor needs a grid resistor to hold the grid's DC voltage")
+
+
+def test_leakage_inductance_sets_the_high_corner():
+    # Textbook first-order corner: the leakage inductance in series with the source
+    # resistance rp + Rdc and the reflected load, f = (rp + Rdc + RL) / (2 pi L); no other
+    # capacitance or inductance given.
+    st = SingleEndedOutput(b_plus=300.0, load=3000.0, r_primary=150.0, grid_bias=-61.0, l_leak=20e-3)
+    fr = response(st, TA)
+    rp = fr.small_signal["tube"]["rp"]
+    assert fr.f_high == pytest.approx((rp + st.r_primary + st.reflected_load) / (2 * math.pi * st.l_leak), rel=1e-6)
+    assert fr.f_low is None

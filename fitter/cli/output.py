@@ -61,6 +61,9 @@ _FREQ_OPTS = [
     click.option("--rg", default=None, help="Grid resistor to AC ground [ohm]."),
     click.option("--ck", default=None, help="Cathode bypass capacitor [F] (default: an ideal bypass)."),
     click.option("--l-primary", default=None, help="Magnetising inductance of the whole primary [H]."),
+    click.option("--l-leak", default="0", show_default=True,
+                 help="Leakage inductance referred to the whole primary [H], e.g. 10m."),
+    click.option("--c-winding", default="0", show_default=True, help="Capacitance across the primary [F]."),
 ]
 #: the circuit's options (shared with ``platebook sweep single-ended|push-pull``)
 CIRCUIT_OPTS = _CORE_OPTS + _FREQ_OPTS
@@ -93,7 +96,8 @@ def circuit_fields(o) -> dict:
          "pa_max": value(o["pa_max"], "--pa-max"), "grid_onset": value(o["grid_onset"], "--grid-onset"),
          "cgk": value(o["cgk"], "--cgk"), "cga": value(o["cga"], "--cga"), "cak": value(o["cak"], "--cak"),
          "rs": value(o["rs"], "--rs"), "c_in": value(o["cin"], "--cin"), "rg": value(o["rg"], "--rg"),
-         "ck": value(o["ck"], "--ck"), "l_primary": value(o["l_primary"], "--l-primary")}
+         "ck": value(o["ck"], "--ck"), "l_primary": value(o["l_primary"], "--l-primary"),
+         "l_leak": value(o["l_leak"], "--l-leak"), "c_winding": value(o["c_winding"], "--c-winding")}
     return c
 
 

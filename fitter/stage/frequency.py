@@ -227,7 +227,9 @@ def output_stage_circuit(stage, small_signal: dict) -> tuple[list, str]:
     ``"nsrc"``) through ``rs`` and ``c_in``, with ``rg`` to AC ground.  The transformer is
     ideal: the primary's DC resistance in series, the reflected load across the primary
     (single-ended) or plate to plate with the centre tap held at AC ground (push-pull, a
-    ``"T"`` element), and the magnetising inductance ``l_primary`` across the whole primary.
+    ``"T"`` element), the magnetising inductance ``l_primary`` across the whole primary, the
+    leakage inductance ``l_leak`` in series (half in each side, push-pull) and the winding
+    capacitance ``c_winding`` across the primary at the plates.
     The output is the secondary voltage (the primary's over the turns ratio), positive when
     the plate (A) swings down, as :func:`fitter.stage.output.waveforms` counts ``v_load``;
     it is read off by a probe (a unit transconductance into 1 ohm) that loads nothing.
@@ -257,10 +259,16 @@ def output_stage_circuit(stage, small_signal: dict) -> tuple[list, str]:
             el.append(("C", "cathode", "0", st.ck))
     if se:
         _tube(el, "plate", "grid", "cathode", st, **small_signal["tube"])
+        if st.c_winding > 0:
+            el.append(("C", "plate", "0", st.c_winding))
         if st.r_primary > 0:
-            el.append(("R", "plate", "x", st.r_primary))
+            el.append(("R", "plate", "w", st.r_primary))
         else:
-            nodes.join("x", "plate")
+            nodes.join("w", "plate")
+        if st.l_leak > 0:
+            el.append(("L", "w", "x", st.l_leak))
+        else:
+            nodes.join("x", "w")
         el.append(("R", "x", "0", st.reflected_load))
         if st.l_primary is not None:
             el.append(("L", "x", "0", st.l_primary))
@@ -269,9 +277,15 @@ def output_stage_circuit(stage, small_signal: dict) -> tuple[list, str]:
         for tag, pos in (("_a", "A"), ("_b", "B")):
             _tube(el, "plate" + tag, "grid" + tag, "cathode", st, **small_signal[pos])
             if st.r_primary > 0:
-                el.append(("R", "plate" + tag, "x" + tag, st.r_primary / 2.0))
+                el.append(("R", "plate" + tag, "w" + tag, st.r_primary / 2.0))
             else:
-                nodes.join("x" + tag, "plate" + tag)
+                nodes.join("w" + tag, "plate" + tag)
+            if st.l_leak > 0:
+                el.append(("L", "w" + tag, "x" + tag, st.l_leak / 2.0))
+            else:
+                nodes.join("x" + tag, "w" + tag)
+        if st.c_winding > 0:
+            el.append(("C", "plate_a", "plate_b", st.c_winding))
         el.append(("R", "x_a", "x_b", st.reflected_load))
         if st.l_primary is not None:
             el.append(("L", "x_a", "x_b", st.l_primary))
@@ -436,7 +450,7 @@ def _midband(stage, ss):
         # coupling and bypass capacitors short (ck None with bypassed: an ideal bypass), tube
         # capacitances open, the magnetising inductance open
         return output_stage_circuit(replace(stage, c_in=None, ck=None, cgk=0.0, cga=0.0, cak=0.0,
-                                            l_primary=None), ss)
+                                            l_primary=None, l_leak=0.0, c_winding=0.0), ss)
     kw = dict(c_in=None, c_out=None, cgk=0.0, cga=0.0, cak=0.0, c_load=0.0)
     if isinstance(stage, Stack):
         kw["c_top"] = None

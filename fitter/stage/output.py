@@ -75,7 +75,7 @@ _RANGES = (("b_plus", 1e-3, 1e5, "V"), ("load", 1.0, 1e8, "ohm"), ("turns_ratio"
            ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"),
            ("cgk", 0.0, 1e-6, "F"), ("cga", 0.0, 1e-6, "F"), ("cak", 0.0, 1e-6, "F"), ("rs", 0.0, 1e8, "ohm"),
            ("c_in", 1e-15, 1.0, "F"), ("rg", 1.0, 1e9, "ohm"), ("ck", 1e-12, 10.0, "F"),
-           ("l_primary", 1e-3, 1e5, "H"))
+           ("l_primary", 1e-3, 1e5, "H"), ("l_leak", 0.0, 100.0, "H"), ("c_winding", 0.0, 1e-6, "F"))
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -126,6 +126,12 @@ class _OutputCommon:
     l_primary : float or None
         Magnetising inductance of the whole primary [H] (the low-frequency corner); None:
         an ideal transformer.
+    l_leak : float
+        Leakage inductance referred to the whole primary [H], in series with the reflected
+        load (push-pull: half in each side); 0: none.
+    c_winding : float
+        Capacitance across the primary [F] (single-ended plate to AC ground, push-pull plate
+        to plate); 0: none.
     """
 
     b_plus: float
@@ -146,6 +152,8 @@ class _OutputCommon:
     rg: float | None = None
     ck: float | None = None
     l_primary: float | None = None
+    l_leak: float = 0.0
+    c_winding: float = 0.0
 
     def __post_init__(self):
         owner = type(self).__name__
@@ -159,7 +167,7 @@ class _OutputCommon:
         _check_positive(self, "pa_max", optional=True)
         _check_number(self, "grid_onset")
         _check_bool(self, "bypassed")
-        for name in ("cgk", "cga", "cak", "rs"):
+        for name in ("cgk", "cga", "cak", "rs", "l_leak", "c_winding"):
             _check_positive(self, name, allow_zero=True)
         for name in ("c_in", "rg", "ck", "l_primary"):
             _check_positive(self, name, optional=True)
