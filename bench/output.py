@@ -2,7 +2,8 @@
 
 Goals (issue 11, section 6): a single-ended or push-pull solve with all figures <= 5 ms; a
 30-level power sweep <= 0.2 s.  Also timed: the reflected-load sweep (20 loads) and the
-push-pull matching figures (PushPullSlot) of a 200-unit stock.
+push-pull matching figures (PushPullSlot) of a 200-unit stock, and a 20-point component
+sweep of the reflected load over 20 units (fitter.stage.sweeps with an output stage).
 
 The tubes are invented units from Koren's 300B set (from memory of Koren's table, Glass
 Audio 8(5), 1996, rev. 2003) with an invented spread.
@@ -78,6 +79,12 @@ def main():
     stock = [FittedTriode("koren", dict(P300B, kg1=float(1550 * np.exp(rng.normal(0, 0.05))),
                                         kp=float(65 * np.exp(rng.normal(0, 0.2)))), tube=f"S{i:03d}")
              for i in range(200)]
+    from fitter.stage.sweeps import component_sweep
+
+    st = cases[0][1]
+    med, _ = timed(lambda: component_sweep(st, "load", np.linspace(2000, 6000, 20), [(u,) for u in stock[:20]],
+                                           thd_limit=0.05, level=1.0), 1)
+    print(f"component sweep, 20 loads x 20 units (single-ended): {1e3 * med:7.1f} ms")
     pos = PushPullSlot(cases[3][1], a, 0.8)
     med, _ = timed(lambda: unit_figures(stock, pos), 3)
     print(f"push-pull matching figures, 200 units:            {1e3 * med:7.1f} ms")

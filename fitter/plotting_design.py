@@ -47,7 +47,7 @@ def plot_response(fr, axes=None):
     ap.set_ylabel("phase [deg]")
     ap.set_xlabel("frequency [Hz]")
     tubes = " / ".join(fr.labels)
-    ag.set_title(f"{stage_title(fr.stage)} with {tubes}: frequency response\n"
+    ag.set_title(f"{fr.title} with {tubes}: frequency response\n"
                  "(linearised at the operating point; source 1 V behind Rs)", fontsize=10)
     for ax in axes:
         ax.grid(True, which="both", alpha=0.3)
@@ -95,7 +95,7 @@ def plot_sweep(sw, figures=None):
     for ax in axes[-1]:
         ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
     who = sw.units_text
-    fig.suptitle(f"{stage_title(sw.stage)}: sweep of {sw.field} with {who}"
+    fig.suptitle(f"{sw.title}: sweep of {sw.field} with {who}"
                  + (" (line: median, band: min..max)" if sw.n_units > 1 else ""), fontsize=10)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     fig.tight_layout(rect=(0, 0.03, 1, 0.97))

@@ -490,3 +490,31 @@ def test_output_impedance_matches_ngspice(key):
     (ac,) = ng.run(circuit, ["ac lin 1 1000 1000"], ["v(sec)"])
     z = abs(complex(ac["v(sec)"][0]))
     assert z == pytest.approx(res.figures["z_out"], rel=1e-6)  # measured within 1e-8
+
+
+def _numbers(d, path=""):
+    if isinstance(d, dict):
+        for k, v in d.items():
+            yield from _numbers(v, f"{path}.{k}")
+    elif isinstance(d, list):
+        for i, v in enumerate(d):
+            yield from _numbers(v, f"{path}[{i}]")
+    elif isinstance(d, float):
+        yield path, d
+
+
+@pytest.mark.parametrize("key", sorted(NG_CASES))
+def test_fast_solve_paths_give_the_plain_results(key, monkeypatch):
+    # The speed-ups (one model call for both tubes, each sine value solved once, solves
+    # started from the transfer already solved) change nothing beyond the iteration's
+    # tolerance: every number of the result within 1e-9 relative of the plain path's
+    # (the same engine, the reference being its straightforward form).
+    import fitter.stage.output as out
+
+    st, tubes, _ = NG_CASES[key]
+    fast = dict(_numbers(solve_output(st, *tubes).to_dict()))
+    monkeypatch.setattr(out, "_FAST", False)
+    plain = dict(_numbers(solve_output(st, *tubes).to_dict()))
+    assert fast.keys() == plain.keys()
+    for k, v in plain.items():
+        assert fast[k] == pytest.approx(v, rel=1e-9, abs=1e-300), k

@@ -20,18 +20,20 @@ from .stage import _COMMON, _KIND, _apply, _cards, _circuit, _fail, _pct, _run, 
 
 def _vary(text: str, kind: str):
     """``NAME=START:STOP[:POINTS][:log]`` -> (field, start, stop, points, log)."""
+    from ..service.output import OUTPUT_KINDS
     from ..service.stages import KINDS
 
     if not isinstance(text, str) or "=" not in text:
         _fail(f"--vary: give NAME=START:STOP[:POINTS][:log], e.g. ra=47k:220k:20, got {text!r}")
     name, rng = text.split("=", 1)
     name = name.strip().lstrip("-")
-    fields = KINDS[kind].__dataclass_fields__
+    fields = {**KINDS, **OUTPUT_KINDS}[kind].__dataclass_fields__
+    not_numeric = ("top_grid", "output", "bypassed")
     # the name as typed after --vary: the option without dashes (bplus, r-mid) or the field
     by_option = {OPTIONS[f][2:]: f for f in fields}
     fieldname = name if name in fields else by_option.get(name)
-    if fieldname not in fields or fieldname in ("top_grid", "output"):
-        numeric = sorted(OPTIONS[f][2:] for f in fields if f not in ("top_grid", "output"))
+    if fieldname not in fields or fieldname in not_numeric:
+        numeric = sorted(OPTIONS[f][2:] for f in fields if f not in not_numeric)
         _fail(f"--vary: a {kind} stage has no component or supply {name!r}; choose one of {', '.join(numeric)}")
     parts = rng.split(":")
     log = False
@@ -147,7 +149,9 @@ def sweep_group():
     Current, voltage across and dissipation of each tube, gain, output impedance, headroom
     (where THD reaches --thd-limit, or grid current / cut-off), THD at --level,
     heater-cathode margin and the slew limit into --cload, for one tube or over a stock
-    (--spread: min / median / max).  Same circuit options as ``platebook stage``.
+    (--spread: min / median / max).  Same circuit options as ``platebook stage``; the
+    single-ended and push-pull output stages take those of ``platebook output`` and report
+    output power, THD, damping and dissipation instead.
     CAUTION: tube circuits work at lethal voltages; follow local codes and licensed practice.
     """
 
@@ -206,3 +210,69 @@ def _make_sweep_command(kind):
 for _k in _KIND:
     _make_response_command(_k)
     _make_sweep_command(_k)
+
+
+def _make_output_sweep_command(kind):
+    from .output import CIRCUIT_OPTS, circuit_fields
+
+    se = kind == "single-ended"
+
+    def command(**o):
+        from ..service.design import stage_sweep
+
+        if o["vary"] is None:
+            _fail("--vary: name what to sweep, e.g. --vary load=2k:6k:9")
+        fieldname, start, stop, points, log = _vary(o["vary"], kind)
+        o = dict(o)
+        # the swept field's own option is replaced by the range (its first value builds the stage)
+        o[OPTIONS[fieldname][2:].replace("-", "_")] = repr(start)
+        circuit = {k: v for k, v in circuit_fields(o).items() if k != fieldname}
+        keys = (("tube", "--tube"),) if se else (("tube_a", "--tube-a"), ("tube_b", "--tube-b"))
+        if o["spread"]:
+            ignored = [opt for key, opt in keys if o.get(key) is not None]
+            if ignored:
+                _fail(f"--spread takes its tubes from {o['spread']}; leave out {', '.join(ignored)}")
+            cards = {}
+        else:
+            for key, opt in keys:
+                if o[key] is None:
+                    _fail(f"{opt}: give the model card" + ("" if se else "s of both tubes (--tube-a and --tube-b)")
+                          + " or a stock with --spread")
+            cards = {key: o[key] for key, _ in keys}
+        spec = SweepSpec(kind, fieldname, start, stop, points, log, circuit, **cards, cards=o["spread"],
+                         thd_limit=_pct(o["thd_limit"], "--thd-limit"), level=_val(o["level"], "--level"))
+        sw = _run(stage_sweep, spec)
+        if o["plot"]:
+            from ..plotting_design import save_sweep_plot
+
+            written = _write_plot(save_sweep_plot, sw, o["plot"])
+        if o["json"]:
+            click.echo(json.dumps(sw.to_dict(), allow_nan=False))
+        else:
+            click.echo(sw.report(lambda f: OPTIONS.get(f, f)))
+            if o["plot"]:
+                click.echo(f"\nsweep plot: {written}")
+
+    command.__doc__ = (f"A {kind} output stage (the options of ``platebook output {kind}``) with one field swept: "
+                       "idle current, voltage and dissipation of each tube, the largest output, the output at "
+                       "--thd-limit, THD at --level [W], output impedance, damping factor, dissipation against "
+                       "--pa-max" + ("" if se else ", the DC imbalance") + ".\n\n--vary NAME=START:STOP[:POINTS][:log] "
+                       "(NAME as the option, e.g. load, bplus, bias, rk, rdc); one JSON object with --json.")
+    tubes = ([click.option("--tube", default=None, help="Model card (JSON) of the tube.")] if se else
+             [click.option("--tube-a", default=None, help="Model card (JSON) of tube A."),
+              click.option("--tube-b", default=None, help="Model card (JSON) of tube B.")])
+    extra = [
+        click.option("--vary", default=None, help="What to sweep: NAME=START:STOP[:POINTS][:log], e.g. load=2k:6k:9."),
+        click.option("--spread", default=None,
+                     help="Folder of model cards, or a quoted glob: min/median/max over those units"
+                     + ("." if se else " (paired in their order: 1+2, 3+4 ...)")),
+        click.option("--thd-limit", default="5%", show_default=True, help="THD at which the output power is reported."),
+        click.option("--level", default=None, help="Output power [W] for the THD column."),
+        click.option("--plot", default=None, help="Save the figures against the swept value to this PNG."),
+        click.option("--json", "json", is_flag=True, help="Print one JSON object."),
+    ]
+    return sweep_group.command(kind)(_apply(tubes + CIRCUIT_OPTS + extra, command))
+
+
+for _k in ("single-ended", "push-pull"):
+    _make_output_sweep_command(_k)

@@ -45,6 +45,7 @@ OPTIONS: dict[str, str] = {
     "load": "--load", "turns_ratio": "--turns", "speaker": "--speaker", "r_primary": "--rdc",
     "grid_bias": "--bias", "thd": "--thd", "loads": "--load-sweep",
     "tube_a": "--tube-a", "tube_b": "--tube-b", "push_pull": "--push-pull", "reference": "--reference",
+    "l_primary": "--l-primary", "l_leak": "--l-leak", "c_winding": "--c-winding",
 }
 
 

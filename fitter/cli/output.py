@@ -38,7 +38,7 @@ def _loads(text):
     return tuple(value(p.strip(), "--load-sweep", optional=False) for p in parts)
 
 
-_STAGE_OPTS = [
+_CORE_OPTS = [
     click.option("--bplus", default=None, help="Supply at the primary (centre tap for push-pull) [V]."),
     click.option("--load", default=None,
                  help="Reflected load [ohm] (push-pull: plate to plate); or give --turns."),
@@ -51,12 +51,32 @@ _STAGE_OPTS = [
     click.option("--unbypassed", is_flag=True, help="The cathode resistor has no bypass capacitor."),
     click.option("--pa-max", default=None, help="Plate dissipation limit of each tube [W]."),
     click.option("--grid-onset", default="0", show_default=True, help="Grid-cathode voltage where grid current starts [V]."),
+]
+_FREQ_OPTS = [
+    click.option("--cgk", default="0", show_default=True, help="Grid-cathode capacitance of each tube [F], e.g. 9p."),
+    click.option("--cga", default="0", show_default=True, help="Grid-plate capacitance of each tube [F]."),
+    click.option("--cak", default="0", show_default=True, help="Plate-cathode capacitance of each tube [F]."),
+    click.option("--rs", default="0", show_default=True, help="Resistance of the driving source [ohm]."),
+    click.option("--cin", default=None, help="Coupling capacitor to each grid [F] (needs --rg)."),
+    click.option("--rg", default=None, help="Grid resistor to AC ground [ohm]."),
+    click.option("--ck", default=None, help="Cathode bypass capacitor [F] (default: an ideal bypass)."),
+    click.option("--l-primary", default=None, help="Magnetising inductance of the whole primary [H]."),
+    click.option("--l-leak", default="0", show_default=True,
+                 help="Leakage inductance referred to the whole primary [H], e.g. 10m."),
+    click.option("--c-winding", default="0", show_default=True, help="Capacitance across the primary [F]."),
+]
+#: the circuit's options (shared with ``platebook sweep single-ended|push-pull``)
+CIRCUIT_OPTS = _CORE_OPTS + _FREQ_OPTS
+_STAGE_OPTS = CIRCUIT_OPTS + [
     click.option("--thd", default="5%", show_default=True, help="THD at which the output power is reported."),
     click.option("--load-sweep", default=None,
                  help="Also sweep the reflected load over these values, e.g. 1.5k,2k,3k,5k,8k."),
     click.option("--level", default="1", show_default=True, help="Output power for the sweep's THD column [W]."),
     click.option("--errors", is_flag=True, help="Error bars of the main figures from the cards' covariance."),
     click.option("--plot", default=None, help="Save load lines and power/THD to this PNG."),
+    click.option("--response", is_flag=True,
+                 help="Also the frequency response at the secondary (1 Hz to 1 MHz, -3 dB points)."),
+    click.option("--response-plot", default=None, help="Save the frequency response (gain, phase) to this PNG."),
     click.option("--json", "json", is_flag=True, help="Print one JSON object."),
 ]
 
@@ -67,20 +87,26 @@ def _apply(opts, fn):
     return fn
 
 
-def _circuit(o) -> dict:
+def circuit_fields(o) -> dict:
+    """The stage's fields (SI) from the options of :data:`CIRCUIT_OPTS`."""
     c = {"b_plus": value(o["bplus"], "--bplus", optional=False), "load": value(o["load"], "--load"),
          "turns_ratio": value(o["turns"], "--turns"), "speaker": value(o["speaker"], "--speaker"),
          "r_primary": value(o["rdc"], "--rdc"), "grid_bias": value(o["bias"], "--bias"),
          "rk": value(o["rk"], "--rk"), "bypassed": not o["unbypassed"],
-         "pa_max": value(o["pa_max"], "--pa-max"), "grid_onset": value(o["grid_onset"], "--grid-onset")}
+         "pa_max": value(o["pa_max"], "--pa-max"), "grid_onset": value(o["grid_onset"], "--grid-onset"),
+         "cgk": value(o["cgk"], "--cgk"), "cga": value(o["cga"], "--cga"), "cak": value(o["cak"], "--cak"),
+         "rs": value(o["rs"], "--rs"), "c_in": value(o["cin"], "--cin"), "rg": value(o["rg"], "--rg"),
+         "ck": value(o["ck"], "--ck"), "l_primary": value(o["l_primary"], "--l-primary"),
+         "l_leak": value(o["l_leak"], "--l-leak"), "c_winding": value(o["c_winding"], "--c-winding")}
     return c
 
 
 def _run(kind, o, tubes):
     from ..service.output import run_output
 
-    spec = OutputSpec(kind, _circuit(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
-                      level=value(o["level"], "--level", optional=False), errors=o["errors"])
+    spec = OutputSpec(kind, circuit_fields(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
+                      level=value(o["level"], "--level", optional=False), errors=o["errors"],
+                      response=o["response"] or o["response_plot"] is not None)
     try:
         run = run_output(spec)
     except StageSolveError as e:
@@ -99,12 +125,26 @@ def _run(kind, o, tubes):
             fail(f"--plot: {e}")
         except OSError as e:
             fail(f"--plot: cannot write {shown(str(o['plot']))}: {e.strerror or e}")
+    response_written = None
+    if o["response_plot"]:
+        from ..outfiles import OutputError
+        from ..plotting_design import save_response_plot
+        from ..text import shown
+
+        try:
+            response_written = shown(str(save_response_plot(run.frequency, o["response_plot"])))
+        except OutputError as e:
+            fail(f"--response-plot: {e}")
+        except OSError as e:
+            fail(f"--response-plot: cannot write {shown(str(o['response_plot']))}: {e.strerror or e}")
     if o["json"]:
         click.echo(json.dumps(run.to_dict(), allow_nan=False))
     else:
         click.echo(run.report())
         if plot_written:
             click.echo(f"\nplot: {plot_written}")
+        if response_written:
+            click.echo(f"response plot: {response_written}")
 
 
 @main.group("output")

@@ -56,6 +56,9 @@ class SweepSpec:
     thd_limit: float = 0.01
     level: float | None = None
     slew_vpeak: float = 10.0
+    #: the push-pull output stage's tubes (``kind`` ``"push-pull"``; ``"single-ended"`` takes ``tube``)
+    tube_a: str | None = None
+    tube_b: str | None = None
 
 
 def stage_response(spec: ResponseSpec):
@@ -86,7 +89,10 @@ def stage_sweep(spec: SweepSpec):
     range's first value to build the stage); a value it has there is replaced.
     """
     from ..stage.sweeps import component_sweep, sweep_values
+    from .output import OUTPUT_KINDS
 
+    if spec.kind in OUTPUT_KINDS:
+        return _output_sweep(spec)
     cls = KINDS.get(spec.kind)
     if cls is None:
         build_stage(spec.kind, spec.circuit)  # raises the unknown-kind error
@@ -131,3 +137,56 @@ def stage_sweep(spec: SweepSpec):
         pairing = ""
     return component_sweep(st, spec.vary, values, cases, log=spec.log, thd_limit=spec.thd_limit, level=spec.level,
                            slew_vpeak=spec.slew_vpeak, pairing=pairing)
+
+
+def _output_sweep(spec: SweepSpec):
+    """:func:`stage_sweep` of an output stage (:mod:`fitter.service.output`): ``level`` is an
+    output power [W]; over a stock, a push-pull pairs the cards in their order (1+2, 3+4 ...,
+    as a box of tubes would be used unsorted; an odd one left out)."""
+    from ..stage import StageInputError
+    from ..stage.sweeps import component_sweep, sweep_values
+    from .output import OUTPUT_KINDS, _tubes as output_tubes, build_output
+
+    cls = OUTPUT_KINDS[spec.kind]
+    numeric = [f for f in cls.__dataclass_fields__ if f != "bypassed"]
+    if not isinstance(spec.vary, str) or spec.vary not in numeric:
+        raise SpecError(f"a {spec.kind} stage has no field {spec.vary!r}; fields that can be swept: "
+                        + ", ".join(numeric), field="vary")
+    try:
+        values = sweep_values(spec.start, spec.stop, spec.points, spec.log)
+    except StageInputError as e:
+        raise SpecError(f"{spec.vary}, {e.field} of the range: {e.message}", field="vary") from None
+    circuit = dict(spec.circuit)
+    if spec.vary == "load":
+        circuit["turns_ratio"] = None
+    elif spec.vary == "turns_ratio":
+        circuit["load"] = None
+    st = None
+    for v in values:
+        try:
+            built = build_output(spec.kind, {**circuit, spec.vary: float(v)})
+        except StageInputError as e:
+            if e.field != spec.vary:
+                raise
+            raise SpecError(f"{spec.vary} = {float(v):g} in the range: {e.message}", field="vary") from None
+        st = st or built
+    pairing = ""
+    if spec.cards is not None:
+        given = [k for k in ("tube", "tube_a", "tube_b", "bottom", "top") if getattr(spec, k) is not None]
+        if given:
+            raise SpecError("a sweep over a stock takes its tubes from the cards; leave out the tube cards",
+                            field=given[0])
+        units = _spread_units(spec.cards)
+        if spec.kind == "single-ended":
+            cases = [(u,) for u in units]
+        else:
+            if len(units) < 2:
+                raise SpecError("a push-pull over a stock needs at least two units", field="cards")
+            cases = [(units[i], units[i + 1]) for i in range(0, len(units) - 1, 2)]
+            pairing = "cards paired in their order" + (", one left out" if len(units) % 2 else "")
+    else:
+        from .output import OutputSpec
+
+        cases = [output_tubes(OutputSpec(spec.kind, {}, tube=spec.tube, tube_a=spec.tube_a, tube_b=spec.tube_b))]
+    return component_sweep(st, spec.vary, values, cases, log=spec.log, thd_limit=spec.thd_limit, level=spec.level,
+                           pairing=pairing)

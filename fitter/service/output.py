@@ -61,6 +61,9 @@ class OutputSpec:
     loads: tuple | None = None
     level: float = 1.0
     errors: bool = False
+    #: also the frequency response (gain and phase at the secondary, 1 Hz .. 1 MHz)
+    response: bool = False
+    points_per_decade: int = 40
 
 
 @dataclass
@@ -69,11 +72,17 @@ class OutputRun:
 
     result: OutputResult
     sweep: LoadSweep | None = None
+    #: the :class:`~fitter.stage.frequency.FrequencyResponse`, when asked for
+    frequency: object | None = None
 
     def to_dict(self) -> dict:
         d = self.result.to_dict()
         if self.sweep is not None:
             d["load_sweep"] = self.sweep.to_dict()
+        if self.frequency is not None:
+            fr = self.frequency.to_dict()
+            d["frequency_response"] = {k: fr[k] for k in ("output", "midband_gain", "midband_gain_db", "f_low_hz",
+                                                          "f_high_hz", "points", "notes")}
         return d
 
     def report(self) -> str:
@@ -84,7 +93,30 @@ class OutputRun:
 
             head = text[: -len(CAUTION)].rstrip("\n") if text.endswith(CAUTION) else text
             text = head + "\n\nReflected-load sweep\n" + self.sweep.report()
+        if self.frequency is not None:
+            from .. import CAUTION
+
+            head = text[: -len(CAUTION)].rstrip("\n") if text.endswith(CAUTION) else text
+            text = head + "\n\n" + _response_text(self.frequency) + "\n" + CAUTION
         return text
+
+
+def _response_text(fr) -> str:
+    from ..stage.results import _eng
+
+    d = fr.to_dict()
+    L = ["Frequency response at the secondary (linearised at the operating point; tube capacitances, source, "
+         "coupling and bypass capacitors, ideal transformer with its primary inductance)",
+         f"  mid-band gain   {d['midband_gain']:.4g} ({d['midband_gain_db']:.2f} dB), secondary volts per source volt"
+         if d["midband_gain"] else "  mid-band gain   0",
+         f"  -3 dB low       {_eng(fr.f_low, 'Hz') if fr.f_low else 'none (no primary inductance or coupling capacitor given)'}",
+         f"  -3 dB high      {_eng(fr.f_high, 'Hz') if fr.f_high else 'none (no capacitance given)'}",
+         f"  {'f':>10} {'gain dB':>9} {'phase deg':>10}"]
+    for p in d["points"][:: max(1, len(d["points"]) // 12)]:
+        L.append(f"  {_eng(p['f_hz'], 'Hz').replace(' ', ''):>10} {p['gain_db']:9.2f} {p['phase_deg']:10.1f}")
+    for n in fr.notes:
+        L.append("  ! " + n)
+    return "\n".join(L)
 
 
 def build_output(kind: str, circuit: Mapping):
@@ -124,4 +156,9 @@ def run_output(spec: OutputSpec) -> OutputRun:
                 isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) and x > 0 for x in loads):
             raise SpecError("must be 1 to 200 positive resistances", field="loads")
         sweep = load_sweep(stage, *tubes, loads=loads, thd=float(spec.thd), level=spec.level)
-    return OutputRun(res, sweep)
+    fr = None
+    if spec.response:
+        from ..stage.frequency import response
+
+        fr = response(stage, *tubes, points_per_decade=spec.points_per_decade)
+    return OutputRun(res, sweep, fr)

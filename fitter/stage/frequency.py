@@ -18,7 +18,7 @@ short at every signal frequency (direct coupling, or the solver's "battery" view
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
@@ -26,7 +26,7 @@ from ..triode import FittedTriode
 from .circuits import CathodeFollower, CommonCathode, Stack, StageInputError, output_node, stage_kind, stage_title, tube_positions
 from .solver import _check_triodes
 
-__all__ = ["FrequencyResponse", "linear_circuit", "response", "F_START", "F_STOP"]
+__all__ = ["FrequencyResponse", "linear_circuit", "output_stage_circuit", "response", "F_START", "F_STOP"]
 
 F_START = 1.0  # [Hz]
 F_STOP = 1e6  # [Hz]
@@ -66,6 +66,13 @@ class FrequencyResponse:
     notes: list = field(default_factory=list)
 
     @property
+    def title(self) -> str:
+        """The stage's name: "Common-cathode stage", "Push-pull output stage", ..."""
+        if _is_output_stage(self.stage):
+            return f"{self.stage.kind.capitalize()} output stage"
+        return stage_title(self.stage)
+
+    @property
     def gain_db(self) -> np.ndarray:
         return 20 * np.log10(np.abs(self.gain))
 
@@ -77,9 +84,10 @@ class FrequencyResponse:
     def to_dict(self) -> dict:
         from .. import CAUTION
 
+        out_stage = _is_output_stage(self.stage)
         return {
-            "kind": stage_kind(self.stage),
-            "title": stage_title(self.stage),
+            "kind": self.stage.kind if out_stage else stage_kind(self.stage),
+            "title": self.title,
             "tubes": list(self.labels),
             "output": self.output,
             "midband_gain": self.midband,
@@ -89,7 +97,7 @@ class FrequencyResponse:
             "small_signal": {p: {"gm_ma_per_v": 1e3 * v["gm"], "rp_ohm": v["rp"]} for p, v in self.small_signal.items()},
             "points": [{"f_hz": float(f), "gain_db": float(g), "phase_deg": float(p)}
                        for f, g, p in zip(self.freq, self.gain_db, self.phase_deg)],
-            "circuit": self.stage.to_dict(),
+            "circuit": asdict(self.stage) if out_stage else self.stage.to_dict(),
             "notes": list(self.notes),
             "caution": CAUTION,
         }
@@ -204,6 +212,111 @@ def linear_circuit(stage, small_signal: dict) -> tuple[list, str]:
     return res, nodes.find(out)
 
 
+def _is_output_stage(stage) -> bool:
+    from .output import PushPullOutput, SingleEndedOutput
+
+    return isinstance(stage, (SingleEndedOutput, PushPullOutput))
+
+
+def output_stage_circuit(stage, small_signal: dict) -> tuple[list, str]:
+    """The small-signal circuit of an output stage (:mod:`fitter.stage.output`): (elements,
+    output node ``"sec"``), nodes already joined.
+
+    Each tube is gm, rp (``small_signal[position]``) with its capacitances; the grid is fed
+    from the generator (push-pull: grid A in phase, grid B from the antiphase generator
+    ``"nsrc"``) through ``rs`` and ``c_in``, with ``rg`` to AC ground.  The transformer is
+    ideal: the primary's DC resistance in series, the reflected load across the primary
+    (single-ended) or plate to plate with the centre tap held at AC ground (push-pull, a
+    ``"T"`` element), the magnetising inductance ``l_primary`` across the whole primary, the
+    leakage inductance ``l_leak`` in series (half in each side, push-pull) and the winding
+    capacitance ``c_winding`` across the primary at the plates.
+    The output is the secondary voltage (the primary's over the turns ratio), positive when
+    the plate (A) swings down, as :func:`fitter.stage.output.waveforms` counts ``v_load``;
+    it is read off by a probe (a unit transconductance into 1 ohm) that loads nothing.
+    """
+    el = []
+    nodes = _Nodes()
+    st = stage
+    n = st.ratio
+    se = st.kind == "single-ended"
+    sides = (("", "src"),) if se else (("_a", "src"), ("_b", "nsrc"))
+    for tag, gen in sides:
+        if st.rs > 0:
+            el.append(("R", gen, "in" + tag, st.rs))
+        else:
+            nodes.join("in" + tag, gen)
+        if st.c_in is not None:
+            el.append(("C", "in" + tag, "grid" + tag, st.c_in))
+        else:
+            nodes.join("grid" + tag, "in" + tag)
+        if st.rg is not None:
+            el.append(("R", "grid" + tag, "0", st.rg))
+    if st.rk is None or (st.bypassed and st.ck is None):
+        nodes.join("cathode", "0")
+    else:
+        el.append(("R", "cathode", "0", st.rk))
+        if st.ck is not None:
+            el.append(("C", "cathode", "0", st.ck))
+    if se:
+        _tube(el, "plate", "grid", "cathode", st, **small_signal["tube"])
+        if st.c_winding > 0:
+            el.append(("C", "plate", "0", st.c_winding))
+        if st.r_primary > 0:
+            el.append(("R", "plate", "w", st.r_primary))
+        else:
+            nodes.join("w", "plate")
+        if st.l_leak > 0:
+            el.append(("L", "w", "x", st.l_leak))
+        else:
+            nodes.join("x", "w")
+        el.append(("R", "x", "0", st.reflected_load))
+        if st.l_primary is not None:
+            el.append(("L", "x", "0", st.l_primary))
+        el.append(("G", "0", "sec", "0", "x", 1.0 / n))
+    else:
+        for tag, pos in (("_a", "A"), ("_b", "B")):
+            _tube(el, "plate" + tag, "grid" + tag, "cathode", st, **small_signal[pos])
+            if st.r_primary > 0:
+                el.append(("R", "plate" + tag, "w" + tag, st.r_primary / 2.0))
+            else:
+                nodes.join("w" + tag, "plate" + tag)
+            if st.l_leak > 0:
+                el.append(("L", "w" + tag, "x" + tag, st.l_leak / 2.0))
+            else:
+                nodes.join("x" + tag, "w" + tag)
+        if st.c_winding > 0:
+            el.append(("C", "plate_a", "plate_b", st.c_winding))
+        el.append(("R", "x_a", "x_b", st.reflected_load))
+        if st.l_primary is not None:
+            el.append(("L", "x_a", "x_b", st.l_primary))
+        el.append(("T", "x_a", "x_b"))
+        el.append(("G", "0", "sec", "x_b", "x_a", 1.0 / n))
+    el.append(("R", "sec", "0", 1.0))
+    res = []
+    for e in el:
+        if e[0] == "G":
+            res.append((e[0], *(nodes.find(x) for x in e[1:5]), e[5]))
+        elif e[0] == "T":
+            res.append((e[0], nodes.find(e[1]), nodes.find(e[2])))
+        else:
+            a, b = nodes.find(e[1]), nodes.find(e[2])
+            if a != b:
+                res.append((e[0], a, b, e[3]))
+    return res, "sec"
+
+
+def _output_small_signal(stage, triodes):
+    from .output import _banks, _idle
+
+    banks = _banks(stage, triodes)
+    op = _idle(stage, banks)
+    ss = {}
+    for b, p in zip(banks, stage.positions):
+        gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
+        ss[p] = {"gm": float(gvg), "rp": 1.0 / float(gva) if float(gva) > 0 else float("inf")}
+    return ss
+
+
 def _cathode_to_ground(el, nodes, cathode, rk, ck):
     if rk > 0:
         el.append(("R", cathode, "0", rk))
@@ -215,16 +328,22 @@ def _cathode_to_ground(el, nodes, cathode, rk, ck):
 
 def _solve_nodal(elements, out, s):
     """Voltage at ``out`` for the 1 V source at the complex frequencies ``s`` (an array):
-    nodal analysis, one admittance matrix per frequency, solved in one batch."""
-    names = sorted({x for e in elements for x in (e[1:5] if e[0] == "G" else e[1:3])} - {"0", "src"})
-    if out in ("0", "src"):
-        return np.full(np.shape(s), 0.0 if out == "0" else 1.0, complex)
+    nodal analysis, one admittance matrix per frequency, solved in one batch.
+
+    Besides R, C and G elements: ``("L", a, b, henry)``; ``("T", a, b)``, a centre-tapped
+    ideal winding with its tap at AC ground (it holds v(a) = -v(b) and sinks any equal
+    currents from a and b into the tap: one extra unknown, modified nodal analysis); node
+    ``"nsrc"`` is the generator in antiphase (-1 V)."""
+    known = {"0": 0.0, "src": 1.0, "nsrc": -1.0}
+    names = sorted({x for e in elements for x in (e[1:5] if e[0] == "G" else e[1:3])} - set(known))
+    if out in known:
+        return np.full(np.shape(s), known[out], complex)
     idx = {n: i for i, n in enumerate(names)}
-    n = len(names)
+    taps = [e for e in elements if e[0] == "T"]
+    n = len(names) + len(taps)
     s = np.asarray(s, complex)
     Y = np.zeros(s.shape + (n, n), complex)
     rhs = np.zeros(s.shape + (n,), complex)
-    known = {"0": 0.0, "src": 1.0}
 
     def stamp(r, c, y):
         # current leaving node r for a voltage at node c
@@ -234,7 +353,15 @@ def _solve_nodal(elements, out, s):
             else:
                 rhs[..., idx[r]] -= y * known[c]
 
+    k = len(names)
     for e in elements:
+        if e[0] == "T":
+            # extra unknown j: the current from each end into the tap; row: v(a) + v(b) = 0
+            for x in e[1:3]:
+                Y[..., idx[x], k] += 1.0
+                Y[..., k, idx[x]] += 1.0
+            k += 1
+            continue
         if e[0] == "G":
             _, a, b, c, d, g = e
             # current g (v(c) - v(d)) leaves a, enters b
@@ -244,7 +371,11 @@ def _solve_nodal(elements, out, s):
             stamp(b, d, g)
             continue
         kind, a, b, v = e
-        y = (1.0 / v) if kind == "R" else s * v
+        if kind == "L":
+            with np.errstate(divide="ignore"):
+                y = np.where(s == 0, 1e30, 1.0 / np.where(s == 0, 1.0, s * v))
+        else:
+            y = (1.0 / v) if kind == "R" else s * v
         stamp(a, a, y)
         stamp(a, b, -y)
         stamp(b, b, y)
@@ -265,9 +396,9 @@ def response(stage, *triodes: FittedTriode, freq=None, points_per_decade: int = 
 
     Parameters
     ----------
-    stage : CommonCathode, CathodeFollower or Stack
+    stage : CommonCathode, CathodeFollower, Stack, SingleEndedOutput or PushPullOutput
     *triodes : FittedTriode
-        One tube, or bottom then top for a stack.
+        One tube, bottom then top for a stack, A then B for a push-pull.
     freq : array_like or None
         Frequencies [Hz]; default ``points_per_decade`` per decade from 1 Hz to 1 MHz.
 
@@ -275,8 +406,10 @@ def response(stage, *triodes: FittedTriode, freq=None, points_per_decade: int = 
     -------
     FrequencyResponse
     """
-    stage_kind(stage)
-    _check_triodes(stage, triodes)
+    out_stage = _is_output_stage(stage)
+    if not out_stage:
+        stage_kind(stage)
+        _check_triodes(stage, triodes)
     if freq is None:
         if not (isinstance(points_per_decade, int) and 1 <= points_per_decade <= 1000):
             raise StageInputError(f"must be a whole number from 1 to 1000, got {points_per_decade!r}",
@@ -285,18 +418,26 @@ def response(stage, *triodes: FittedTriode, freq=None, points_per_decade: int = 
     freq = np.asarray(freq, float)
     if freq.ndim != 1 or freq.size == 0 or not np.all(np.isfinite(freq)) or np.any(freq <= 0):
         raise StageInputError("frequencies must be positive finite numbers", field="freq")
-    ss = _small_signal(stage, triodes)
-    elements, out = linear_circuit(stage, ss)
+    if out_stage:
+        ss = _output_small_signal(stage, triodes)
+        elements, out = output_stage_circuit(stage, ss)
+    else:
+        ss = _small_signal(stage, triodes)
+        elements, out = linear_circuit(stage, ss)
     gain = _solve_nodal(elements, out, 2j * np.pi * freq)
     mid_el, mid_nodes = _midband(stage, ss)
     midband = float(np.real(_solve_nodal(mid_el, mid_nodes, np.array([0.0]))[0]))
     f_low, f_high = _corners(elements, out, abs(midband))
     notes = []
-    if not any(e[0] == "C" for e in elements):
+    if not any(e[0] in ("C", "L") for e in elements):
         notes.append("no capacitance given: the response is flat (give the tube capacitances, the load capacitance "
-                     "and the coupling capacitors)")
+                     "and the coupling capacitors)" + (", the primary inductance" if out_stage else ""))
+    if out_stage:
+        where = "secondary"
+    else:
+        where = output_node(stage) if stage.rl is None else "load"
     return FrequencyResponse(stage, tuple(t.label for t in triodes), freq, gain, midband, f_low, f_high, ss,
-                             output_node(stage) if stage.rl is None else "load", notes)
+                             where, notes)
 
 
 def _midband(stage, ss):
@@ -305,6 +446,11 @@ def _midband(stage, ss):
     load capacitances open; returns (elements, output node)."""
     from dataclasses import replace
 
+    if _is_output_stage(stage):
+        # coupling and bypass capacitors short (ck None with bypassed: an ideal bypass), tube
+        # capacitances open, the magnetising inductance open
+        return output_stage_circuit(replace(stage, c_in=None, ck=None, cgk=0.0, cga=0.0, cak=0.0,
+                                            l_primary=None, l_leak=0.0, c_winding=0.0), ss)
     kw = dict(c_in=None, c_out=None, cgk=0.0, cga=0.0, cak=0.0, c_load=0.0)
     if isinstance(stage, Stack):
         kw["c_top"] = None

@@ -72,7 +72,10 @@ def _check_bool(obj, name):
 #: typo or a missing prefix, and the arithmetic would overflow or divide by zero
 _RANGES = (("b_plus", 1e-3, 1e5, "V"), ("load", 1.0, 1e8, "ohm"), ("turns_ratio", 1e-3, 1e4, ""),
            ("speaker", 1e-2, 1e6, "ohm"), ("r_primary", 0.0, 1e7, "ohm"), ("grid_bias", 0.0, 1e5, "V"),
-           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"))
+           ("rk", 1e-3, 1e7, "ohm"), ("pa_max", 1e-3, 1e5, "W"), ("grid_onset", 0.0, 100.0, "V"),
+           ("cgk", 0.0, 1e-6, "F"), ("cga", 0.0, 1e-6, "F"), ("cak", 0.0, 1e-6, "F"), ("rs", 0.0, 1e8, "ohm"),
+           ("c_in", 1e-15, 1.0, "F"), ("rg", 1.0, 1e9, "ohm"), ("ck", 1e-12, 10.0, "F"),
+           ("l_primary", 1e-3, 1e5, "H"), ("l_leak", 0.0, 100.0, "H"), ("c_winding", 0.0, 1e-6, "F"))
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -105,6 +108,30 @@ class _OutputCommon:
     grid_onset : float
         Grid-cathode voltage where grid current starts [V] (0 V: common practice; real
         directly heated tubes begin slightly below).
+
+    The remaining fields only shape the frequency response
+    (:func:`fitter.stage.frequency.response`); the defaults leave a flat, ideal stage and
+    change none of the quasi-static figures.
+
+    cgk, cga, cak : float
+        Interelectrode capacitances of each tube [F].
+    rs : float
+        Resistance of the driving source [ohm] (each grid's, push-pull).
+    c_in : float or None
+        Coupling capacitor to each grid [F]; None: direct coupling.
+    rg : float or None
+        Grid resistor to AC ground [ohm] (the grid leak, or the bias feed); None: none.
+    ck : float or None
+        The cathode bypass capacitor [F] (needs ``bypassed``); None: an ideal bypass.
+    l_primary : float or None
+        Magnetising inductance of the whole primary [H] (the low-frequency corner); None:
+        an ideal transformer.
+    l_leak : float
+        Leakage inductance referred to the whole primary [H], in series with the reflected
+        load (push-pull: half in each side); 0: none.
+    c_winding : float
+        Capacitance across the primary [F] (single-ended plate to AC ground, push-pull plate
+        to plate); 0: none.
     """
 
     b_plus: float
@@ -117,6 +144,16 @@ class _OutputCommon:
     bypassed: bool = True
     pa_max: float | None = None
     grid_onset: float = 0.0
+    cgk: float = 0.0
+    cga: float = 0.0
+    cak: float = 0.0
+    rs: float = 0.0
+    c_in: float | None = None
+    rg: float | None = None
+    ck: float | None = None
+    l_primary: float | None = None
+    l_leak: float = 0.0
+    c_winding: float = 0.0
 
     def __post_init__(self):
         owner = type(self).__name__
@@ -130,6 +167,10 @@ class _OutputCommon:
         _check_positive(self, "pa_max", optional=True)
         _check_number(self, "grid_onset")
         _check_bool(self, "bypassed")
+        for name in ("cgk", "cga", "cak", "rs", "l_leak", "c_winding"):
+            _check_positive(self, name, allow_zero=True)
+        for name in ("c_in", "rg", "ck", "l_primary"):
+            _check_positive(self, name, optional=True)
         for name, lo, hi, unit in _RANGES:
             v = getattr(self, name)
             if v is not None and not (lo <= abs(v) <= hi) and not (v == 0 and lo == 0):
@@ -145,6 +186,11 @@ class _OutputCommon:
             raise StageInputError(f"the reflected load {self.reflected_load:.4g} ohm is not a plausible "
                                   f"transformer load (1 ohm to 100 Mohm)", field="load" if self.load is not None
                                   else "turns_ratio", owner=owner)
+        if self.ck is not None and (self.rk is None or not self.bypassed):
+            raise StageInputError("a bypass capacitor needs a bypassed cathode resistor", field="ck", owner=owner)
+        if self.c_in is not None and self.rg is None:
+            raise StageInputError("a coupling capacitor needs a grid resistor to hold the grid's DC voltage",
+                                  field="rg", owner=owner)
         if self.grid_bias is not None and self.grid_bias > self.grid_onset:
             raise StageInputError(f"a fixed bias above the grid-current onset ({self.grid_onset:g} V) "
                                   f"draws grid current at idle, got {self.grid_bias!r}",
@@ -212,6 +258,25 @@ def _pp_tubes(banks, b_plus, r, v, vk, vga, vgb, xa=None, xb=None):
 
 
 _JOINT_MAXIT = 40
+#: the speed-ups that change no result beyond the iteration's tolerance: both tubes in one
+#: model call, each sine value solved once, later solves started from the transfer already
+#: solved (False: the plain path, which a test compares with)
+_FAST = True
+
+
+def _pair_bank(banks, m):
+    """Both tubes as one bank over 2 m states (A's then B's), so each step of the joint
+    iteration evaluates the model once (a call's fixed cost is most of a step's for the
+    waveforms' few hundred samples); None when the tubes differ in model or grid-current
+    parameters (those stay scalar in a bank)."""
+    a, b = banks
+    if a.model is not b.model or any(a.params[n] != b.params[n] for n in a.model.grid_param_names):
+        return None
+    if a.arrays() or b.arrays():
+        return None
+    params = {n: (a.params[n] if a.params[n] == b.params[n] else np.repeat([a.params[n], b.params[n]], m))
+              for n in a.model.param_names}
+    return _Bank(a.model, params)
 
 
 def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
@@ -235,9 +300,21 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
     if not solve_k:
         k = np.array(np.broadcast_to(np.asarray(vk, float), shape))
     tol = 1e-11 * B
+    m = int(np.prod(shape))
+    pair = _pair_bank(banks, m) if m > 1 and _FAST else None
+    vga_ = np.broadcast_to(np.asarray(vga, float), shape)
+    vgb_ = np.broadcast_to(np.asarray(vgb, float), shape)
     for _ in range(_JOINT_MAXIT):
-        fa, gaa, gga = banks[0].current_and_gradient(B - r * ia - v - k, vga - k)
-        fb, gab, ggb = banks[1].current_and_gradient(B - r * ib + v - k, vgb - k)
+        if pair is not None:
+            f, gv, gg = pair.current_and_gradient(
+                np.concatenate([(B - r * ia - v - k).ravel(), (B - r * ib + v - k).ravel()]),
+                np.concatenate([(vga_ - k).ravel(), (vgb_ - k).ravel()]))
+            fa, fb = f[:m].reshape(shape), f[m:].reshape(shape)
+            gaa, gab = gv[:m].reshape(shape), gv[m:].reshape(shape)
+            gga, ggb = gg[:m].reshape(shape), gg[m:].reshape(shape)
+        else:
+            fa, gaa, gga = banks[0].current_and_gradient(B - r * ia - v - k, vga - k)
+            fb, gab, ggb = banks[1].current_and_gradient(B - r * ib + v - k, vgb - k)
         R1 = ia - fa
         R2 = ib - fb
         ca = 1.0 + r * gaa
@@ -358,7 +435,7 @@ def _idle(stage, banks) -> dict:
     return op
 
 
-def _waveforms(stage, banks, op, vin) -> dict:
+def _waveforms(stage, banks, op, vin, guide=None) -> dict:
     """Quasi-static response to the grid signal ``vin`` (any shape; push-pull: +vin on grid A,
     -vin on grid B).  Returns arrays: ``v_load`` (voltage across the reflected load [V],
     positive when the plate (A) swings down), per tube ``.ia``, ``.va``, ``.vgk``."""
@@ -380,7 +457,13 @@ def _waveforms(stage, banks, op, vin) -> dict:
         return {"v_load": RL * (i - i0), "tube.ia": i, "tube.va": plate - vk, "tube.vgk": vg + vin - vk}
     d0 = op["A.ia"] - op["B.ia"]
     hold = stage.rk is None or stage.bypassed
-    x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
+    if guide is None:
+        x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
+    else:
+        # start from the transfer already solved on a grid of drives: a step or two from the answer
+        xg, wg = guide
+        x0 = (np.interp(vin, xg, wg["A.ia"]), np.interp(vin, xg, wg["B.ia"]), np.interp(vin, xg, wg["v_load"]) / 2.0,
+              np.interp(vin, xg, vg + xg - wg["A.vgk"]))
     v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=op["vk"] if hold else None, d0=d0, x0=x0)
     r = stage.r_primary / 2.0
     return {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
@@ -419,11 +502,22 @@ def composite_characteristic(stage, *triodes, drives, v):
 # ---------------------------------------------------------------------------
 
 
-def _margins(stage, banks, op, amps):
+def _margins(stage, banks, op, amps, keep=None):
     """(grid margin, cut-off margin) at each amplitude: positive while inside.  The extremes
-    of a quasi-static swing are at the sine's peaks (the transfer is monotone)."""
+    of a quasi-static swing are at the sine's peaks (the transfer is monotone).
+
+    ``keep`` (push-pull): a dict; its ``"guide"`` (the transfer at the crests of the first
+    call, as drives and waveforms) starts every later call, and is left there for the
+    caller's solves."""
     amps = np.asarray(amps, float)
-    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1))
+    guide = None if keep is None else keep.get("guide")
+    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide)
+    if keep is not None and guide is None and stage.kind == "push-pull" and amps.ndim == 1:
+        order = np.argsort(amps)
+        keep["guide"] = (np.concatenate([-amps[order][::-1], amps[order]]),
+                         {k: np.concatenate([np.broadcast_to(v, amps.shape + (2,))[order][::-1, 1],
+                                             np.broadcast_to(v, amps.shape + (2,))[order, 0]])
+                          for k, v in w.items()})
     grid = np.min([stage.grid_onset - np.max(w[f"{p}.vgk"], axis=-1) for p in stage.positions], axis=0)
     cut = np.min([np.min(w[f"{p}.ia"], axis=-1) - CUTOFF_FRACTION * op[f"{p}.ia"] for p in stage.positions],
                  axis=0)
@@ -456,6 +550,37 @@ def _first_crossing(fun, hi, lo=0.0, n=64, passes=2):
     return float(a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up))
 
 
+def _two_crossings(fun, hi, lo=0.0, n=64):
+    """:func:`_first_crossing` (two passes) of both margins of ``fun`` (which returns a pair
+    of arrays) at once: they share the scan, and both refinements are one call of ``fun``
+    (each call of the push-pull solve has a fixed cost, whatever its size)."""
+    a = np.linspace(lo, hi, n + 1)
+    scan = fun(a[1:])
+    found = []
+    for j in range(2):
+        m = np.concatenate([[np.inf], scan[j]])
+        bad = np.nonzero(m <= 0)[0]
+        found.append(None if bad.size == 0 else (a[bad[0] - 1], a[bad[0]], m[bad[0] - 1], m[bad[0]]))
+    grids = [None if f is None else np.linspace(f[0], f[1], n + 1) for f in found]
+    inner = [g[1:-1] for g in grids if g is not None]
+    if not inner:
+        return None, None
+    got = fun(np.concatenate(inner))
+    out, at = [], 0
+    for j, (f, g) in enumerate(zip(found, grids)):
+        if f is None:
+            out.append(None)
+            continue
+        m = np.empty_like(g)
+        m[0], m[-1] = f[2], f[3]
+        m[1:-1] = got[j][at:at + n - 1]
+        at += n - 1
+        k = np.nonzero(m <= 0)[0][0]
+        a_lo, a_up, m_lo, m_up = g[k - 1], g[k], m[k - 1], m[k]
+        out.append(float(a_lo) if not np.isfinite(m_lo) else float(a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up)))
+    return out[0], out[1]
+
+
 def drive_limits(stage, *triodes) -> dict:
     """Peak grid drive [V] (per grid) where grid current begins (``grid``) and where a tube
     cuts off (``cutoff``; push-pull: the end of class A), None where not reached."""
@@ -463,7 +588,7 @@ def drive_limits(stage, *triodes) -> dict:
     return _drive_limits(stage, banks, _idle(stage, banks))
 
 
-def _drive_limits(stage, banks, op):
+def _drive_limits(stage, banks, op, keep=None):
     vgk0 = max(op[f"{p}.vgk"] for p in stage.positions)
     head = stage.grid_onset - vgk0
     fixed_cathode = stage.rk is None or stage.bypassed
@@ -475,20 +600,11 @@ def _drive_limits(stage, banks, op):
         # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
         # push-pull's cathode moves only with the rectified sum of the currents
         hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
-        memo = {}
-
-        def both(a):  # the two searches share their first scan (the same amplitudes)
-            key = a.tobytes()
-            if key not in memo:
-                memo[key] = _margins(stage, banks, op, a)
-            return memo[key]
-
-        grid = _first_crossing(lambda a: both(a)[0], hi)
-        cut = _first_crossing(lambda a: both(a)[1], hi)
+        grid, cut = _two_crossings(lambda a: _margins(stage, banks, op, a, keep), hi)
         if cut is not None and grid is not None and cut >= grid:
             cut = None
         return {"grid": grid, "cutoff": cut}
-    cut = _first_crossing(lambda a: _margins(stage, banks, op, a)[1], grid)
+    cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid)
     return {"grid": grid, "cutoff": cut}
 
 
@@ -522,11 +638,29 @@ class PowerSweep:
                 "h2_db": db(self.h2), "h3_db": db(self.h3), "thd_pct": (100.0 * self.thd).tolist()}
 
 
-def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES):
+def _half_period(n):
+    """(distinct sample indices, index of each sample among them) of a sine sampled n times
+    a period: sin(2 pi k / n) = sin(2 pi (n/2 - k) / n), so only the quarter-periods either
+    side of the zero crossing at k = 0 differ (n/2 + 1 samples when 4 divides n)."""
+    k = np.arange(n)
+    if n % 4 or not _FAST:
+        return k, k
+    canon = np.where((k <= n // 4) | (k >= 3 * n // 4), k, (n // 2 - k) % n)
+    distinct = np.unique(canon)
+    return distinct, np.searchsorted(distinct, canon)
+
+
+def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES, guide=None):
+    """Waveforms of one period at each amplitude (rows) and their harmonics H1..H10.  The
+    quasi-static response has no memory, so the samples where the sine repeats a value are
+    solved once (about half of them) and copied.  ``guide`` (drives, waveforms): the
+    push-pull's transfer on a grid of drives covering ``amps``, to start the solve from."""
     amps = np.atleast_1d(np.asarray(amps, float))
     theta = 2 * np.pi * np.arange(n_samples) / n_samples
-    vin = amps[:, None] * np.sin(theta)[None, :]
-    w = _waveforms(stage, banks, op, vin)
+    distinct, where = _half_period(n_samples)
+    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+    w = _waveforms(stage, banks, op, vin, guide)
+    w = {key: np.broadcast_to(val, vin.shape)[:, where] for key, val in w.items()}
     h = harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
     return w, h
 
@@ -541,7 +675,7 @@ def _sweep_from(stage, amps, h):
     return PowerSweep(np.asarray(amps, float), power, h2, h3, thd, h)
 
 
-def _level_at_thd(stage, banks, op, sweep, target):
+def _level_at_thd(stage, banks, op, sweep, target, guide=None):
     """Drive where THD first reaches ``target`` (interpolated in the sweep, then refined by
     bisection); None when it stays below up to the sweep's end."""
     over = np.nonzero(sweep.thd >= target)[0]
@@ -558,7 +692,7 @@ def _level_at_thd(stage, banks, op, sweep, target):
     # THD grows smoothly with the drive: interpolate between the bracketing levels, then
     # one secant step from a solve at the estimate
     x = lo + (up - lo) * (target - tlo) / (tup - tlo)
-    _, h = _spectra(stage, banks, op, [x])
+    _, h = _spectra(stage, banks, op, [x], guide=guide)
     tx = _sweep_from(stage, [x], h).thd[0]
     if tx < target:
         lo, tlo = x, tx
@@ -734,7 +868,8 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         raise StageInputError(f"must be a whole number from 2 to 1000, got {levels!r}", field="levels")
     banks = _banks(stage, triodes)
     op = _idle(stage, banks)
-    lim = _drive_limits(stage, banks, op)
+    keep = {} if _FAST else None
+    lim = _drive_limits(stage, banks, op, keep)
     se = stage.kind == "single-ended"
     ends = [x for x in ((lim["grid"], "grid current"), (lim["cutoff"] if se else None, "cut-off"))
             if x[0] is not None]
@@ -746,11 +881,24 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         raise StageSolveError("the grid sits at the grid-current onset at idle: there is no drive before "
                               "grid current (bias the grid below it)")
     amps = vin_max * np.linspace(1.0 / levels, 1.0, levels)
-    w, h = _spectra(stage, banks, op, amps)
+    class_ab = not se and lim["cutoff"] is not None and lim["cutoff"] < vin_max
+    guide = None
+    if not se:
+        # the transfer over the whole drive range: the composite transconductance, and the
+        # start of every later solve (each then needs a step or two instead of six or seven)
+        x = np.linspace(-vin_max, vin_max, 201)
+        w_x = _waveforms(stage, banks, op, x, keep.get("guide") if _FAST else None)
+        guide = (x, w_x) if _FAST else None
+    # one solve for the power sweep and the end of class A
+    w, h = _spectra(stage, banks, op, np.append(amps, lim["cutoff"]) if class_ab else amps, guide=guide)
+    if class_ab:
+        h_cut = h[-1:]
+        w = {key: val[:-1] for key, val in w.items()}
+        h = h[:-1]
     sweep = _sweep_from(stage, amps, h)
-    vin_thd = _level_at_thd(stage, banks, op, sweep, thd)
+    vin_thd = _level_at_thd(stage, banks, op, sweep, thd, guide)
     if vin_thd is not None:
-        _, h_t = _spectra(stage, banks, op, [vin_thd])
+        _, h_t = _spectra(stage, banks, op, [vin_thd], guide=guide)
         p_thd = float(_sweep_from(stage, [vin_thd], h_t).power[0])
     else:
         p_thd = None
@@ -769,14 +917,12 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         # crossover: the composite transconductance (slope of the load voltage against the
         # grid drive) at the idle point against its largest over the swing; a cold bias makes
         # the middle flat (a notch), 1.0 means no dip
-        x = np.linspace(-vin_max, vin_max, 201)
-        g = np.gradient(_waveforms(stage, banks, op, x)["v_load"], x)
+        g = np.gradient(w_x["v_load"], x)
         figures["gm_dip"] = float(g[100] / np.max(g))
-        if lim["cutoff"] is None or lim["cutoff"] >= vin_max:
+        if not class_ab:
             figures.update({"class": "A", "p_class_a": p_max, "vin_cut": None})
         else:
-            _, hc = _spectra(stage, banks, op, [lim["cutoff"]])
-            figures["p_class_a"] = float(_sweep_from(stage, [lim["cutoff"]], hc).power[0])
+            figures["p_class_a"] = float(_sweep_from(stage, [lim["cutoff"]], h_cut).power[0])
             figures["class"] = "AB"
     warn = []
     for p, t in zip(stage.positions, triodes):

@@ -79,15 +79,46 @@ FIGURES = {
     "thd": ("THD at the level", "%", 100.0),
     "vhk_margin": ("heater-cathode margin", "V", 1.0),
     "slew_fmax": ("slew-limited frequency", "kHz", 1e-3),
+    # output stages (fitter.stage.output)
+    "p_max": ("largest output", "W", 1.0),
+    "p_thd": ("output at the THD limit", "W", 1.0),
+    "pa_ratio": ("largest dissipation / limit", "%", 100.0),
+    "damping": ("damping factor", "", 1.0),
+    "imbalance": ("DC imbalance (A - B)", "mA", 1e3),
 }
-_PER_TUBE = {"va": ("voltage across", "V", 1.0), "pa": ("dissipation", "W", 1.0)}
+_PER_TUBE = {"va": ("voltage across", "V", 1.0), "pa": ("dissipation", "W", 1.0),
+             "ia": ("idle current", "mA", 1e3)}
+
+
+def _is_output(stage) -> bool:
+    from .output import PushPullOutput, SingleEndedOutput
+
+    return isinstance(stage, (SingleEndedOutput, PushPullOutput))
+
+
+def _kind(stage) -> str:
+    return stage.kind if _is_output(stage) else stage_kind(stage)
+
+
+def _title(stage) -> str:
+    return f"{stage.kind.capitalize()} output stage" if _is_output(stage) else stage_title(stage)
+
+
+def _circuit_dict(stage) -> dict:
+    from dataclasses import asdict
+
+    return {"kind": stage.kind, **asdict(stage)} if _is_output(stage) else stage.to_dict()
 
 
 def _unit_of(field_name: str) -> str:
-    if field_name in ("b_plus", "vbias", "vneg", "heater", "vhk_max"):
+    if field_name in ("b_plus", "vbias", "vneg", "heater", "vhk_max", "grid_bias", "grid_onset"):
         return "V"
     if field_name == "pa_max":
         return "W"
+    if field_name == "turns_ratio":
+        return ""
+    if field_name == "l_primary":
+        return "H"
     if field_name.startswith("c"):  # c_in, c_out, c_load, c_top, ck, cgk, cga, cak
         return "F"
     return "ohm"
@@ -121,6 +152,11 @@ class ComponentSweep:
     slew_vpeak: float
     pairing: str = ""
     notes: list = field(default_factory=list)
+
+    @property
+    def title(self) -> str:
+        """The stage's name ("Common-cathode stage", "Push-pull output stage" ...)."""
+        return _title(self.stage)
 
     @property
     def n_units(self) -> int:
@@ -191,18 +227,18 @@ class ComponentSweep:
                     row[key] = {"min": num(lo[i] * scale), "median": num(med[i] * scale), "max": num(hi[i] * scale)}
             points.append(row)
         return {
-            "kind": stage_kind(self.stage),
-            "title": stage_title(self.stage),
+            "kind": _kind(self.stage),
+            "title": _title(self.stage),
             "field": self.field,
             "unit": _unit_of(self.field),
             "scale": "log" if self.log else "linear",
             "units": list(self.labels),
             "pairing": self.pairing,
             "thd_limit_pct": 100 * self.thd_limit,
-            "level_vout_peak_v": self.level,
-            "slew_vpeak_v": self.slew_vpeak,
+            **({"level_w": self.level} if _is_output(self.stage) else
+               {"level_vout_peak_v": self.level, "slew_vpeak_v": self.slew_vpeak}),
             "points": points,
-            "circuit": self.stage.to_dict(),
+            "circuit": _circuit_dict(self.stage),
             "notes": list(self.notes),
             "caution": CAUTION,
         }
@@ -219,12 +255,18 @@ class ComponentSweep:
             unit, _ = self.figure_unit(k)
             lab = _short(k) + (f" {unit}" if unit else "")
             head.append(f"{lab:>{24 if many else 12}}")
-        lines = [f"Sweep of {name(self.field)} in the {stage_title(self.stage).lower()} with {self.units_text}",
+        lines = [f"Sweep of {name(self.field)} in the {_title(self.stage).lower()} with {self.units_text}",
                  CAUTION, ""]
-        lines.append(f"  headroom: output where THD reaches {100 * self.thd_limit:g} %, or grid-current onset / "
-                     "cut-off first")
-        if self.level is not None:
-            lines.append(f"  THD at {self.level:g} V peak out; slew limit for {self.slew_vpeak:g} V peak")
+        if _is_output(self.stage):
+            lines.append("  Pmax: the largest output before grid current (or cut-off, single-ended); "
+                         f"P@THD: the output where THD reaches {100 * self.thd_limit:g} % (- : not before Pmax)")
+            if self.level is not None:
+                lines.append(f"  THD at {self.level:g} W out")
+        else:
+            lines.append(f"  headroom: output where THD reaches {100 * self.thd_limit:g} %, or grid-current onset / "
+                         "cut-off first")
+            if self.level is not None:
+                lines.append(f"  THD at {self.level:g} V peak out; slew limit for {self.slew_vpeak:g} V peak")
         if many:
             lines.append("  each cell: median [min..max] over the units")
         lines.append("")
@@ -251,7 +293,8 @@ def _short(k):
         pos, q = k.split(".")
         return f"{pos[:3]}.{q}" if pos != "tube" else q
     return {"ia": "Ia", "gain": "gain", "zout": "Zout", "headroom": "headroom", "thd": "THD",
-            "vhk_margin": "Vhk margin", "slew_fmax": "slew"}[k]
+            "vhk_margin": "Vhk margin", "slew_fmax": "slew", "p_max": "Pmax", "p_thd": "P@THD",
+            "pa_ratio": "Pa/limit", "damping": "damping", "imbalance": "imbalance"}[k]
 
 
 def _slug(unit):
@@ -432,6 +475,47 @@ def _point(stage, cases, thd_limit, level, slew_vpeak, grid_onset, cutoff_fracti
     return out
 
 
+def _output_point(stage, cases, thd_limit, level):
+    """Every figure of an output stage for every case at one stage value (one
+    :func:`fitter.stage.output.solve_output` per case): dict name -> (U,), NaN where the
+    stage cannot be solved with that case (a tube cut off at idle, a grid at the onset)."""
+    from .output import solve_output
+    from .solver import StageSolveError
+
+    U = len(cases)
+    keys = [f"{p}.{q}" for p in stage.positions for q in ("ia", "va", "pa")] + ["p_max", "p_thd", "thd", "zout",
+                                                                                 "damping"]
+    if stage.pa_max is not None:
+        keys.append("pa_ratio")
+    if stage.kind == "push-pull":
+        keys.append("imbalance")
+    out = {k: np.full(U, np.nan) for k in keys}
+    failed = 0
+    for u, c in enumerate(cases):
+        try:
+            r = solve_output(stage, *c, thd=thd_limit)
+        except StageSolveError:
+            failed += 1
+            continue
+        f = r.figures
+        for p in stage.positions:
+            for q in ("ia", "va", "pa"):
+                out[f"{p}.{q}"][u] = r.op[f"{p}.{q}"]
+        out["p_max"][u] = f["p_max"]
+        out["p_thd"][u] = math.nan if f["p_thd"] is None else f["p_thd"]
+        s = r.sweep
+        if level is not None and s.power[0] <= level <= s.power[-1]:
+            out["thd"][u] = float(np.interp(level, s.power, s.thd))
+        out["zout"][u] = f["z_out"]
+        out["damping"][u] = f["damping"]
+        if stage.pa_max is not None:
+            out["pa_ratio"][u] = max(max(r.op[f"{p}.pa"], f["pa_full"][p]) for p in stage.positions) / stage.pa_max
+        if stage.kind == "push-pull":
+            out["imbalance"][u] = f["imbalance"]
+    out["_failed"] = failed
+    return out
+
+
 def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: bool = False,
                     thd_limit: float = 0.01, level: float | None = None, slew_vpeak: float = 10.0,
                     grid_onset: float = 0.0, cutoff_fraction: float = 0.01, pairing: str = "") -> ComponentSweep:
@@ -439,8 +523,14 @@ def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: 
 
     Parameters
     ----------
-    stage : CommonCathode, CathodeFollower or Stack
-        The circuit; the swept field's own value is replaced by each of ``values``.
+    stage : CommonCathode, CathodeFollower, Stack, SingleEndedOutput or PushPullOutput
+        The circuit; the swept field's own value is replaced by each of ``values`` (an output
+        stage's ``load`` replaces its turns ratio, and the other way round).  Output stages
+        give each tube's idle current, voltage and dissipation, the largest output
+        ``p_max``, the output at ``thd_limit`` ``p_thd``, THD at ``level`` [W], output
+        impedance, damping factor, the largest dissipation over the limit (with
+        ``pa_max``) and the DC imbalance (push-pull), each from
+        :func:`fitter.stage.output.solve_output`.
     field_name : str
         A numeric field of the stage (see :func:`sweepable_fields`).
     values : array_like
@@ -450,7 +540,7 @@ def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: 
     thd_limit : float
         THD threshold of the headroom, a fraction (0.01 = 1 %).
     level : float or None
-        Output level [V peak] for the THD column; None: not computed.
+        Output level [V peak; W for an output stage] for the THD column; None: not computed.
     slew_vpeak : float
         Output peak amplitude of the slew-rate figure [V].
 
@@ -462,10 +552,11 @@ def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: 
     """
     from ..triode import FittedTriode
 
-    stage_kind(stage)
+    output = _is_output(stage)
+    _kind(stage)
     names = [f.name for f in fields(stage)]
     if field_name not in names:
-        raise StageInputError(f"a {stage_kind(stage)} stage has no field {field_name!r}; numeric fields: "
+        raise StageInputError(f"a {_kind(stage)} stage has no field {field_name!r}; numeric fields: "
                               + ", ".join(sweepable_fields(stage)), field="vary")
     if field_name not in sweepable_fields(stage):
         raise StageInputError(f"{field_name!r} is not a numeric field and cannot be swept", field="vary")
@@ -481,27 +572,45 @@ def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: 
     cases = [tuple(c) for c in cases]
     if not cases:
         raise StageInputError("no units given", field="units")
-    npos = len(tube_positions(stage))
+    npos = len(stage.positions if output else tube_positions(stage))
     for c in cases:
         if len(c) != npos or not all(isinstance(t, FittedTriode) for t in c):
             raise ValueError(f"component_sweep: each case needs {npos} FittedTriode(s)")
     if labels is None:
         labels = ["/".join(t.label for t in c) for c in cases]
     stages = []
+    extra = {}
+    if output and field_name == "load":
+        extra["turns_ratio"] = None  # the load replaces a turns ratio
+    elif output and field_name == "turns_ratio":
+        extra["load"] = None
     for v in values:
         try:
-            stages.append(replace(stage, **{field_name: float(v)}))
+            stages.append(replace(stage, **{field_name: float(v)}, **extra))
         except StageInputError as e:
             raise StageInputError(f"{e.message} (swept value {v:g})", field=e.field, owner=e.owner) from None
     P, U = len(values), len(cases)
     figures: dict = {}
     notes = []
+    failed = 0
     for i, st in enumerate(stages):
-        row = _point(st, cases, thd_limit, level, slew_vpeak, grid_onset, cutoff_fraction)
+        if output:
+            row = _output_point(st, cases, thd_limit, level)
+            failed += row.pop("_failed")
+        else:
+            row = _point(st, cases, thd_limit, level, slew_vpeak, grid_onset, cutoff_fraction)
         for k, v in row.items():
             figures.setdefault(k, np.full((P, U), np.nan))[i] = v
     if level is None:
         figures.pop("thd", None)
+    if output:
+        if failed:
+            notes.append(f"{failed} of {P * U} (value, unit) cases could not be solved (a tube cut off at idle, or "
+                         "the grid at the grid-current onset): left out")
+        if level is not None and np.isnan(figures["thd"]).sum() > failed:
+            notes.append(f"THD at {level:g} W: left out where the level is beyond the largest output")
+        return ComponentSweep(replace(stage), field_name, values, log, list(labels), figures, thd_limit, level,
+                              slew_vpeak, pairing, notes)
     cut = np.isnan(figures["headroom"])
     if cut.any():
         notes.append(f"{int(cut.sum())} of {cut.size} (value, unit) cases have no signal swing (a tube cut off "
