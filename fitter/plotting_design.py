@@ -15,7 +15,6 @@ import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
 from .plotting_stage import _save  # noqa: E402
-from .stage.circuits import stage_title  # noqa: E402
 
 __all__ = ["plot_response", "save_response_plot", "plot_sweep", "save_sweep_plot"]
 
