@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 DEMO := demo-out
 
-.PHONY: demo test install install-test ngspice bench clean
+.PHONY: demo test install install-test ngspice postgresql bench clean
 
 $(BIN)/python:
 	$(PY) -m venv $(VENV)
@@ -22,6 +22,14 @@ ngspice:
 	  echo "installing ngspice (Debian package) for the simulator cross-checks"; \
 	  if [ "$$(id -u)" = 0 ]; then SUDO=; else SUDO=sudo; fi; \
 	  $$SUDO apt-get update -qq && DEBIAN_FRONTEND=noninteractive $$SUDO apt-get install -y -qq ngspice >/dev/null; }
+
+# PostgreSQL is the ledger's second database: the ledger tests start a throwaway cluster
+# (initdb + pg_ctl as an unprivileged user, unix socket only) from Debian's server binaries.
+postgresql:
+	@ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1 || command -v initdb >/dev/null 2>&1 || { \
+	  echo "installing postgresql (Debian package) for the ledger tests"; \
+	  if [ "$$(id -u)" = 0 ]; then SUDO=; else SUDO=sudo; fi; \
+	  $$SUDO apt-get update -qq && DEBIAN_FRONTEND=noninteractive $$SUDO apt-get install -y -qq postgresql >/dev/null; }
 
 demo: install
 	@echo "== Fitting the demo stock (invented data, made by curves/make_demo.py) =="
@@ -47,13 +55,14 @@ demo: install
 	$(BIN)/platebook stage stack --bottom $(DEMO)/cards/MM-01_A.koren.json --top $(DEMO)/cards/MM-01_B.koren.json \
 	  --bplus 400 --rk 1k --r-top 1k --rl 47k --vhk-max 200 --plot $(DEMO)/stage_srpp.png
 
-test: install-test ngspice
+test: install-test ngspice postgresql
 	$(BIN)/python -m pytest -q
 
 bench: install
 	$(BIN)/python bench/fit.py
 	$(BIN)/python bench/stage.py
 	$(BIN)/python bench/match.py --sizes 100,1000,10000
+	$(BIN)/python bench/ledger.py
 
 clean:
 	rm -rf $(DEMO) .pytest_cache

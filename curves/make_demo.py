@@ -9,7 +9,9 @@ deciding what to keep, sell as a matched pair, or throw away:
 * ``PT-01`` .. ``PT-04``: power triodes (a 300B-like type), one section each;
 * ``HM-20``: one more high-mu dual, traced into positive grid with its grid current;
 * ``MM-SHEET``: the "typical" curves of the medium-mu type, digitised from a
-  datasheet plot (wide layout).
+  datasheet plot (wide layout);
+* ``retest_medium_mu.csv``: ``MM-03`` traced again a year later, its perveance down 10 %
+  from wear (a re-test for the stock ledger's demo).
 
 Known by construction (so the demo can be checked): ``HM-07`` and ``PT-03`` are weak
 (low emission: their perveance is multiplied by 0.55 and 0.45 on top of the lot's
@@ -550,6 +552,15 @@ def demo_files(seed=SEED):
     sheet_type = TUBE_TYPES["medium_mu"]
     va, curves, slips = digitise_sheet(rng, sheet_type)
     files["datasheet_medium_mu_wide.csv"] = wide_csv(va, curves, slips, sheet_type, seed)
+    # drawn after everything above, so the earlier files do not change: MM-03 a year on,
+    # perveance (1/kg1) down 10 % from wear
+    again = []
+    for u in lot["stock_medium_mu"]:
+        if u["tube"] == "MM-03":
+            params = dict(u["params"], kg1=u["params"]["kg1"] / 0.90)
+            again.append(dict(tube=u["tube"], section=u["section"], params=params, **trace(rng, sheet_type, params)))
+    files["retest_medium_mu.csv"] = long_csv(again, sheet_type, seed).replace(
+        "# Fictional workshop lot:", "# Re-test a year later (perveance down 10 % from wear) of the fictional lot:", 1)
     return files
 
 

@@ -337,8 +337,9 @@ def test_python_m_fitter_json_on_a_terminal_has_no_progress_bar(lot):
 
 
 def test_demo_stock_fits(tmp_path):
-    # smoke test of the repository's demo stock (invented data, curves/make_demo.py)
-    files = sorted((REPO / "curves").glob("*.csv"))
+    # smoke test of the repository's demo stock (invented data, curves/make_demo.py); the
+    # re-test file traces a tube of the stock again (for the ledger), so it is fitted apart
+    files = sorted(f for f in (REPO / "curves").glob("*.csv") if not f.name.startswith("retest_"))
     assert files, "no demo files in curves/"
     r = run("fit", *files, "--model", "koren", "--json", "--jobs", "2")
     assert r.exit_code == 0, r.stdout[-2000:] + r.stderr[-2000:]

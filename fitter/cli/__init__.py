@@ -33,6 +33,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "match": ("match", "Match the units in FITS by what each does in the position it will work in."),
     "response": ("design", "Frequency response of a stage: gain and phase from 1 Hz to 1 MHz, the -3 dB points."),
     "sweep": ("design", "Sweep one component or supply of a stage and tabulate what a designer weighs."),
+    "stock": ("stock", "The stock ledger: every tube, measurement, fit, re-test, grade and reservation."),
 }
 
 #: exit status of an unexpected internal error (1 is bad input, 2 a failed fit or solve)

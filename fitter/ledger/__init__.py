@@ -1,0 +1,16 @@
+"""The stock ledger: every tube, measurement, fit, re-test, grade and reservation, kept in
+SQLite (the default, no set-up) or PostgreSQL (a shop where several people work).
+
+It stores and loads; the engine (``fitter.*`` outside this package) never imports it, it
+imports the engine.  Modules:
+
+* :mod:`fitter.ledger.db`: opening a ledger from a URL (SQLite pragmas, PostgreSQL), units of
+  work with retries, password-free URLs and errors;
+* :mod:`fitter.ledger.schema`: the tables (SQLAlchemy 2 declarative mapping) and the binary
+  layout of stored points;
+* :mod:`fitter.ledger.migrations`: Alembic's scripts (run programmatically by ``db.upgrade``);
+* :mod:`fitter.ledger.store`: the use cases on the tables (import, re-test drift, grade, list,
+  match, reserve, sell, retire, re-fit, back up, restore, copy).
+
+The front ends reach it through :mod:`fitter.service.stock`.
+"""
