@@ -60,8 +60,8 @@ def load_user():
 def check_csrf():
     if request.method in ("GET", "HEAD", "OPTIONS") or g.get("via_token"):
         return
-    if request.path.startswith("/api/") and _bearer() is not None:
-        return  # a Bearer call carries no cookie authority; load_user decided who it is
+    if request.path.startswith("/api/") and (_bearer() is not None or g.get("user") is None):
+        return  # no cookie authority in play: the view answers 401 or the token decided who it is
     sent = request.form.get("csrf_token") or request.headers.get("X-CSRF-Token") or ""
     want = session.get("csrf") or ""
     if not want or not hmac.compare_digest(sent.encode(), want.encode()):
