@@ -278,7 +278,9 @@ def import_uploads(db, user, files, tube_type, model="koren", instrument="", not
             named.append((q, name))
         res = stock.import_files(db=db, user=user, paths=[str(p) for p, _ in named], tube_type=tube_type,
                                  model=model, instrument=instrument, notes=notes)
-    shas = [hashlib.sha256(d).hexdigest() for _, d in files]
+    d = res.to_dict()
+    # the units stored now (a file whose bytes were imported before adds none)
+    shas = [hashlib.sha256(data).hexdigest() for (_, data), fd in zip(files, d["files"]) if not fd["duplicate"]]
     units = []
     with _ledger(db) as ledger, ledger.read() as s:
         for sha in shas:
@@ -288,7 +290,6 @@ def import_uploads(db, user, files, tube_type, model="koren", instrument="", not
             for f in fits:
                 _, _, sec, tube, _ = _load(s, f.id)
                 units.append(_unit_dict(f, sec, tube))
-    d = res.to_dict()
     for fd, (name, _) in zip(d["files"], files):
         fd["file"] = shown(str(name))
     return {"files": d["files"], "units": units, "failed": res.failed, "lines": list(res.lines)}

@@ -186,3 +186,13 @@ def test_a_session_cookie_does_not_replace_csrf_on_the_api(fresh_signed_in):
     c = fresh_signed_in("editor")
     r = c.post("/api/v1/match", json={"units": [1], "va": 1, "vg": -1})
     assert r.status_code == 400 and "security token" in r.get_json()["errors"][0]["message"]
+
+
+def test_the_same_file_twice_is_stored_once_and_the_second_answer_says_so(api):
+    client, db, good = api
+    tok = token_for(db, "editor")
+    first = _upload(client, tok, [("good.csv", good)]).get_json()
+    again = _upload(client, tok, [("copy.csv", good)])
+    assert again.status_code == 201
+    assert again.get_json()["units"] == [] and again.get_json()["files"][0]["duplicate"] is True
+    assert len(first["units"]) == 4 and _count(db) == 2
