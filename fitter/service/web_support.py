@@ -430,3 +430,59 @@ def stock_page(db, tube_type=None, grade=None, status=None, sort="label", descen
     d["page"], d["per_page"] = page, per_page
     d["pages"] = max(1, -(-d["total"] // per_page))
     return d
+
+
+# -- the stage page ---------------------------------------------------------------------
+
+
+def resolve_unit(db, text, field="tube") -> int:
+    """A unit id from what a person types: the id itself, or a tube label with its section
+    (``MM-01:A``; a single triode's label alone), meaning that section's current fit."""
+    from . import stock
+
+    text = (text or "").strip() if isinstance(text, str) else text
+    if text in (None, ""):
+        raise InputError("give a tube (label:section, or a unit id)", field=field)
+    if isinstance(text, int) or text.isdigit():
+        return _unit_id(text)
+    label, _, section = text.rpartition(":") if ":" in text else (text, "", "")
+    try:
+        secs = stock.show_tube(db=db, label=label).data["sections"]
+    except InputError as e:
+        raise InputError(e.message, field=field) from None
+    for s in secs:
+        if (s["section"] or "") == section and s.get("fit_id") and s.get("converged"):
+            return s["fit_id"]
+    names = ", ".join(f"{label}:{s['section']}" if s["section"] else label for s in secs if s.get("converged"))
+    raise InputError(f"no fitted section {shown(text)!r}" + (f" (fitted: {names})" if names else ""), field=field)
+
+
+def stage_fields(kind) -> list:
+    """(field, default) of a kind of stage, in the stage's order (the page's form)."""
+    from dataclasses import MISSING
+
+    from .stages import KINDS
+
+    if kind not in KINDS:
+        raise InputError(f"must be one of {', '.join(KINDS)}, got {shown(str(kind))!r}", field="kind")
+    out = []
+    for name, f in KINDS[kind].__dataclass_fields__.items():
+        out.append((name, None if f.default is MISSING else f.default))
+    return out
+
+
+def stage_report(db, kind, circuit, tube=None, bottom=None, top=None) -> dict:
+    """A stage solved with tubes from the ledger: ``{"result": to_dict(), "report": text,
+    "plot_svg": load-line plot (SVG bytes)}``; tubes by label:section or unit id."""
+    from ..plotting_stage import save_load_line_plot
+
+    ids = {}
+    for n, v in (("tube", tube), ("bottom", bottom), ("top", top)):
+        if v not in (None, ""):
+            ids[n] = resolve_unit(db, v, n)
+    if kind == "stack" and ids.get("bottom") is not None and ids.get("bottom") == ids.get("top"):
+        raise InputError("the bottom and the top must be two different sections", field="top")
+    res = stage_by_id(db, kind, {k: v for k, v in circuit.items() if v not in (None, "")}, **ids)
+    with tempfile.TemporaryDirectory(prefix="platebook-stage-") as tmp:
+        svg = save_load_line_plot(res, Path(tmp, "stage.svg")).read_bytes()
+    return {"result": res.to_dict(), "report": res.report(), "plot_svg": svg, "units": ids}
