@@ -31,9 +31,12 @@ def index():
     tubes = {k: request.args.get(k, "") for k in ("tube", "bottom", "top")}
     if any(tubes.values()):
         try:
-            out = web_support.stage_report(ledger(), kind, values, **({"tube": tubes["tube"]} if kind != "stack" else
-                                                                      {"bottom": tubes["bottom"], "top": tubes["top"]}))
-            out["plot_uri"] = "data:image/svg+xml;base64," + base64.b64encode(out["plot_svg"]).decode()
+            out = web_support.stage_report(ledger(), kind, values, thd=request.args.get("thd") == "1",
+                                           **({"tube": tubes["tube"]} if kind != "stack" else
+                                              {"bottom": tubes["bottom"], "top": tubes["top"]}))
+            for key in ("plot", "thd"):
+                if out.get(key + "_svg"):
+                    out[key + "_uri"] = "data:image/svg+xml;base64," + base64.b64encode(out[key + "_svg"]).decode()
         except InputError as e:
             error = f"{e.field}: {e.message}" if e.field else str(e)
         except RuntimeError as e:  # a valid circuit that cannot be solved

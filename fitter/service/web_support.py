@@ -347,6 +347,23 @@ def match_by_id(db, ids, va, vg, tolerance=5.0, group=2) -> dict:
 STAGE_KINDS = ("common-cathode", "cathode-follower", "stack")
 
 
+def _parse_circuit(circuit) -> dict:
+    """The circuit's fields with text in engineering notation turned into numbers (field named)."""
+    from ..units import parse_value
+
+    values = {}
+    for k, v in circuit.items():
+        if isinstance(v, str) and k not in ("top_grid", "output"):
+            try:
+                v = float(parse_value(v))
+            except ValueError:
+                raise InputError(f"cannot read {shown(v)!r}; give a number such as 100k or 2.2u", field=k) from None
+        elif isinstance(v, bool) or not (v is None or isinstance(v, (int, float, str))):
+            raise InputError("must be a number", field=str(k))
+        values[str(k)] = v
+    return values
+
+
 def stage_by_id(db, kind, circuit, tube=None, bottom=None, top=None):
     """Solve a stage with stored units (:func:`fitter.service.stages.solve_stage`); the
     result's ``to_dict()`` is what ``platebook stage --json`` prints."""
@@ -362,19 +379,7 @@ def stage_by_id(db, kind, circuit, tube=None, bottom=None, top=None):
         if given[n] is None:
             raise InputError("give the unit id", field=n)
     ids = [_unit_id(given[n]) for n in names]
-    from ..units import parse_value
-
-    values = {}
-    for k, v in circuit.items():
-        if isinstance(v, str) and k not in ("top_grid", "output"):
-            try:
-                v = float(parse_value(v))
-            except ValueError:
-                raise InputError(f"cannot read {shown(v)!r}; give a number such as 100k or 2.2u", field=k) from None
-        elif isinstance(v, bool) or not (v is None or isinstance(v, (int, float, str))):
-            raise InputError("must be a number", field=str(k))
-        values[str(k)] = v
-    circuit = values
+    circuit = _parse_circuit(circuit)
     with _card_files(db, ids) as cards:
         spec = StageSpec(kind=kind, circuit=circuit, **dict(zip(names, cards)))
         return solve_stage(spec)
@@ -471,10 +476,12 @@ def stage_fields(kind) -> list:
     return out
 
 
-def stage_report(db, kind, circuit, tube=None, bottom=None, top=None) -> dict:
+def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False) -> dict:
     """A stage solved with tubes from the ledger: ``{"result": to_dict(), "report": text,
-    "plot_svg": load-line plot (SVG bytes)}``; tubes by label:section or unit id."""
-    from ..plotting_stage import save_load_line_plot
+    "plot_svg": load-line plot (SVG bytes)}``, with ``thd``: also ``"thd_svg"`` and
+    ``"thd_report"`` of a THD sweep up to grid-current onset; tubes by label:section or id."""
+    from ..plotting_stage import save_load_line_plot, save_thd_plot
+    from .stages import DistortionSpec, stage_distortion
 
     ids = {}
     for n, v in (("tube", tube), ("bottom", bottom), ("top", top)):
@@ -483,6 +490,14 @@ def stage_report(db, kind, circuit, tube=None, bottom=None, top=None) -> dict:
     if kind == "stack" and ids.get("bottom") is not None and ids.get("bottom") == ids.get("top"):
         raise InputError("the bottom and the top must be two different sections", field="top")
     res = stage_by_id(db, kind, {k: v for k, v in circuit.items() if v not in (None, "")}, **ids)
+    out = {"result": res.to_dict(), "report": res.report(), "units": ids}
     with tempfile.TemporaryDirectory(prefix="platebook-stage-") as tmp:
-        svg = save_load_line_plot(res, Path(tmp, "stage.svg")).read_bytes()
-    return {"result": res.to_dict(), "report": res.report(), "plot_svg": svg, "units": ids}
+        out["plot_svg"] = save_load_line_plot(res, Path(tmp, "stage.svg")).read_bytes()
+        if thd:
+            names = ("tube",) if kind != "stack" else ("bottom", "top")
+            given = _parse_circuit({k: v for k, v in circuit.items() if v not in (None, "")})
+            with _card_files(db, [ids[n] for n in names]) as cards:
+                sw = stage_distortion(DistortionSpec(kind=kind, circuit=given, sweep=True, **dict(zip(names, cards))))
+            out["thd_svg"] = save_thd_plot(sw, Path(tmp, "thd.svg")).read_bytes()
+            out["thd_report"] = sw.report()
+    return out

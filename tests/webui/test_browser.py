@@ -117,8 +117,8 @@ def test_sign_in_upload_open_a_tube_and_download_its_spice_file(server, shots, s
                 page.goto(server + "/match?type=DT&group=pairs&tolerance=5")
                 assert "group(s) at va 250 V, vg -8.5 V" in page.inner_text("main")
                 page.screenshot(path=str(shots / f"{size}-7-matching.png"), full_page=True)
-                page.goto(server + "/stage?kind=stack&bottom=LOT01:A&top=LOT01:B&b_plus=300&rk=1k&r_top=1k&r_mid=47k")
-                assert page.locator("pre.report").count() == 1  # a mu follower with the two sections of LOT01
+                page.goto(server + "/stage?kind=stack&bottom=LOT01:A&top=LOT01:B&b_plus=300&rk=1k&r_top=1k&r_mid=47k&thd=1")
+                assert page.locator("pre.report").count() == 2  # a mu follower of the two sections of LOT01, and its THD
                 page.screenshot(path=str(shots / f"{size}-8-stage.png"), full_page=True)
                 page.goto(server + "/tube/" + "%3Cscript%3Ealert(1)%3C%2Fscript%3E")
                 page.screenshot(path=str(shots / f"{size}-6-odd-name.png"), full_page=True)

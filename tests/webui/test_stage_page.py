@@ -35,3 +35,15 @@ def test_a_stack_refuses_the_same_section_twice_and_bad_values_are_named(signed_
     assert "ra: cannot read" in html
     html = c.get("/stage?kind=common-cathode&tube=W01:Z&b_plus=300&ra=100k&rk=1k").get_data(as_text=True)
     assert "tube: no fitted section" in html
+
+
+def test_thd_sweep_plot_and_report_on_request(signed_in, stocked):
+    c = signed_in("viewer")
+    q = "kind=common-cathode&tube=W01:A&b_plus=300&ra=100k&rk=1.5k&ck=22u&rl=470k"
+    assert "THD against level</h2>" not in c.get("/stage?" + q).get_data(as_text=True)
+    html = c.get("/stage?" + q + "&thd=1").get_data(as_text=True)
+    assert "THD against level</h2>" in html and html.count('src="data:image/svg+xml;base64,') == 2
+    want = web_support.stage_report(stocked[0], "common-cathode",
+                                    {"b_plus": "300", "ra": "100k", "rk": "1.5k", "ck": "22u", "rl": "470k"},
+                                    tube="W01:A", thd=True)["thd_report"]  # the distortion service's sweep
+    assert want.splitlines()[0] in html
