@@ -501,3 +501,28 @@ def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False)
             out["thd_svg"] = save_thd_plot(sw, Path(tmp, "thd.svg")).read_bytes()
             out["thd_report"] = sw.report()
     return out
+
+
+# -- the compare page --------------------------------------------------------------------
+
+MAX_COMPARE = 8
+
+
+def compare_plot(db, units) -> bytes:
+    """One SVG with the model curves of several stored units (label:section or unit id, at
+    most :data:`MAX_COMPARE`), each its own colour (:func:`fitter.plotting_compare.plot_compare`)."""
+    from ..card import load_card
+    from ..plotting_compare import save_compare_plot
+
+    texts = [u for u in units if str(u).strip()]
+    if len(texts) < 2:
+        raise InputError("name at least two tubes to compare", field="units")
+    if len(texts) > MAX_COMPARE:
+        raise InputError(f"at most {MAX_COMPARE} tubes at once, got {len(texts)}", field="units")
+    ids = [resolve_unit(db, t, "units") for t in texts]
+    if len(set(ids)) != len(ids):
+        raise InputError("a tube appears twice", field="units")
+    with _card_files(db, ids) as cards:
+        triodes = [load_card(c) for c in cards]
+    with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
+        return save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes()

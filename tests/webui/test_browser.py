@@ -120,6 +120,9 @@ def test_sign_in_upload_open_a_tube_and_download_its_spice_file(server, shots, s
                 page.goto(server + "/stage?kind=stack&bottom=LOT01:A&top=LOT01:B&b_plus=300&rk=1k&r_top=1k&r_mid=47k&thd=1")
                 assert page.locator("pre.report").count() == 2  # a mu follower of the two sections of LOT01, and its THD
                 page.screenshot(path=str(shots / f"{size}-8-stage.png"), full_page=True)
+                page.goto(server + "/compare?units=LOT01:A+LOT02:A+LOT03:B")
+                assert page.locator("figure img").count() == 1
+                page.screenshot(path=str(shots / f"{size}-9-compare.png"), full_page=True)
                 page.goto(server + "/tube/" + "%3Cscript%3Ealert(1)%3C%2Fscript%3E")
                 page.screenshot(path=str(shots / f"{size}-6-odd-name.png"), full_page=True)
                 ctx.close()
