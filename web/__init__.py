@@ -44,7 +44,7 @@ def create_app(config: dict | None = None) -> Flask:
     variables (``PLATEBOOK_SECRET_KEY``), then ``config``."""
     from fitter.service.accounts import SignInThrottle
 
-    from . import api, auth, compare, matching, stages, stock, tubes, upload
+    from . import admin, api, auth, compare, matching, stages, stock, tubes, upload
     from .plots import PlotCache
 
     app = Flask(__name__)
@@ -55,7 +55,7 @@ def create_app(config: dict | None = None) -> Flask:
     app.extensions["platebook.throttle"] = SignInThrottle(free=app.config["SIGNIN_FREE_FAILURES"],
                                                           base=app.config["SIGNIN_BACKOFF_S"])
     app.extensions["platebook.plots"] = PlotCache(app.config["PLOT_CACHE_SIZE"])
-    for bp in (auth.bp, stock.bp, tubes.bp, upload.bp, matching.bp, stages.bp, compare.bp, api.bp):
+    for bp in (auth.bp, stock.bp, tubes.bp, upload.bp, matching.bp, stages.bp, compare.bp, admin.bp, api.bp):
         app.register_blueprint(bp)
     app.before_request(auth.load_user)
     app.before_request(auth.check_csrf)
