@@ -33,6 +33,8 @@ DEFAULTS = {
     "PLOT_CACHE_SIZE": 256,  # plots kept in memory, by fit id (a stored fit never changes)
     "SIGNIN_FREE_FAILURES": 3,  # failures per account and address before the back-off starts
     "SIGNIN_BACKOFF_S": 1.0,
+    "BACKGROUND_BYTES": 2 * 1024 * 1024,  # uploads larger than this run as a background job
+    "JOB_WORKER": False,  # start the background worker thread (platebook serve does)
 }
 
 CSP = ("default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
@@ -55,6 +57,10 @@ def create_app(config: dict | None = None) -> Flask:
     app.extensions["platebook.throttle"] = SignInThrottle(free=app.config["SIGNIN_FREE_FAILURES"],
                                                           base=app.config["SIGNIN_BACKOFF_S"])
     app.extensions["platebook.plots"] = PlotCache(app.config["PLOT_CACHE_SIZE"])
+    if app.config["JOB_WORKER"]:
+        from fitter.service.jobs import Worker
+
+        app.extensions["platebook.worker"] = Worker(app.config["LEDGER"]).start()
     for bp in (auth.bp, stock.bp, tubes.bp, upload.bp, matching.bp, stages.bp, compare.bp, admin.bp, api.bp):
         app.register_blueprint(bp)
     app.before_request(auth.load_user)

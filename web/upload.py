@@ -3,11 +3,11 @@ nothing stored on error."""
 
 from __future__ import annotations
 
-from flask import Blueprint, g, render_template, request
+from flask import Blueprint, current_app, g, redirect, render_template, request, url_for
 
 from fitter.errors import InputError
 from fitter.models import MODELS
-from fitter.service import stock, web_support
+from fitter.service import jobs, stock, web_support
 
 from .auth import ledger, need
 
@@ -31,6 +31,17 @@ def form():
 def post():
     files = [(f.filename or "", f.read()) for f in request.files.getlist("file") if f and (f.filename or "")]
     chosen = {"type": request.form.get("type", ""), "model": request.form.get("model", "koren")}
+    extra = {"instrument": request.form.get("instrument", "")[:200], "notes": request.form.get("notes", "")[:2000]}
+    if sum(len(d) for _, d in files) > current_app.config["BACKGROUND_BYTES"]:
+        try:
+            job_id = jobs.submit(ledger(), g.user["name"], files, chosen["type"], chosen["model"], **extra)
+        except web_support.UploadError as e:
+            return _form(errors=e.errors, chosen=chosen), 400
+        except InputError as e:
+            return _form(errors=[{"file": e.file, "line": e.line, "column": e.column,
+                                  "message": (f"{e.field}: " if e.field and not e.file else "") + e.message}],
+                         chosen=chosen), 400
+        return redirect(url_for("upload.job", job_id=job_id))
     try:
         res = web_support.import_uploads(ledger(), g.user["name"], files, chosen["type"], chosen["model"],
                                          instrument=request.form.get("instrument", "")[:200],
@@ -42,3 +53,10 @@ def post():
                               "message": (f"{e.field}: " if e.field and not e.file else "") + e.message}],
                      chosen=chosen), 400
     return _form(done=res, chosen=chosen)
+
+
+@bp.route("/jobs/<int:job_id>")
+@need("editor")
+def job(job_id):
+    d = jobs.job(ledger(), job_id)
+    return render_template("job.html", title=f"Upload job {job_id}", d=d)

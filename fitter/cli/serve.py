@@ -31,7 +31,7 @@ def serve(db, port, threads, secure_cookies):
 
     from web import create_app
 
-    app = create_app({"LEDGER": db, "SESSION_COOKIE_SECURE": secure_cookies})
+    app = create_app({"LEDGER": db, "SESSION_COOKIE_SECURE": secure_cookies, "JOB_WORKER": True})
     if not os.environ.get("PLATEBOOK_SECRET_KEY"):
         click.echo("note: no PLATEBOOK_SECRET_KEY set; sessions end when the server stops")
     click.echo(f"Platebook on http://127.0.0.1:{port}/ over {where} (Ctrl-C stops it)")
