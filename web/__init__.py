@@ -102,7 +102,8 @@ def create_app(config: dict | None = None) -> Flask:
     app.register_error_handler(404, lambda e: page_error(404, "Not found", "There is nothing at this address."))
     app.register_error_handler(405, lambda e: page_error(405, "Not allowed", "This address does not take that method."))
     app.register_error_handler(413, lambda e: page_error(
-        413, "Too large", f"The upload is larger than {app.config['MAX_CONTENT_LENGTH'] // (1024 * 1024)} MB."))
+        413, "Too large", f"The upload is larger than {app.config['MAX_CONTENT_LENGTH'] / (1024 * 1024):.3g} MB "
+                          "allowed in one request; send fewer files at a time."))
     app.register_error_handler(500, lambda e: page_error(500, "Server error",
                                                          "Something went wrong on our side; nothing was changed."))
     return app

@@ -179,3 +179,34 @@ def test_a_disabled_account_is_signed_out_at_its_next_request(app, stocked):
     assert sign_in(c, "temp1").status_code == 302
     accounts.set_disabled(stocked[0], "temp1", True)
     assert c.get("/stock").status_code == 302
+
+
+def test_a_retested_tube_shows_its_drift_and_both_measurements(fresh_signed_in, fresh, synth, tube_types, write_long,
+                                                              tmp_path):
+    from fitter.service import stock
+
+    from .webtools import make_stock
+
+    first = make_stock(synth, tube_types, write_long, tmp_path / "first.csv", n_tubes=1, seed=31, prefix="RT")
+    again = make_stock(synth, tube_types, write_long, tmp_path / "again.csv", n_tubes=1, seed=32, prefix="RT")
+    stock.import_files(fresh, "ann", [str(first)], "DT")
+    stock.import_files(fresh, "ann", [str(again)], "DT")
+    d = stock.show_tube(fresh, "RT01").data  # the stock service's drift, the page must show it
+    html = fresh_signed_in("viewer").get("/tube/RT01").get_data(as_text=True)
+    for s in d["sections"]:
+        assert f"Ia {s['drift']['ia_pct']:+.2f}" in html
+    assert html.count("re-test</td>") == 2 and html.count("first test</td>") == 2
+
+
+def test_an_upload_over_the_size_limit_is_a_clear_413(fresh):
+    from web import create_app
+
+    app = create_app({"LEDGER": fresh, "SECRET_KEY": "k", "MAX_CONTENT_LENGTH": 2000})
+    c = app.test_client()
+    assert sign_in(c, "editor1").status_code == 302
+    tok = csrf_of(c.get("/upload").get_data(as_text=True))
+    import io
+
+    r = c.post("/upload", data={"csrf_token": tok, "type": "DT", "file": [(io.BytesIO(b"x" * 5000), "big.csv")]},
+               content_type="multipart/form-data")
+    assert r.status_code == 413 and "larger than 0.00191 MB" in r.get_data(as_text=True)  # 2000 bytes
