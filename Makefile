@@ -3,8 +3,9 @@ PY ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 DEMO := demo-out
+DEMO_PORT ?= 8150
 
-.PHONY: demo test install install-test ngspice postgresql bench clean
+.PHONY: demo test install install-test ngspice postgresql chromium bench clean
 
 $(BIN)/python:
 	$(PY) -m venv $(VENV)
@@ -31,6 +32,14 @@ postgresql:
 	  if [ "$$(id -u)" = 0 ]; then SUDO=; else SUDO=sudo; fi; \
 	  $$SUDO apt-get update -qq && DEBIAN_FRONTEND=noninteractive $$SUDO apt-get install -y -qq postgresql >/dev/null; }
 
+# chromium is the browser the web front end's browser test drives through Playwright (Debian
+# package; Playwright's own browser download is never used).
+chromium:
+	@test -x /usr/bin/chromium || { \
+	  echo "installing chromium (Debian package) for the browser test"; \
+	  if [ "$$(id -u)" = 0 ]; then SUDO=; else SUDO=sudo; fi; \
+	  $$SUDO apt-get update -qq && DEBIAN_FRONTEND=noninteractive $$SUDO apt-get install -y -qq chromium >/dev/null; }
+
 demo: install
 	@echo "== Fitting the demo stock (invented data, made by curves/make_demo.py) =="
 	$(BIN)/platebook fit curves/stock_high_mu.csv curves/stock_medium_mu.csv curves/stock_power.csv \
@@ -54,8 +63,24 @@ demo: install
 	@echo; echo "== An SRPP with the two sections of MM-01 (elevated-heater check) =="
 	$(BIN)/platebook stage stack --bottom $(DEMO)/cards/MM-01_A.koren.json --top $(DEMO)/cards/MM-01_B.koren.json \
 	  --bplus 400 --rk 1k --r-top 1k --rl 47k --vhk-max 200 --plot $(DEMO)/stage_srpp.png
+	@echo; echo "== The web front end over a demo ledger ($(DEMO)/ledger.sqlite; the invented stock) =="
+	rm -f $(DEMO)/ledger.sqlite $(DEMO)/ledger.sqlite-wal $(DEMO)/ledger.sqlite-shm
+	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo type MM --va 250 --vg -8.5
+	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo type HM --va 250 --vg -2
+	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo import curves/stock_medium_mu.csv --type MM \
+	  >/dev/null; status=$$?; [ $$status -le 2 ] || exit $$status
+	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo import curves/stock_high_mu.csv --type HM \
+	  >/dev/null; status=$$?; [ $$status -le 2 ] || exit $$status
+	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo import curves/retest_medium_mu.csv --type MM \
+	  >/dev/null; status=$$?; [ $$status -le 2 ] || exit $$status
+	@pw=$$($(BIN)/python -c "import secrets; print(secrets.token_urlsafe(12))"); \
+	  echo "$$pw" | $(BIN)/platebook users --db $(DEMO)/ledger.sqlite add demo --role editor --password-stdin >/dev/null && \
+	  echo "Demo ledger ready. Sign in at http://127.0.0.1:$(DEMO_PORT)/ as 'demo' with password $$pw" && \
+	  echo "(an editor account of this demo ledger only; the password is new on every 'make demo')"
+	@if [ -n "$$PLATEBOOK_DEMO_NO_SERVE" ]; then echo "PLATEBOOK_DEMO_NO_SERVE is set: not serving"; else \
+	  $(BIN)/platebook serve --db $(DEMO)/ledger.sqlite --port $(DEMO_PORT); fi
 
-test: install-test ngspice postgresql
+test: install-test ngspice postgresql chromium
 	$(BIN)/python -m pytest -q
 
 bench: install

@@ -35,6 +35,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "sweep": ("design", "Sweep one component or supply of a stage and tabulate what a designer weighs."),
     "stock": ("stock", "The stock ledger: every tube, measurement, fit, re-test, grade and reservation."),
     "output": ("output", "Output stages: a power triode into a transformer, single-ended or push-pull."),
+    "users": ("users", "Accounts of the web front end (viewer, editor, admin) and their API tokens."),
+    "serve": ("serve", "Serve the web front end on this machine (127.0.0.1) over the ledger."),
 }
 
 #: exit status of an unexpected internal error (1 is bad input, 2 a failed fit or solve)

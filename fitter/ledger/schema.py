@@ -35,7 +35,7 @@ __all__ = ["Base", "TubeType", "Tube", "Section", "SourceFile", "Measurement", "
 #: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired
 STATUSES = ("in-stock", "reserved", "sold", "retired")
 #: the Alembic revision this code expects
-HEAD = "0001_ledger"
+HEAD = "0003_upload_jobs"
 
 _NAMING = {"ix": "ix_%(column_0_label)s", "uq": "uq_%(table_name)s_%(column_0_name)s",
            "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s", "pk": "pk_%(table_name)s"}
@@ -206,7 +206,7 @@ Index("ix_fits_measurement_engine", Fit.measurement_id, Fit.engine_version)
 
 #: every table, parents first (the order of backups, restores and copies)
 TABLES = ["tube_types", "tubes", "sections", "source_files", "measurements", "fits", "grades", "groups",
-          "group_members", "events"]
+          "group_members", "events", "accounts", "api_tokens", "upload_jobs"]
 
 
 def pack_points(va, vg, ia, ig, lines) -> bytes:
@@ -288,3 +288,8 @@ def _known_revisions() -> set:
     from alembic.script import ScriptDirectory
 
     return {s.revision for s in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
+
+
+# the web front end's accounts share this metadata (their migration is 0002_accounts)
+from . import accounts as _accounts  # noqa: E402,F401
+from . import jobs as _jobs  # noqa: E402,F401  (background uploads, migration 0003_upload_jobs)

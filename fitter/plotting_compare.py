@@ -1,0 +1,82 @@
+"""Several units' fitted plate curves on one plot (the web's Compare page), matplotlib Agg."""
+
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from . import CAUTION  # noqa: E402
+
+#: at most this many grid curves are drawn (spread evenly over the first unit's grid voltages)
+MAX_GRIDS = 7
+STYLES = ("-", "--", "-.", ":")
+
+
+def compare_grid(triodes) -> tuple[np.ndarray, list]:
+    """(plate voltages [V], grid voltages [V]) to draw: 0 to the highest plate voltage any unit
+    was measured at, and up to :data:`MAX_GRIDS` of the first unit's measured grid voltages
+    (its fitted range when it carries no envelope)."""
+    highs, grids = [], []
+    for t in triodes:
+        if t.envelope is not None:
+            highs.append(max(t.envelope.va_hi))
+            grids.append(sorted(set(t.envelope.vg), reverse=True))
+        elif t.valid_range is not None:
+            highs.append(t.valid_range["va_v"][1])
+            lo, hi = t.valid_range["vg_v"]
+            grids.append(list(np.linspace(hi, lo, MAX_GRIDS)))
+    va_max = max(highs) if highs else 400.0
+    g = grids[0] if grids else [0.0, -2.0, -4.0]
+    if len(g) > MAX_GRIDS:
+        g = [g[i] for i in np.linspace(0, len(g) - 1, MAX_GRIDS).round().astype(int)]
+    return np.linspace(0.0, va_max, 300), [float(x) for x in g]
+
+
+def plot_compare(triodes, ax=None):
+    """Each unit's model curves (one colour per unit, one line per grid voltage, each curve
+    labelled with its grid voltage at its end) over a common plate-voltage range; returns the
+    axes."""
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(9, 6))
+        fig.subplots_adjust(left=0.08, right=0.94, top=0.93, bottom=0.13)
+    va, grids = compare_grid(triodes)
+    colours = plt.get_cmap("tab10")
+    top = 0.0
+    first = []
+    for k, t in enumerate(triodes):
+        c = colours(k % 10)
+        for j, g in enumerate(grids):
+            with np.errstate(all="ignore"):
+                ia = 1e3 * np.asarray(t.current(va, np.full_like(va, g)), float)
+            ia = np.where(np.isfinite(ia), ia, np.nan)
+            ax.plot(va, ia, color=c, ls=STYLES[k % len(STYLES)], lw=1.4, label=t.label if j == 0 else None)
+            if k == 0:
+                first.append((g, ia))
+        if t.envelope is not None:
+            top = max(top, 1e3 * t.envelope.ia_max)
+    ax.set_xlim(0, va[-1] * 1.06)
+    top = (top or max(float(np.nanmax(ia)) for _, ia in first)) * 1.15
+    ax.set_ylim(0, top)
+    for g, ia in first:  # each grid curve of the first unit named where it leaves the frame or ends
+        inside = np.flatnonzero(ia <= 0.97 * top)
+        if inside.size:
+            i = int(inside[-1])
+            ax.annotate(f"{g:g} V", (va[i], ia[i]), fontsize=7, color="0.3", xytext=(3, 0), textcoords="offset points")
+    ax.set_xlabel("plate voltage Va [V]")
+    ax.set_ylabel("plate current Ia [mA]")
+    ax.grid(True, alpha=0.3)
+    ax.legend(loc="upper left", fontsize=8, title="unit (model curves)")
+    ax.set_title(f"{len(triodes)} units compared at grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V",
+                 fontsize=10)
+    ax.figure.text(0.01, 0.01, CAUTION, fontsize=6, color="0.35")
+    return ax
+
+
+def save_compare_plot(triodes, path):
+    """Write :func:`plot_compare` to ``path`` (SVG or PNG by suffix), atomically; returns the path."""
+    from .plotting_stage import _save
+
+    return _save(plot_compare(triodes).figure, path)

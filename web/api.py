@@ -1,0 +1,205 @@
+"""The JSON API under ``/api/v1`` (Bearer tokens) and its OpenAPI 3 document.
+
+Every error is JSON: ``{"errors": [{"field" | "file", "line", "column", "message"}]}`` with
+400 (bad input), 401 (no or bad token), 403 (role), 404 (no such unit), 422 (valid input
+that gives no result: a stage that cannot be solved).
+"""
+
+from __future__ import annotations
+
+import json
+
+from flask import Blueprint, Response, g, request
+
+from fitter.errors import InputError
+from fitter.service import web_support
+
+from .auth import ledger, need
+
+bp = Blueprint("api", __name__, url_prefix="/api/v1")
+
+
+def _no_result(e, field=None):
+    return {"errors": [{"field": getattr(e, "field", field), "message": str(e)}]}, 422
+
+
+def _body() -> dict:
+    data = request.get_json(silent=True)
+    if not isinstance(data, dict):
+        raise InputError("send a JSON object (Content-Type: application/json)", field="body")
+    return data
+
+
+def _not_found(e: InputError):
+    if e.field == "id" and e.message.startswith("no unit"):
+        return {"errors": [e.to_dict()]}, 404
+    raise e
+
+
+@bp.route("/measurements", methods=["POST"])
+@need("editor")
+def measurements():
+    files = [(f.filename or "upload.csv", f.read()) for f in request.files.getlist("file") if f]
+    res = web_support.import_uploads(ledger(), g.user["name"], files, request.form.get("type", ""),
+                                     request.form.get("model", "koren"),
+                                     instrument=request.form.get("instrument", "")[:200],
+                                     notes=request.form.get("notes", "")[:2000])
+    return {"units": res["units"], "files": res["files"]}, 201
+
+
+@bp.route("/units/<unit_id>", methods=["GET"])
+@need("viewer")
+def unit(unit_id):
+    try:
+        return web_support.unit(ledger(), unit_id)
+    except InputError as e:
+        return _not_found(e)
+
+
+@bp.route("/units/<unit_id>/card", methods=["GET"])
+@need("viewer")
+def card(unit_id):
+    try:
+        return Response(json.dumps(web_support.unit_card(ledger(), unit_id), allow_nan=False),
+                        mimetype="application/json")
+    except InputError as e:
+        return _not_found(e)
+
+
+@bp.route("/units/<unit_id>/spice", methods=["GET"])
+@need("viewer")
+def spice(unit_id):
+    try:
+        name, text = web_support.unit_export(ledger(), unit_id, "spice")
+    except InputError as e:
+        return _not_found(e)
+    resp = Response(text, mimetype="text/plain")
+    resp.headers["Content-Disposition"] = f'inline; filename="{name}"'
+    return resp
+
+
+@bp.route("/match", methods=["POST"])
+@need("viewer")
+def match():
+    b = _body()
+    unknown = sorted(set(b) - {"units", "va", "vg", "tolerance", "group"})
+    if unknown:
+        raise InputError("not a field of a match request (units, va, vg, tolerance, group)", field=unknown[0])
+    for k in ("va", "vg"):
+        if k not in b:
+            raise InputError("required", field=k)
+    try:
+        return web_support.match_by_id(ledger(), b.get("units"), b["va"], b["vg"], b.get("tolerance", 5.0),
+                                       b.get("group", 2))
+    except RuntimeError as e:
+        return _no_result(e)
+
+
+@bp.route("/stage", methods=["POST"])
+@need("viewer")
+def stage():
+    b = _body()
+    unknown = sorted(set(b) - {"kind", "circuit", "tube", "bottom", "top"})
+    if unknown:
+        raise InputError("not a field of a stage request (kind, circuit, tube, bottom, top)", field=unknown[0])
+    try:
+        res = web_support.stage_by_id(ledger(), b.get("kind"), b.get("circuit", {}), b.get("tube"), b.get("bottom"),
+                                      b.get("top"))
+    except RuntimeError as e:
+        return _no_result(e)
+    return Response(json.dumps(res.to_dict(), allow_nan=False), mimetype="application/json")
+
+
+@bp.route("/openapi.json", methods=["GET"])
+def openapi():
+    return OPENAPI
+
+
+_ERR = {"description": "errors", "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Errors"}}}}
+_UNIT_ID = {"name": "id", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1},
+            "description": "a unit id (the id of a stored fit, as POST /measurements returns)"}
+
+OPENAPI = {
+    "openapi": "3.0.3",
+    "info": {"title": "Platebook API", "version": "1",
+             "description": "Triode units in the stock ledger: upload curve files, fetch model cards and SPICE "
+                            "subcircuits, match units, solve stages. CAUTION: tube circuits and curve tracers work "
+                            "at lethal voltages; follow your local electrical codes and licensed practice."},
+    "servers": [{"url": "/api/v1"}],
+    "security": [{"bearer": []}],
+    "components": {
+        "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer",
+                                       "description": "a token from 'platebook users token NAME'"}},
+        "schemas": {
+            "Errors": {"type": "object", "required": ["errors"], "properties": {"errors": {"type": "array", "items": {
+                "type": "object", "required": ["message"], "properties": {
+                    "field": {"type": "string", "nullable": True}, "file": {"type": "string", "nullable": True},
+                    "line": {"type": "integer", "nullable": True}, "column": {"type": "string", "nullable": True},
+                    "message": {"type": "string"}}}}}},
+            "Unit": {"type": "object", "required": ["id", "tube", "section", "fit"], "properties": {
+                "id": {"type": "integer"}, "tube": {"type": "string"}, "section": {"type": "string", "nullable": True},
+                "fit": {"type": "object", "required": ["model", "params", "stderr", "converged", "rms_ma"],
+                        "properties": {"model": {"type": "string"},
+                                       "params": {"type": "object", "additionalProperties": {"type": "number"}},
+                                       "stderr": {"type": "object",
+                                                  "additionalProperties": {"type": "number", "nullable": True}},
+                                       "converged": {"type": "boolean"},
+                                       "failure": {"type": "string", "nullable": True},
+                                       "rms_ma": {"type": "number", "nullable": True}}}}},
+        },
+    },
+    "paths": {
+        "/measurements": {"post": {
+            "summary": "Import one or more curve files (all or nothing) and fit every unit",
+            "requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
+                "type": "object", "required": ["file", "type"], "properties": {
+                    "file": {"type": "array", "items": {"type": "string", "format": "binary"}},
+                    "type": {"type": "string", "description": "the tube type (added with 'platebook stock type')"},
+                    "model": {"type": "string", "enum": ["power", "koren", "dempwolf"], "default": "koren"},
+                    "instrument": {"type": "string"}, "notes": {"type": "string"}}}}}},
+            "responses": {"201": {"description": "stored and fitted", "content": {"application/json": {"schema": {
+                "type": "object", "properties": {"units": {"type": "array",
+                                                           "items": {"$ref": "#/components/schemas/Unit"}}}}}}},
+                          "400": _ERR, "401": _ERR, "403": _ERR}}},
+        "/units/{id}": {"get": {"summary": "A unit and its fit", "parameters": [_UNIT_ID], "responses": {
+            "200": {"description": "the unit", "content": {"application/json": {
+                "schema": {"$ref": "#/components/schemas/Unit"}}}}, "400": _ERR, "401": _ERR, "404": _ERR}}},
+        "/units/{id}/card": {"get": {"summary": "The unit's model card (JSON)", "parameters": [_UNIT_ID],
+                                     "responses": {"200": {"description": "the model card", "content": {
+                                         "application/json": {"schema": {"type": "object"}}}},
+                                         "400": _ERR, "401": _ERR, "404": _ERR}}},
+        "/units/{id}/spice": {"get": {"summary": "The unit's SPICE subcircuit", "parameters": [_UNIT_ID],
+                                      "responses": {"200": {"description": "subcircuit text", "content": {
+                                          "text/plain": {"schema": {"type": "string"}}}},
+                                          "400": _ERR, "401": _ERR, "404": _ERR}}},
+        "/match": {"post": {
+            "summary": "Match units at a fixed-bias position (the same optimum as 'platebook match')",
+            "requestBody": {"required": True, "content": {"application/json": {"schema": {
+                "type": "object", "required": ["units", "va", "vg"], "properties": {
+                    "units": {"type": "array", "items": {"type": "integer"}},
+                    "va": {"type": "number", "description": "plate voltage [V]"},
+                    "vg": {"type": "number", "description": "grid voltage [V]"},
+                    "tolerance": {"type": "number", "default": 5, "description": "[%]"},
+                    "group": {"type": "integer", "enum": [2, 4], "default": 2}}}}}},
+            "responses": {"200": {"description": "groups and units left over", "content": {"application/json": {
+                "schema": {"type": "object", "required": ["groups", "unmatched"], "properties": {
+                    "groups": {"type": "array", "items": {"type": "object", "properties": {
+                        "units": {"type": "array", "items": {"type": "integer"}},
+                        "mismatch": {"type": "object", "properties": {"max_pct": {"type": "number"}}},
+                        "grade": {"type": "string"}}}},
+                    "unmatched": {"type": "array", "items": {"type": "object"}}}}}}},
+                "400": _ERR, "401": _ERR, "422": _ERR}}},
+        "/stage": {"post": {
+            "summary": "Solve a stage with stored units (the figures of 'platebook stage --json')",
+            "requestBody": {"required": True, "content": {"application/json": {"schema": {
+                "type": "object", "required": ["kind", "circuit"], "properties": {
+                    "kind": {"type": "string", "enum": ["common-cathode", "cathode-follower", "stack"]},
+                    "circuit": {"type": "object", "description": "the circuit's fields in SI units "
+                                                                 "(b_plus, ra, rk, ...); numbers or text like '100k'"},
+                    "tube": {"type": "integer"}, "bottom": {"type": "integer"}, "top": {"type": "integer"}}}}}},
+            "responses": {"200": {"description": "the stage's figures", "content": {
+                "application/json": {"schema": {"type": "object"}}}}, "400": _ERR, "401": _ERR, "422": _ERR}}},
+        "/openapi.json": {"get": {"summary": "This document", "security": [],
+                                  "responses": {"200": {"description": "OpenAPI 3"}}}},
+    },
+}
