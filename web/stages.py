@@ -11,6 +11,7 @@ from fitter.errors import InputError
 from fitter.service import web_support
 
 from .auth import ledger, need
+from .fields import LABELS, label
 
 bp = Blueprint("stages", __name__)
 
@@ -38,10 +39,10 @@ def index():
                 if out.get(key + "_svg"):
                     out[key + "_uri"] = "data:image/svg+xml;base64," + base64.b64encode(out[key + "_svg"]).decode()
         except InputError as e:
-            error = f"{e.field}: {e.message}" if e.field else str(e)
+            error = f"{label(e.field)}: {e.message}" if e.field else str(e)
         except RuntimeError as e:  # a valid circuit that cannot be solved
             error = f"no solution: {e}"
     main = [(n, d) for n, d in fields if n in MAIN]
     more = [(n, d) for n, d in fields if n not in MAIN]
     return render_template("stage.html", title="Stage", kind=kind, kinds=KINDS, main=main, more=more,
-                           values=values, tubes=tubes, out=out, error=error)
+                           values=values, tubes=tubes, out=out, error=error, labels=LABELS)

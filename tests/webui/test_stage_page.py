@@ -30,9 +30,10 @@ def test_mu_follower_with_two_sections_of_one_bottle(signed_in):
 def test_a_stack_refuses_the_same_section_twice_and_bad_values_are_named(signed_in):
     c = signed_in("viewer")
     html = c.get("/stage?kind=stack&bottom=W02:A&top=W02:A&b_plus=300&rk=1k&r_top=1k").get_data(as_text=True)
-    assert "top: the bottom and the top must be two different sections" in html
+    # errors name the field by the form's own label (web/fields.py)
+    assert "top tube: the bottom and the top must be two different sections" in html
     html = c.get("/stage?kind=common-cathode&tube=W01:A&b_plus=300&ra=lots&rk=1k").get_data(as_text=True)
-    assert "ra: cannot read" in html
+    assert "Ra [Ω]: cannot read" in html
     html = c.get("/stage?kind=common-cathode&tube=W01:Z&b_plus=300&ra=100k&rk=1k").get_data(as_text=True)
     assert "tube: no fitted section" in html
 
