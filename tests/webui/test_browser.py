@@ -117,8 +117,10 @@ def test_sign_in_upload_open_a_tube_and_download_its_spice_file(server, shots, s
                 page.goto(server + "/match?type=DT&group=pairs&tolerance=5")
                 assert "group(s) at va 250 V, vg -8.5 V" in page.inner_text("main")
                 page.screenshot(path=str(shots / f"{size}-7-matching.png"), full_page=True)
-                page.goto(server + "/stage?kind=stack&bottom=LOT01:A&top=LOT01:B&b_plus=300&rk=1k&r_top=1k&r_mid=47k&thd=1")
+                page.goto(server + "/stage?kind=stack&bottom=LOT01:A&top=LOT01:B&b_plus=300&rk=1k&r_top=1k&r_mid=47k"
+                          "&top_grid=coupled&thd=1")
                 assert page.locator("pre.report").count() == 2  # a mu follower of the two sections of LOT01, and its THD
+                assert "mu follower" in page.inner_text("pre.report >> nth=0").lower()
                 page.screenshot(path=str(shots / f"{size}-8-stage.png"), full_page=True)
                 page.goto(server + "/compare?units=LOT01:A+LOT02:A+LOT03:B")
                 assert page.locator("figure img").count() == 1
