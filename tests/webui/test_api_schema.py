@@ -70,3 +70,24 @@ def test_generated_requests_get_no_server_error_and_documented_responses(api_sch
                                        response_schema_conformance])
 
     run()
+
+
+# the requests schemathesis found giving server errors, kept as plain cases (the ranges are
+# web/api.py's _POSITION_RANGE; 2**63 is one past the largest SQL integer)
+@pytest.mark.parametrize(("body", "field"), [
+    ({"units": [1, 2], "va": 1e300, "vg": -8.5}, "va"),
+    ({"units": [1, 2], "va": 5e-324, "vg": 0.0}, "va"),
+    ({"units": [1, 2], "va": 250.0, "vg": -1e300}, "vg"),
+    ({"units": [2**63], "va": 250.0, "vg": -8.5}, "id"),
+])
+def test_a_match_with_an_absurd_position_or_unit_id_is_a_400_naming_the_field(api_schema, api_ledger, body, field):
+    _, token = api_ledger
+    r = api_schema.app.test_client().post("/api/v1/match", json=body, headers={"Authorization": f"Bearer {token}"})
+    assert r.status_code == 400, r.get_data(as_text=True)
+    assert r.get_json()["errors"][0]["field"] == field
+
+
+def test_a_unit_id_past_sql_integers_is_a_404(api_schema, api_ledger):
+    _, token = api_ledger
+    r = api_schema.app.test_client().get(f"/api/v1/units/{2**63}", headers={"Authorization": f"Bearer {token}"})
+    assert r.status_code == 404 and r.get_json()["errors"][0]["field"] == "id"
