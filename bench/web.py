@@ -14,7 +14,14 @@ Flask's test client, signed in (server time only: no network, no browser):
    the same sorted by Ia (every tube's figures read and sorted), best of 3 (goal of issue 10:
    <= 150 ms for the stock page of a 10,000-tube ledger);
 2. a tube page with its two fit plots (SVG), the first view (plots drawn) and a second (plots
-   from the cache) (goal <= 300 ms with plots, cached after the first view).
+   from the cache) (goal <= 300 ms with plots, cached after the first view);
+3. uploading N units (default 1,000, a long-layout CSV from ``bench/ledger.py``'s generator)
+   through ``POST /api/v1/measurements`` with an editor's Bearer token until all are fitted and
+   stored, on a fresh SQLite ledger, beside ``platebook fit --json`` on the same file (a whole
+   process) and the ratio (goal of issue 10: <= 1.5 x). The upload goes through Flask's test
+   client in this process (no network, no process start; the fit runs as in a served app).
+
+    python bench/web.py --upload-only --upload-units 1000
 """
 
 from __future__ import annotations
@@ -33,19 +40,28 @@ sys.path.insert(0, str(ROOT))
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--tubes", type=int, default=10_000)
+    ap.add_argument("--upload-units", type=int, default=1000)
+    ap.add_argument("--upload-only", action="store_true", help="only the upload through the API (3.)")
     a = ap.parse_args(argv)
     import importlib.util
-    import re
 
     spec = importlib.util.spec_from_file_location("bench_ledger", ROOT / "bench" / "ledger.py")
     bl = importlib.util.module_from_spec(spec)
     sys.modules["bench_ledger"] = bl
     spec.loader.exec_module(bl)
+    print(f"load average {os.getloadavg()[0]:.2f}")
+    if not a.upload_only:
+        pages(a, bl)
+    upload(a.upload_units, bl)
+
+
+def pages(a, bl):
+    import re
+
     from fitter.ledger.db import open_ledger
     from fitter.service import accounts, stock
     from web import create_app
 
-    print(f"load average {os.getloadavg()[0]:.2f}")
     with tempfile.TemporaryDirectory(prefix="platebook-bench-web-") as tmp:
         db = str(Path(tmp, "ledger.sqlite"))
         stock.init(db)
@@ -93,6 +109,38 @@ def main(argv=None):
         print(f"tube page with {len(plots)} fit plots, first view:     {1e3 * first:7.1f} ms")
         print(f"tube page with {len(plots)} fit plots, cached:         {1e3 * second:7.1f} ms "
               f"(goal <= 300 ms: {'met' if second <= 0.300 else 'MISSED'})")
+
+
+def upload(n_units, bl):
+    import io
+
+    from fitter.service import accounts, stock
+    from web import create_app
+
+    print(f"\nupload of {n_units} units through POST /api/v1/measurements vs 'platebook fit --json'")
+    with tempfile.TemporaryDirectory(prefix="platebook-bench-upload-") as tmp:
+        csv = Path(tmp, "stock.csv")
+        n, points = bl.write_stock(csv, n_units)
+        print(f"  {n} units, {points} points, {csv.stat().st_size / 1e6:.1f} MB")
+        fit_t, out = bl.timed(bl.platebook("fit", csv, "--json"))
+        fitted = len(__import__("json").loads(out)["fits"])
+        db = str(Path(tmp, "ledger.sqlite"))
+        stock.init(db)
+        stock.add_type(db, "bench", "MM", 250, -8.5)
+        accounts.add_account(db, "bench", "editor", "bench password")
+        token = accounts.new_token(db, "bench").data["token"]
+        c = create_app({"LEDGER": db}).test_client()
+        body = csv.read_bytes()
+        t = time.perf_counter()
+        r = c.post("/api/v1/measurements", data={"type": "MM", "file": [(io.BytesIO(body), "stock.csv")]},
+                   headers={"Authorization": f"Bearer {token}"}, content_type="multipart/form-data")
+        up_t = time.perf_counter() - t
+        assert r.status_code == 201, r.get_data(as_text=True)[:500]
+        stored = len(r.get_json()["units"])
+        ratio = up_t / fit_t
+        print(f"  platebook fit --json ({fitted} fits)      {fit_t:7.2f} s")
+        print(f"  upload through the API ({stored} stored)  {up_t:7.2f} s  = {ratio:.2f} x fit "
+              f"(goal <= 1.5 x: {'met' if ratio <= 1.5 else 'MISSED'})")
 
 
 if __name__ == "__main__":

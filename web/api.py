@@ -78,6 +78,11 @@ def spice(unit_id):
     return resp
 
 
+# the range of a test position the API accepts [V]: wider than any receiving triode's (common
+# practice), and it keeps the model equations away from floating-point overflow and underflow
+_POSITION_RANGE = {"va": (1.0, 10_000.0), "vg": (-1_000.0, 1_000.0)}
+
+
 @bp.route("/match", methods=["POST"])
 @need("viewer")
 def match():
@@ -88,6 +93,10 @@ def match():
     for k in ("va", "vg"):
         if k not in b:
             raise InputError("required", field=k)
+        lo, hi = _POSITION_RANGE[k]
+        v = b[k]
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and not lo <= v <= hi:
+            raise InputError(f"must be between {lo:g} and {hi:g} V, got {v:g}", field=k)
     try:
         return web_support.match_by_id(ledger(), b.get("units"), b["va"], b["vg"], b.get("tolerance", 5.0),
                                        b.get("group", 2))
@@ -175,10 +184,12 @@ OPENAPI = {
         "/match": {"post": {
             "summary": "Match units at a fixed-bias position (the same optimum as 'platebook match')",
             "requestBody": {"required": True, "content": {"application/json": {"schema": {
-                "type": "object", "required": ["units", "va", "vg"], "properties": {
-                    "units": {"type": "array", "items": {"type": "integer"}},
-                    "va": {"type": "number", "description": "plate voltage [V]"},
-                    "vg": {"type": "number", "description": "grid voltage [V]"},
+                "type": "object", "required": ["units", "va", "vg"], "additionalProperties": False, "properties": {
+                    "units": {"type": "array", "minItems": 1, "uniqueItems": True,
+                              "items": {"type": "integer", "minimum": 1, "maximum": 9223372036854775807}},
+                    "va": {"type": "number", "minimum": 1, "maximum": 10000,
+                           "description": "plate voltage [V]"},
+                    "vg": {"type": "number", "minimum": -1000, "maximum": 1000, "description": "grid voltage [V]"},
                     "tolerance": {"type": "number", "default": 5, "description": "[%]"},
                     "group": {"type": "integer", "enum": [2, 4], "default": 2}}}}}},
             "responses": {"200": {"description": "groups and units left over", "content": {"application/json": {
@@ -192,11 +203,12 @@ OPENAPI = {
         "/stage": {"post": {
             "summary": "Solve a stage with stored units (the figures of 'platebook stage --json')",
             "requestBody": {"required": True, "content": {"application/json": {"schema": {
-                "type": "object", "required": ["kind", "circuit"], "properties": {
+                "type": "object", "required": ["kind", "circuit"], "additionalProperties": False, "properties": {
                     "kind": {"type": "string", "enum": ["common-cathode", "cathode-follower", "stack"]},
                     "circuit": {"type": "object", "description": "the circuit's fields in SI units "
                                                                  "(b_plus, ra, rk, ...); numbers or text like '100k'"},
-                    "tube": {"type": "integer"}, "bottom": {"type": "integer"}, "top": {"type": "integer"}}}}}},
+                    "tube": {"type": "integer", "minimum": 1}, "bottom": {"type": "integer", "minimum": 1},
+                    "top": {"type": "integer", "minimum": 1}}}}}},
             "responses": {"200": {"description": "the stage's figures", "content": {
                 "application/json": {"schema": {"type": "object"}}}}, "400": _ERR, "401": _ERR, "422": _ERR}}},
         "/openapi.json": {"get": {"summary": "This document", "security": [],

@@ -40,13 +40,18 @@ class UploadError(InputError):
         super().__init__(f"{len(errors)} problem(s) in the upload; first: {first['message']}", field="file")
 
 
+_MAX_ID = 2**63 - 1  # the largest SQL integer (SQLite and PostgreSQL bigint)
+
+
 def _unit_id(value) -> int:
     try:
         i = int(value)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise InputError(f"a unit id is a whole number, got {shown(str(value))!r}", field="id") from None
     if i < 1:
         raise InputError(f"a unit id is a positive number, got {i}", field="id")
+    if i > _MAX_ID:
+        raise InputError(f"no unit {i} in the ledger (ids go up to {_MAX_ID})", field="id")
     return i
 
 
