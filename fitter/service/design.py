@@ -88,7 +88,7 @@ def stage_sweep(spec: SweepSpec):
     The swept field need not be in ``circuit`` (a required one, such as ``ra``, takes the
     range's first value to build the stage); a value it has there is replaced.
     """
-    from ..stage.sweeps import component_sweep, sweep_values
+    from ..stage.sweeps import component_sweep
     from .output import OUTPUT_KINDS
 
     if spec.kind in OUTPUT_KINDS:
@@ -102,24 +102,7 @@ def stage_sweep(spec: SweepSpec):
         names = [f for f in cls.__dataclass_fields__ if f not in ("top_grid", "output")]
         raise SpecError(f"a {spec.kind} stage has no field {spec.vary!r}; fields that can be swept: "
                         + ", ".join(names), field="vary")
-    from ..stage import StageInputError
-
-    try:
-        values = sweep_values(spec.start, spec.stop, spec.points, spec.log)
-    except StageInputError as e:
-        raise SpecError(f"{spec.vary}, {e.field} of the range: {e.message}", field="vary") from None
-    circuit = dict(spec.circuit)
-    circuit[spec.vary] = float(values[0])
-    # every value of the range checked before any solving; an impossible one is about the range
-    st = None
-    for v in values:
-        try:
-            built = build_stage(spec.kind, {**circuit, spec.vary: float(v)})
-        except StageInputError as e:
-            if e.field != spec.vary:
-                raise
-            raise SpecError(f"{spec.vary} = {float(v):g} in the range: {e.message}", field="vary") from None
-        st = st or built
+    values, st = _range_and_first_stage(spec, dict(spec.circuit), lambda c: build_stage(spec.kind, c))
     if spec.cards is not None:
         given = [k for k in ("tube", "bottom", "top") if getattr(spec, k) is not None]
         if given:
@@ -139,12 +122,33 @@ def stage_sweep(spec: SweepSpec):
                            slew_vpeak=spec.slew_vpeak, pairing=pairing)
 
 
+def _range_and_first_stage(spec: SweepSpec, circuit: dict, build):
+    """The swept values and the stage at the first; every value of the range is built (checked)
+    before any solving, and an impossible one is an error about the range (field ``vary``)."""
+    from ..stage import StageInputError
+    from ..stage.sweeps import sweep_values
+
+    try:
+        values = sweep_values(spec.start, spec.stop, spec.points, spec.log)
+    except StageInputError as e:
+        raise SpecError(f"{spec.vary}, {e.field} of the range: {e.message}", field="vary") from None
+    first = None
+    for v in values:
+        try:
+            built = build({**circuit, spec.vary: float(v)})
+        except StageInputError as e:
+            if e.field != spec.vary:
+                raise
+            raise SpecError(f"{spec.vary} = {float(v):g} in the range: {e.message}", field="vary") from None
+        first = first or built
+    return values, first
+
+
 def _output_sweep(spec: SweepSpec):
     """:func:`stage_sweep` of an output stage (:mod:`fitter.service.output`): ``level`` is an
     output power [W]; over a stock, a push-pull pairs the cards in their order (1+2, 3+4 ...,
     as a box of tubes would be used unsorted; an odd one left out)."""
-    from ..stage import StageInputError
-    from ..stage.sweeps import component_sweep, sweep_values
+    from ..stage.sweeps import component_sweep
     from .output import OUTPUT_KINDS, _tubes as output_tubes, build_output
 
     cls = OUTPUT_KINDS[spec.kind]
@@ -152,24 +156,12 @@ def _output_sweep(spec: SweepSpec):
     if not isinstance(spec.vary, str) or spec.vary not in numeric:
         raise SpecError(f"a {spec.kind} stage has no field {spec.vary!r}; fields that can be swept: "
                         + ", ".join(numeric), field="vary")
-    try:
-        values = sweep_values(spec.start, spec.stop, spec.points, spec.log)
-    except StageInputError as e:
-        raise SpecError(f"{spec.vary}, {e.field} of the range: {e.message}", field="vary") from None
     circuit = dict(spec.circuit)
     if spec.vary == "load":
         circuit["turns_ratio"] = None
     elif spec.vary == "turns_ratio":
         circuit["load"] = None
-    st = None
-    for v in values:
-        try:
-            built = build_output(spec.kind, {**circuit, spec.vary: float(v)})
-        except StageInputError as e:
-            if e.field != spec.vary:
-                raise
-            raise SpecError(f"{spec.vary} = {float(v):g} in the range: {e.message}", field="vary") from None
-        st = st or built
+    values, st = _range_and_first_stage(spec, circuit, lambda c: build_output(spec.kind, c))
     pairing = ""
     if spec.cards is not None:
         given = [k for k in ("tube", "tube_a", "tube_b", "bottom", "top") if getattr(spec, k) is not None]
