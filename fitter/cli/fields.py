@@ -9,7 +9,7 @@ own table of form fields.
 
 from __future__ import annotations
 
-__all__ = ["OPTIONS", "option", "message"]
+__all__ = ["OPTIONS", "option", "message", "run_service"]
 
 #: field name -> command-line option
 OPTIONS: dict[str, str] = {
@@ -67,3 +67,29 @@ def message(err) -> str:
     if opt is None or getattr(err, "file", None) is not None or getattr(err, "line", None) is not None:
         return str(err)
     return f"{opt}: {err.message}"
+
+
+def run_service(ctx, fn, as_json: bool, options: dict, **fields) -> None:
+    """Call a ledger use case (``fn(db=..., **fields)``) with the group's ``--db`` (and ``--user``
+    where ``fn`` takes one), print its text or JSON, exit 2 when it reports a failure.  An input
+    error names its field by ``options`` (the command group's own names: the ledger's ``name`` is
+    an account's NAME, not export's ``--name``)."""
+    import json
+
+    import click
+
+    from ..errors import InputError
+    from . import fail
+
+    obj = ctx.find_object(dict) or {}
+    if "user" in fn.__code__.co_varnames[:fn.__code__.co_argcount]:
+        fields.setdefault("user", obj.get("user", ""))
+    try:
+        res = fn(db=obj.get("db"), **fields)
+    except InputError as e:
+        if e.field and not e.file:
+            fail(f"{options.get(e.field, e.field)}: {e.message}")
+        fail(str(e))
+    click.echo(json.dumps(res.to_dict(), allow_nan=False, default=str) if as_json else res.text())
+    if res.failed:
+        raise SystemExit(2)

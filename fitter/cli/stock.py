@@ -9,12 +9,12 @@ mapped by :data:`OPTION_OF`).  Exit status 0 ok, 1 input or database error, 2 a 
 from __future__ import annotations
 
 import getpass
-import json
 import os
 
 import click
 
 from . import fail, main
+from .fields import run_service
 
 #: the service's field names, as this front end calls them
 OPTION_OF = {
@@ -38,21 +38,7 @@ def _default_user() -> str:
 
 
 def _run(ctx, fn, as_json=False, **fields):
-    from ..errors import InputError
-
-    obj = ctx.find_object(dict) or {}
-    if "user" in fn.__code__.co_varnames[:fn.__code__.co_argcount]:
-        fields.setdefault("user", obj.get("user", ""))
-    try:
-        res = fn(db=obj.get("db"), **fields)
-    except InputError as e:
-        option = OPTION_OF.get(e.field or "", e.field)
-        if e.field and not e.file:
-            fail(f"{option}: {e.message}")
-        fail(str(e))
-    click.echo(json.dumps(res.to_dict(), allow_nan=False, default=str) if as_json else res.text())
-    if res.failed:
-        raise SystemExit(2)
+    run_service(ctx, fn, as_json, OPTION_OF, **fields)
 
 
 _json = click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")

@@ -7,27 +7,19 @@ option (an option would sit in the shell history and the process list).
 
 from __future__ import annotations
 
-import json
 import sys
 
 import click
 
-from . import fail, main
+from . import main
+from .fields import run_service
 
 OPTION_OF = {"db": "--db", "name": "NAME", "role": "--role", "password": "password", "prefix": "PREFIX",
              "note": "--note"}
 
 
 def _run(ctx, fn, as_json=False, **fields):
-    from ..errors import InputError
-
-    try:
-        res = fn(db=ctx.obj["db"], **fields)
-    except InputError as e:
-        if e.field and not e.file:
-            fail(f"{OPTION_OF.get(e.field, e.field)}: {e.message}")
-        fail(str(e))
-    click.echo(json.dumps(res.to_dict(), allow_nan=False) if as_json else res.text())
+    run_service(ctx, fn, as_json, OPTION_OF, **fields)
 
 
 _json = click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
