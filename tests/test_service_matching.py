@@ -139,6 +139,8 @@ def test_service_pairs_are_the_networkx_optimum(seed):
     ({"va": 250, "vg": -2, "tolerance": -1}, "tolerance"),
     ({"va": 250, "vg": -2, "tolerance": "five"}, "tolerance"),
     ({"va": -250, "vg": -2}, "va"),
+    ({"va": 2e4, "vg": -2}, "va"),  # past the accepted test positions (common practice: no triode's rating)
+    ({"va": 250, "vg": -5e3}, "vg"),
     ({"bplus": 300, "ra": 100e3, "rk": 0}, "rk"),
     ({"va": 250, "vg": -2, "figures": ["ia", "volume"]}, "figures"),
     ({"va": 250, "vg": -2, "weights": {"ia": -1}}, "weights"),

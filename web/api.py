@@ -13,6 +13,7 @@ from flask import Blueprint, Response, g, request
 
 from fitter.errors import InputError
 from fitter.service import web_support
+from fitter.service.matching import POSITION_RANGE
 
 from .auth import ledger, need
 
@@ -78,9 +79,8 @@ def spice(unit_id):
     return resp
 
 
-# the range of a test position the API accepts [V]: wider than any receiving triode's (common
-# practice), and it keeps the model equations away from floating-point overflow and underflow
-_POSITION_RANGE = {"va": (1.0, 10_000.0), "vg": (-1_000.0, 1_000.0)}
+# the range of a test position [V]: the engine's own rule, checked here before any unit is loaded
+_POSITION_RANGE = POSITION_RANGE
 
 
 @bp.route("/match", methods=["POST"])

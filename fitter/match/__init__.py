@@ -52,7 +52,7 @@ from .criterion import (  # noqa: F401  (re-exported)
 # are left in fitter.match.graph, where setting them has an effect
 from .graph import _solve_matching, _Space  # noqa: F401
 from .groups import match_pairs, match_quads, match_units, section_balance, select_units
-from .positions import (CathodeBias, FixedBias, PushPullSlot, StackedSlot, UnitFigures, pair_prediction,
+from .positions import (POSITION_RANGE, CathodeBias, FixedBias, PushPullSlot, StackedSlot, UnitFigures, pair_prediction,
                         unit_figures)
 from .results import Group, MatchResult, Optimality, StackAssignment
 from .stacks import assign_stacks, stack_cases  # noqa: F401

@@ -18,6 +18,11 @@ import numpy as np
 from ..triode import FittedTriode, propagate
 from .criterion import FIGURES, MatchError, _positive
 
+#: the test positions accepted [V]: wider than any receiving or power triode's ratings (common
+#: practice), and it keeps the model equations away from floating-point overflow and underflow
+POSITION_RANGE = {"va": (1.0, 10_000.0), "vg": (-1_000.0, 1_000.0)}
+
+
 @dataclass(frozen=True)
 class FixedBias:
     """A fixed-bias working point.
@@ -37,6 +42,12 @@ class FixedBias:
         _positive("position va", self.va, field="va")
         if isinstance(self.vg, bool) or not isinstance(self.vg, (int, float)) or not math.isfinite(self.vg):
             raise MatchError(f"must be a finite number, got {self.vg!r}", subject="position vg", field="vg")
+        for name in ("va", "vg"):
+            lo, hi = POSITION_RANGE[name]
+            v = getattr(self, name)
+            if not lo <= v <= hi:
+                raise MatchError(f"must be between {lo:g} and {hi:g} V, got {v:g}", subject=f"position {name}",
+                                 field=name)
 
     def describe(self) -> str:
         return f"fixed bias: va = {self.va:g} V, vg = {self.vg:g} V"

@@ -24,13 +24,13 @@ import dataclasses
 import math
 from typing import Mapping
 
-from ..match import (DEFAULT_GRADES, CathodeBias, Criterion, FixedBias, MatchError, MatchResult,
+from ..match import (DEFAULT_GRADES, POSITION_RANGE, CathodeBias, Criterion, FixedBias, MatchError, MatchResult,
                      StackAssignment, StackedSlot, assign_stacks, match_units, select_units)
 from ..text import shown
 from ..triode import FittedTriode
 from ..units import parse_value
 
-__all__ = ["SPEC_FIELDS", "MatchError", "match"]
+__all__ = ["POSITION_RANGE", "SPEC_FIELDS", "MatchError", "match"]
 
 #: The fields of a matching specification (all optional but a source of units and a position).
 SPEC_FIELDS = {
