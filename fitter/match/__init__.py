@@ -61,6 +61,7 @@ __all__ = [
     "CAUTION",
     "MatchError",
     "FixedBias",
+    "POSITION_RANGE",
     "CathodeBias",
     "StackedSlot",
     "PushPullSlot",
