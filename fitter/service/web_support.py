@@ -14,7 +14,6 @@ import json
 import math
 import tempfile
 from contextlib import contextmanager
-from dataclasses import replace
 from pathlib import Path
 
 from sqlalchemy import select
@@ -23,7 +22,7 @@ from ..errors import InputError
 from ..text import shown
 from .stock import _ledger
 
-__all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "validate_uploads", "import_uploads",
+__all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "fit_result", "validate_uploads", "import_uploads",
            "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES"]
 
 #: largest single upload [bytes] (the reader's own row limit applies as well)
@@ -88,10 +87,34 @@ def unit(db, fit_id) -> dict:
         return _unit_dict(f, sec, tube)
 
 
+def tube_page(db, label) -> dict:
+    """What the tube page shows, from one opening of the ledger: the tube as
+    :func:`fitter.service.stock.show_tube` gives it, and ``units``: each section's current
+    fit as :func:`unit` gives it, by fit id."""
+    from ..ledger import store
+    from ..ledger.schema import Fit, Measurement, Section, Tube
+
+    if not isinstance(label, str) or not label.strip():
+        raise InputError("give a tube label", field="label")
+    with _ledger(db) as ledger:
+        d = store.tube_detail(ledger, label)
+        ids = [x["fit_id"] for x in d["sections"] if x.get("fit_id")]
+        units = {}
+        if ids:
+            with ledger.read() as s:
+                for f, sec, tube in s.execute(select(Fit, Section, Tube)
+                                              .join(Measurement, Fit.measurement_id == Measurement.id)
+                                              .join(Section, Section.id == Measurement.section_id)
+                                              .join(Tube, Tube.id == Section.tube_id).where(Fit.id.in_(ids))):
+                    units[f.id] = _unit_dict(f, sec, tube)
+    d["units"] = units
+    return d
+
+
 def unit_card(db, fit_id) -> dict:
     """The model card (dict, as ``platebook fit --save`` writes) of a stored converged fit."""
     from ..card import card_dict
-    from ..ledger.store import triode_of
+    from ..ledger.store import card_figures, triode_of
 
     fit_id = _unit_id(fit_id)
     with _ledger(db) as ledger, ledger.read() as s:
@@ -99,7 +122,7 @@ def unit_card(db, fit_id) -> dict:
         if not f.converged:
             raise InputError(f"the fit of unit {fit_id} failed ({shown(f.failure or '')}); it has no model card",
                              field="id")
-        d = card_dict(triode_of(f, tube.label, sec.name), f.figures, [src])
+        d = card_dict(triode_of(f, tube.label, sec.name), card_figures(f.figures), [src])
         d["created"] = f.fitted_at
         d["platebook"] = f.engine_version
         return d
@@ -149,45 +172,60 @@ def figures_at(db, fit_id, va, vg) -> dict:
         return point(PointSpec(card=card, va=vals["va"], vg=vals["vg"])).to_dict()
 
 
-def fit_plot(db, fit_id, fmt="svg") -> bytes:
-    """The plot of a stored fit over its measured points, residuals beneath, outliers marked
-    (:func:`fitter.plotting.plot_fit`).
+def fit_result(db, fit_id):
+    """A stored fit as a :class:`fitter.fit.FitResult` for drawing: the stored points cleaned as
+    the fit cleaned them, the stored parameters, their residuals and the outliers the fit found
+    (stored with the fit since the outliers are kept; a row from before that is fitted again
+    to find them by the engine's own rule, as :func:`fitter.fit.fit_curves` did at import).
+    Returns ``(result, how)``, ``how`` being ``"stored"`` or ``"refit"``."""
+    import numpy as np
 
-    The stored fit holds the parameters, not the outlier mask, so the points are fitted
-    again with the same model to find the outliers by the engine's own rule; the curves and
-    residuals drawn are those of the stored parameters.
-    """
-    from ..fit import fit_curves
+    from ..fit import FitResult, fit_curves
     from ..ledger.schema import unpack_points
+    from ..ledger.store import stored_outliers
     from ..models import get_model
-    from ..plotting import save_fit_plot
-    from ..reader import CurveSet
+    from ..reader import CurveSet, clean_curves
 
-    if fmt not in ("svg", "png"):
-        raise InputError(f"must be svg or png, got {shown(str(fmt))!r}", field="format")
     fit_id = _unit_id(fit_id)
     with _ledger(db) as ledger, ledger.read() as s:
         f, m, sec, tube, src = _load(s, fit_id)
         pts = unpack_points(m.points, m.n_points)
         params = dict(f.params)
-        converged, failure, model, figures = f.converged, f.failure, f.model, dict(f.figures or {})
+        converged, failure, figures = f.converged, f.failure, dict(f.figures or {})
+        model = get_model(f.model)
         cs = CurveSet(tube=tube.label, section=sec.name or None, va=pts["va"], vg=pts["vg"], ia=pts["ia"],
                       ig=pts["ig"], source=src, lines=pts["lines"])
-    res = fit_curves(cs, get_model(model))
-    if converged:
-        u = res.unit
-        import numpy as np
+    u = clean_curves(cs, model)
+    if not converged:
+        return FitResult(u, model, False, failure or "fit failed"), "stored"
+    outliers, how = stored_outliers(figures, u.n_points), "stored"
+    if outliers is None:
+        refit = fit_curves(cs, model)
+        u, how = refit.unit, "refit"
+        outliers = refit.outliers if refit.outliers is not None else np.zeros(u.n_points, bool)
+    with np.errstate(all="ignore"):
+        resid = model.current(u.va, u.vg, **params) - u.ia
+    inl = ~outliers
+    rms = figures.get("rms_ma")
+    rel = figures.get("rel_rms")
+    if rms is None:
+        rms = 1e3 * float(np.sqrt(np.mean(resid[inl] ** 2))) if inl.any() else float("nan")
+    if rel is None:
+        rel = float("nan")
+    return FitResult(u, model, True, None, params=params, residuals=resid, outliers=outliers, rms_ma=rms,
+                     rel_rms=rel), how
 
-        with np.errstate(all="ignore"):
-            resid = res.model.current(u.va, u.vg, **params) - u.ia
-        res = replace(res, converged=True, failure=None, params=params, residuals=resid,
-                      rms_ma=figures.get("rms_ma", res.rms_ma), rel_rms=figures.get("rel_rms", res.rel_rms),
-                      outliers=res.outliers if res.outliers is not None else np.zeros(u.n_points, bool))
-    else:
-        res = replace(res, converged=False, failure=failure or "fit failed")
-    with tempfile.TemporaryDirectory(prefix="platebook-plot-") as tmp:
-        path = save_fit_plot(res, Path(tmp, f"plot.{fmt}"))
-        return path.read_bytes()
+
+def fit_plot(db, fit_id, fmt="svg") -> bytes:
+    """The plot of a stored fit over its measured points, residuals beneath, outliers marked
+    (:func:`fitter.plotting.plot_fit` of :func:`fit_result`): the curves and residuals drawn
+    are those of the stored parameters."""
+    from ..plotting import plot_bytes
+
+    if fmt not in ("svg", "png"):
+        raise InputError(f"must be svg or png, got {shown(str(fmt))!r}", field="format")
+    res, _ = fit_result(db, fit_id)
+    return plot_bytes(res, fmt)
 
 
 # -- uploads ----------------------------------------------------------------------
