@@ -365,8 +365,10 @@ def _latest_fits(s, tube_ids=None, first=False):
     if tube_ids is not None:
         lm = lm.join(Section, Section.id == Measurement.section_id).where(Section.tube_id.in_(tube_ids))
     lm = lm.subquery()
-    lf = select(Fit.measurement_id.label("mid"), func.max(Fit.id).label("fid")).group_by(Fit.measurement_id) \
-        .subquery()
+    lf = select(Fit.measurement_id.label("mid"), func.max(Fit.id).label("fid")).group_by(Fit.measurement_id)
+    if tube_ids is not None:  # the fits of those measurements only (SQLite grouped every fit: 40 ms at 10,000)
+        lf = lf.where(Fit.measurement_id.in_(select(lm.c.mid)))
+    lf = lf.subquery()
     q = select(lm.c.sid, Measurement, Fit).join(Measurement, Measurement.id == lm.c.mid) \
         .join(lf, lf.c.mid == lm.c.mid).join(Fit, Fit.id == lf.c.fid)
     return {sid: (m, f) for sid, m, f in s.execute(q)}

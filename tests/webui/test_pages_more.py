@@ -172,3 +172,50 @@ def test_tube_page_bad_input_is_named(signed_in):
     assert r.status_code == 400 and "format" in r.get_data(as_text=True)
     html = c.get("/tube/W01?unit=1&va=lots&vg=-2").get_data(as_text=True)
     assert "va: must be a voltage" in html
+
+
+def test_the_pages_svg_plot_shows_what_the_fit_found(fresh, synth, tube_types, write_long, tmp_path):
+    import re
+    import xml.dom.minidom
+
+    f, glitches = _glitched_file(synth, tube_types, write_long, tmp_path / "g.csv")
+    stock.import_files(fresh, "setup", [str(f)], "DT")
+    fid = _fit_ids(fresh, "G01")["A"]
+    res, _ = web_support.fit_result(fresh, fid)
+    svg = web_support.fit_plot(fresh, fid, "svg").decode()
+    xml.dom.minidom.parseString(svg)  # well-formed
+    grids = sorted(set(res.unit.vg.tolist()))
+    assert svg.count("<polyline") >= len(grids)  # a fitted curve per grid voltage
+    assert f"outliers ({len(glitches['A'])}, down-weighted)" in svg
+    assert "G01:A" in svg and "plate voltage Va [V]" in svg and CAUTION in svg
+    # every measured point is drawn once: dots on the curves and again beneath as residuals
+    dots = len(re.findall(r"h0", svg))
+    assert dots == 2 * (res.unit.n_points - len(glitches["A"]))
+
+
+def test_nice_ticks_are_round_and_cover_the_range():
+    from fitter.plotting import nice_ticks
+
+    # steps of 1, 2, 2.5 or 5 times a power of ten (common practice for axis ticks)
+    assert nice_ticks(0, 400) == [0, 100, 200, 300, 400]
+    assert nice_ticks(0, 19.6) == [0, 5, 10, 15]
+    assert nice_ticks(-0.27, 0.27) == [-0.2, -0.1, 0.0, 0.1, 0.2]
+    assert nice_ticks(1.0, 1.0) == [1.0]
+
+
+def test_a_tube_label_is_text_in_the_svg(fresh, synth, tube_types, write_long, tmp_path):
+    from fitter.plotting import svg_fit_plot
+    from fitter.reader import clean_curves
+
+    from dataclasses import replace
+
+    res, _ = _one_result(fresh, synth, tube_types, write_long, tmp_path)
+    evil = replace(res, unit=replace(clean_curves(res.unit), tube="<script>alert(1)</script>&"))
+    svg = svg_fit_plot(evil).decode()
+    assert "<script>" not in svg and "&lt;script&gt;alert(1)&lt;/script&gt;&amp;" in svg
+
+
+def _one_result(db, synth, tube_types, write_long, tmp_path):
+    f, _ = _glitched_file(synth, tube_types, write_long, tmp_path / "one.csv", tube="E01")
+    stock.import_files(db, "setup", [str(f)], "DT")
+    return web_support.fit_result(db, _fit_ids(db, "E01")["A"])
