@@ -24,9 +24,12 @@ Flask's test client, signed in (server time only: no network, no browser):
    stored, on a fresh SQLite ledger, beside ``platebook fit --json`` on the same file (a whole
    process) and the ratio (goal of issue 10: <= 1.5 x). The upload goes through Flask's test
    client in this process (no network, no process start; the fit runs as in a served app).
+4. ``--pool``: the fit pool forked from a single-threaded process (the command line) against
+   workers from a fork server (what a threaded server uses, :func:`fitter.fit.pool_context`).
 
     python bench/web.py --upload-only --upload-units 1000
     python bench/web.py --pages-only
+    python bench/web.py --pool          # fit pools forked against a fork server (4.)
 """
 
 from __future__ import annotations
@@ -48,6 +51,7 @@ def main(argv=None):
     ap.add_argument("--upload-units", type=int, default=1000)
     ap.add_argument("--upload-only", action="store_true", help="only the upload through the API (3.)")
     ap.add_argument("--pages-only", action="store_true", help="only the pages (1. and 2.)")
+    ap.add_argument("--pool", action="store_true", help="only the fit pools' start methods (4.)")
     a = ap.parse_args(argv)
     import importlib.util
 
@@ -56,6 +60,9 @@ def main(argv=None):
     sys.modules["bench_ledger"] = bl
     spec.loader.exec_module(bl)
     print(f"load average {os.getloadavg()[0]:.2f}")
+    if a.pool:
+        pools(bl)
+        return
     if not a.upload_only:
         pages(a, bl)
     if not a.pages_only:
@@ -142,6 +149,49 @@ def pages(a, bl):
             print(f"{name:44s} {1e3 * t:7.1f} ms")
         png = len(web_support.fit_plot(db, fid, "png"))
         print(f"  plot sizes: SVG {sizes[0] / 1e3:.0f} kB, PNG {png / 1e3:.0f} kB")
+
+
+def pools(bl, sizes=(16, 200)):
+    """The fit pool's cost by start method: forked from this single-threaded process (the
+    command line), and from a fork server as inside a threaded web server (the fit called from
+    a second thread), the first time (the fork server starts and imports the fitting modules)
+    and again (it runs already)."""
+    import threading
+
+    from fitter.ledger.store import fit_units
+    from fitter.reader import read_curves
+
+    print("\nfit pools (fitter.ledger.store.fit_units on 2 processes), wall time")
+    with tempfile.TemporaryDirectory(prefix="platebook-bench-pool-") as tmp:
+        csv = Path(tmp, "stock.csv")
+        bl.write_stock(csv, max(sizes))
+        units = read_curves([csv]).units
+
+        def run(n, threaded):
+            box = {}
+
+            def work():
+                t = time.perf_counter()
+                box["rows"] = fit_units(units[:n], "koren", 250.0, -8.5, jobs=2)
+                box["t"] = time.perf_counter() - t
+
+            if threaded:
+                th = threading.Thread(target=work)
+                th.start()
+                th.join()
+            else:
+                work()
+            assert len(box["rows"]) == n and sum(r["converged"] for r in box["rows"]) >= 0.9 * n
+            return box["t"]
+
+        for n in sizes:
+            f = run(n, False)
+            print(f"  {n:4d} units, fork (one thread):                 {f:6.2f} s")
+        first = run(sizes[0], True)
+        print(f"  {sizes[0]:4d} units, fork server, first (server starts): {first:6.2f} s")
+        for n in sizes:
+            t = run(n, True)
+            print(f"  {n:4d} units, fork server running:               {t:6.2f} s")
 
 
 def upload(n_units, bl):

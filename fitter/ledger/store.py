@@ -199,9 +199,11 @@ def fit_units(units, model: str, test_va: float, test_vg: float, jobs: int | Non
         if progress:
             progress(len(units))
         return out
-    import multiprocessing as mp
+    from ..fit import pool_context
 
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    # forked from a single-threaded process (the command line); from a fork server inside a
+    # threaded web server, where forking could copy a lock another thread holds
+    ctx = pool_context(preload=("fitter.ledger.store",))
     size = max(1, min(32, len(units) // (4 * nproc)))
     chunks = [(units[k:k + size], model, test_va, test_vg) for k in range(0, len(units), size)]
     out = []

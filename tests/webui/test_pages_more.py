@@ -219,3 +219,64 @@ def _one_result(db, synth, tube_types, write_long, tmp_path):
     f, _ = _glitched_file(synth, tube_types, write_long, tmp_path / "one.csv", tube="E01")
     stock.import_files(db, "setup", [str(f)], "DT")
     return web_support.fit_result(db, _fit_ids(db, "E01")["A"])
+
+
+# -- 4. uploads fitted in a pool that is safe inside a threaded server --------------------------
+
+
+def test_a_pool_is_forked_only_from_a_single_threaded_process(monkeypatch):
+    import multiprocessing as mp
+    import threading
+
+    import fitter.fit
+
+    if "fork" not in mp.get_all_start_methods() or "forkserver" not in mp.get_all_start_methods():
+        pytest.skip("this platform has no fork or no fork server")
+    monkeypatch.setattr(threading, "active_count", lambda: 1)  # the command line
+    assert fitter.fit.pool_context().get_start_method() == "fork"
+    monkeypatch.setattr(threading, "active_count", lambda: 5)  # a threaded server
+    assert fitter.fit.pool_context().get_start_method() == "forkserver"
+
+
+def test_an_upload_of_ten_units_in_a_threaded_server_fits_them_all_in_a_fork_server(
+        fresh_signed_in, fresh, synth, tube_types, write_long, tmp_path, monkeypatch):
+    import io
+    import os
+    import threading
+
+    import fitter.fit
+
+    from .webtools import csrf_of
+
+    if "forkserver" not in __import__("multiprocessing").get_all_start_methods():
+        pytest.skip("this platform has no fork server")
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)  # a pool even on a one-core machine
+    used = []
+    real = fitter.fit.pool_context
+
+    def spy(*a, **k):
+        ctx = real(*a, **k)
+        used.append(ctx.get_start_method())
+        return ctx
+
+    monkeypatch.setattr(fitter.fit, "pool_context", spy)
+    f = make_stock(synth, tube_types, write_long, tmp_path / "ten.csv", n_tubes=5, seed=21, prefix="P")
+    c = fresh_signed_in("editor")
+    token = csrf_of(c.get("/upload").get_data(as_text=True))
+    box = {}
+
+    def request():  # as a waitress worker thread serves it, beside the main thread
+        box["r"] = c.post("/upload", data={"csrf_token": token, "type": "DT", "model": "koren",
+                                           "file": [(io.BytesIO(f.read_bytes()), "ten.csv")]},
+                          content_type="multipart/form-data")
+
+    th = threading.Thread(target=request)
+    th.start()
+    th.join(timeout=300)
+    assert not th.is_alive()
+    assert box["r"].status_code == 200 and "Stored 10 unit(s)" in box["r"].get_data(as_text=True)
+    assert used == ["forkserver"]
+    tubes = stock.list_tubes(fresh).data["tubes"]
+    assert len(tubes) == 5
+    secs = [s for t in tubes for s in t["sections"]]
+    assert len(secs) == 10 and all(s["ia_ma"] is not None for s in secs)  # every unit fitted and stored
