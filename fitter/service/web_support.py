@@ -388,6 +388,65 @@ def match_by_id(db, ids, va, vg, tolerance=5.0, group=2) -> dict:
             "position": d["position"], "criterion": d["criterion"]}
 
 
+#: names of the figures a match compares, as a table heads them
+FIGURE_HEADS = {"ia": ("Ia", "mA", "ia_ma"), "gm": ("gm", "mA/V", "gm_ms"), "rp": ("rp", "kΩ", "rp_kohm"),
+                "mu": ("mu", "", "mu")}
+
+
+def match_table(d) -> dict:
+    """The matching page's table from :func:`fitter.service.stock.match`'s ``data``: for each
+    group its units side by side with their figures at the position (Ia, gm, and whatever
+    else the criterion compared), each figure's spread in the group and the mismatch that
+    decided it, so a dealer sees why the units were put together.  Bottle pairs list their
+    sections as they pair up (A with A, B with B).
+
+    ``{"figures": [(key, head, unit)], "groups": [{"n", "grade", "mismatch_pct",
+    "spread": {key: pct}, "limit": key, "rows": [{"unit", "pair", "figs": {key: value}}]}]}``.
+    """
+    crit = (d.get("criterion") or {}).get("figures") or ["ia", "gm"]
+    shown_figs = [f for f in ("ia", "gm") if f in FIGURE_HEADS] + [f for f in crit if f in FIGURE_HEADS
+                                                                     and f not in ("ia", "gm")]
+    heads = [(f, FIGURE_HEADS[f][0], FIGURE_HEADS[f][1]) for f in shown_figs]
+
+    def values(fig):
+        return {f: (fig or {}).get(FIGURE_HEADS[f][2]) for f in shown_figs}
+
+    groups = []
+    if "pairs" in d:  # bottle pairs: every section pair side by side
+        figs = d.get("figures") or {}
+        for k, p in enumerate(d["pairs"], 1):
+            rows = []
+            for j, side in enumerate(p.get("sections") or []):
+                for u in side:
+                    rows.append({"unit": u, "pair": j + 1, "figs": values(figs.get(u))})
+            spread = {f: (p.get("spread_pct") or {}).get(f) for f in shown_figs}
+            groups.append({"n": k, "grade": p.get("grade"), "mismatch_pct": p.get("mismatch_pct"), "spread": spread,
+                           "limit": _limit(spread, p.get("mismatch_pct")), "rows": rows,
+                           "title": " + ".join(p.get("bottles") or [])})
+    else:
+        for k, g in enumerate(d.get("groups") or [], 1):
+            figs = {x.get("unit"): x for x in g.get("figures") or []}
+            sides = g.get("sides")
+            side_of = {u: j + 1 for j, side in enumerate(sides or []) for u in side}
+            rows = [{"unit": u, "pair": side_of.get(u), "figs": values(figs.get(u))} for u in g.get("units") or []]
+            if sides:
+                rows.sort(key=lambda r: r["pair"] or 0)
+            mm = g.get("mismatch") or {}
+            spread = {f: mm.get(f"{f}_pct") for f in shown_figs}
+            groups.append({"n": k, "grade": g.get("grade"), "mismatch_pct": mm.get("max_pct"), "spread": spread,
+                           "limit": _limit(spread, mm.get("max_pct")), "rows": rows,
+                           "title": ", ".join(g.get("units") or [])})
+    return {"figures": heads, "groups": groups, "compared": list(crit)}
+
+
+def _limit(spread, mismatch):
+    """The figure whose spread is the group's mismatch (the one that decided it), or None."""
+    if mismatch is None:
+        return None
+    best = [f for f, v in spread.items() if v is not None and abs(v - mismatch) <= 1e-9 * max(1.0, abs(mismatch))]
+    return best[0] if best else None
+
+
 STAGE_KINDS = ("common-cathode", "cathode-follower", "stack")
 
 

@@ -280,3 +280,65 @@ def test_an_upload_of_ten_units_in_a_threaded_server_fits_them_all_in_a_fork_ser
     assert len(tubes) == 5
     secs = [s for t in tubes for s in t["sections"]]
     assert len(secs) == 10 and all(s["ia_ma"] is not None for s in secs)  # every unit fitted and stored
+
+
+# -- 3. the matching page: the units' figures side by side ---------------------------------------
+
+
+def _cells(html, unit):
+    """The figure cells of a unit's row on the matching page."""
+    import re
+
+    m = re.search(r"<td>" + re.escape(unit) + r"(?: <small[^<]*</small>)?</td>\s*((?:<td class=\"num\">[^<]*</td>)+)",
+                  html)
+    assert m, f"no row for {unit}"
+    return [float(x) for x in re.findall(r'<td class="num">([^<]*)</td>', m.group(1))]
+
+
+def test_matching_page_shows_each_units_ia_and_gm_beside_the_mismatch(signed_in, stocked):
+    db = stocked[0]
+    want = stock.match(db, tube_type="DT", group="pairs", tolerance_pct=5).data  # the service itself
+    assert want["groups"], "the invented stock should give at least one pair at 5 %"
+    html = signed_in("viewer").get("/match?type=DT&group=pairs&tolerance=5").get_data(as_text=True)
+    assert "Ia mA" in html and "gm mA/V" in html and "Apart %" in html
+    for g in want["groups"]:
+        ias = []
+        for u in g["units"]:
+            ia, gm = _cells(html, u)[:2]
+            # independently: the tube page's figures at the type's test point (= the match position here)
+            tube, sec = u.split(":")
+            s = next(x for x in stock.show_tube(db, tube).data["sections"] if x["section"] == sec)
+            assert ia == pytest.approx(s["ia_ma"], rel=1e-3) and gm == pytest.approx(s["gm_ms"], rel=1e-3)
+            ias.append(s["ia_ma"])
+        mm = g["mismatch"]
+        assert f"Ia {mm['ia_pct']:.2f}" in html and f"gm {mm['gm_pct']:.2f}" in html
+        # the spread of two units is their difference over their mean (fitter/match/criterion.py's
+        # 2 tanh(span/2), the usual relative difference: common practice)
+        assert 100 * abs(ias[0] - ias[1]) / ((ias[0] + ias[1]) / 2) == pytest.approx(mm["ia_pct"], abs=0.01)
+
+
+def test_matching_page_lists_bottle_pairs_section_by_section(fresh_signed_in, fresh, synth, tube_types, write_long,
+                                                            tmp_path):
+    f = make_stock(synth, tube_types, write_long, tmp_path / "m.csv", n_tubes=4, seed=11, prefix="M")
+    stock.import_files(fresh, "setup", [str(f)], "DT")
+    want = stock.match(fresh, tube_type="DT", group="bottles", tolerance_pct=10).data
+    assert want["pairs"], "the invented stock should give at least one bottle pair at 10 %"
+    html = fresh_signed_in("editor").get("/match?type=DT&group=bottles&tolerance=10").get_data(as_text=True)
+    for p in want["pairs"]:
+        for j, side in enumerate(p["sections"], 1):
+            for u in side:
+                assert f"<td>{u} <small class=\"hint\">pair {j}</small></td>" in html
+                ia, gm = _cells(html, u)[:2]
+                assert ia == pytest.approx(want["figures"][u]["ia_ma"], rel=1e-3)
+        assert f"{p['mismatch_pct']:.2f}" in html
+    assert html.count('name="accept"') == len(want["pairs"])  # an editor gets a box per group
+
+
+def test_matching_page_bad_input_and_roles(app, signed_in):
+    c = signed_in("viewer")
+    assert "tolerance: must be a number" in c.get("/match?type=DT&tolerance=lots").get_data(as_text=True)
+    assert "va: must be a number" in c.get("/match?type=DT&va=high").get_data(as_text=True)
+    html = c.get("/match?type=NOPE").get_data(as_text=True)
+    assert "type: " in html
+    assert 'name="accept"' not in c.get("/match?type=DT&tolerance=5").get_data(as_text=True)
+    assert app.test_client().get("/match?type=DT").status_code == 302  # signed out
