@@ -23,7 +23,8 @@ from ..text import shown
 from .stock import _ledger
 
 __all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "fit_result", "validate_uploads", "import_uploads",
-           "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES"]
+           "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES", "tube_page", "match_table",
+           "type_nominal", "compare_nominal", "compare_plot"]
 
 #: largest single upload [bytes] (the reader's own row limit applies as well)
 MAX_UPLOAD_BYTES = 20 * 1024 * 1024
@@ -609,6 +610,22 @@ def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False)
 # -- the compare page --------------------------------------------------------------------
 
 MAX_COMPARE = 8
+#: what a measurement's instrument says when its points were digitised from a datasheet plot
+DATASHEET_MARK = "datasheet plot"
+#: fewest converged sections a median nominal is taken from
+MIN_MEDIAN_SECTIONS = 3
+#: statuses of the tubes that are in stock (a median nominal is taken over them)
+IN_STOCK = ("in-stock", "reserved")
+
+
+def _compared_units(db, units, most):
+    texts = [u for u in units if str(u).strip()]
+    if len(texts) > most:
+        raise InputError(f"at most {most} tubes at once, got {len(texts)}", field="units")
+    ids = [resolve_unit(db, t, "units") for t in texts]
+    if len(set(ids)) != len(ids):
+        raise InputError("a tube appears twice", field="units")
+    return ids
 
 
 def compare_plot(db, units) -> bytes:
@@ -617,15 +634,105 @@ def compare_plot(db, units) -> bytes:
     from ..card import load_card
     from ..plotting_compare import save_compare_plot
 
-    texts = [u for u in units if str(u).strip()]
-    if len(texts) < 2:
+    if len([u for u in units if str(u).strip()]) < 2:
         raise InputError("name at least two tubes to compare", field="units")
-    if len(texts) > MAX_COMPARE:
-        raise InputError(f"at most {MAX_COMPARE} tubes at once, got {len(texts)}", field="units")
-    ids = [resolve_unit(db, t, "units") for t in texts]
-    if len(set(ids)) != len(ids):
-        raise InputError("a tube appears twice", field="units")
+    ids = _compared_units(db, units, MAX_COMPARE)
     with _card_files(db, ids) as cards:
         triodes = [load_card(c) for c in cards]
     with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
         return save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes()
+
+
+def type_nominal(db, tube_type, model=None) -> dict:
+    """The reference curves of a tube type: ``{"triode", "basis", "kind", "n", "fit_id"}``.
+
+    (a) ``kind="datasheet"``: the current fit of a unit of the type whose measurement was
+    digitised from a datasheet plot (its instrument says :data:`DATASHEET_MARK`; the newest
+    such measurement); (b) else ``kind="median"``: a model whose every parameter is the
+    median of that parameter over the current converged fits of ``model`` of the type's
+    sections in stock (:data:`IN_STOCK`, datasheet units left out; at least
+    :data:`MIN_MEDIAN_SECTIONS`), labelled as what it is, never as a datasheet.
+    """
+    import statistics
+
+    from ..ledger import store
+    from ..ledger.schema import Section, Tube
+    from ..models import get_model
+    from ..triode import FittedTriode
+
+    if not isinstance(tube_type, str) or not tube_type.strip():
+        raise InputError("give a tube type", field="type")
+    with _ledger(db) as ledger, ledger.read() as s:
+        tt = store._type(s, tube_type)
+        tubes = {t.id: t for t in s.scalars(select(Tube).where(Tube.type_id == tt.id))}
+        secs = {x.id: x for x in s.scalars(select(Section).where(Section.tube_id.in_(list(tubes))))} if tubes else {}
+        latest = store._latest_fits(s, list(tubes)) if tubes else {}
+        sheets, stocked = [], []
+        for sid, (m, f) in latest.items():
+            if not f.converged:
+                continue
+            sec = secs[sid]
+            t = tubes[sec.tube_id]
+            if DATASHEET_MARK in (m.instrument or "").lower():
+                sheets.append((m.id, f, t.label, sec.name, m.instrument))
+            elif t.status in IN_STOCK and (model is None or f.model == model):
+                stocked.append(f)
+        if sheets:
+            _, f, label, sec_name, instrument = max(sheets, key=lambda x: x[0])
+            tri = store.triode_of(f, label, sec_name)
+            who = f"{label}:{sec_name}" if sec_name else label
+            return {"triode": tri, "kind": "datasheet", "n": 1, "fit_id": f.id, "type": tt.designation,
+                    "basis": f"digitised datasheet plot ({who}, {tri.model.name})"}
+        if model is None and stocked:
+            model = statistics.mode(f.model for f in stocked)
+            stocked = [f for f in stocked if f.model == model]
+        if len(stocked) < MIN_MEDIAN_SECTIONS:
+            raise InputError(f"type {shown(tt.designation)} has no unit digitised from a datasheet plot and "
+                             f"{len(stocked)} converged section(s) of the {shown(str(model or 'same'))} model in "
+                             f"stock; a nominal needs one or the other (at least {MIN_MEDIAN_SECTIONS} sections)",
+                             field="nominal")
+        m = get_model(model)
+        params = {}
+        for name in m.param_names:
+            vals = [float(f.params[name]) for f in stocked if name in f.params]
+            if vals:
+                params[name] = statistics.median(vals)
+        tri = FittedTriode(m, params, (), None, tube=f"{tt.designation} nominal", section=None)
+        return {"triode": tri, "kind": "median", "n": len(stocked), "fit_id": None, "type": tt.designation,
+                "basis": f"median of {len(stocked)} sections in stock ({m.name})"}
+
+
+def compare_nominal(db, units) -> dict:
+    """Tubes of one type (label:section or unit id, at most :data:`MAX_COMPARE` - 1) drawn
+    solid against their type's nominal (:func:`type_nominal`), dashed, the basis in the legend
+    and the title: ``{"svg": bytes, "basis", "kind", "type"}``."""
+    from ..card import load_card
+    from ..ledger.schema import Fit, Measurement, Section, Tube, TubeType
+    from ..plotting_compare import save_compare_plot
+
+    if not [u for u in units if str(u).strip()]:
+        raise InputError("name a tube to draw against its type's nominal", field="units")
+    ids = _compared_units(db, units, MAX_COMPARE - 1)
+    with _ledger(db) as ledger, ledger.read() as s:
+        rows = s.execute(select(Fit.id, Fit.model, TubeType.designation)
+                         .join(Measurement, Measurement.id == Fit.measurement_id)
+                         .join(Section, Section.id == Measurement.section_id).join(Tube, Tube.id == Section.tube_id)
+                         .join(TubeType, TubeType.id == Tube.type_id).where(Fit.id.in_(ids))).all()
+    info = {i: (model, tt) for i, model, tt in rows}
+    types = sorted({info[i][1] for i in ids})
+    if len(types) > 1:
+        raise InputError(f"the tubes are of different types ({', '.join(shown(t) for t in types)}); "
+                         "a nominal is one type's", field="units")
+    nom = type_nominal(db, types[0], model=info[ids[0]][0])
+    if nom["fit_id"] in ids:
+        raise InputError("that unit is the type's datasheet curves themselves", field="units")
+    with _card_files(db, ids) as cards:
+        triodes = [load_card(c) for c in cards]
+    label = f"nominal: {nom['basis']}"
+    with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
+        path = save_compare_plot(triodes + [nom["triode"]], Path(tmp, "compare.svg"),
+                                 labels=[t.label for t in triodes] + [label], dashed=[len(triodes)],
+                                 title=f"{', '.join(t.label for t in triodes)} against the {types[0]} nominal "
+                                       f"({nom['basis']})")
+        return {"svg": path.read_bytes(), "basis": nom["basis"], "kind": nom["kind"], "type": types[0],
+                "n": nom["n"]}

@@ -342,3 +342,66 @@ def test_matching_page_bad_input_and_roles(app, signed_in):
     assert "type: " in html
     assert 'name="accept"' not in c.get("/match?type=DT&tolerance=5").get_data(as_text=True)
     assert app.test_client().get("/match?type=DT").status_code == 302  # signed out
+
+
+# -- 2. the compare page: a tube against its type's nominal ----------------------------------------
+
+
+def test_nominal_is_the_median_of_the_stock_when_there_is_no_datasheet_plot(signed_in, stocked):
+    db = stocked[0]
+    secs = [(t["label"], s["section"]) for t in stock.list_tubes(db, tube_type="DT").data["tubes"]
+            for s in t["sections"] if s.get("ia_ma") is not None]
+    nom = web_support.type_nominal(db, "DT", model="koren")
+    assert nom["kind"] == "median" and nom["n"] == len(secs) and nom["fit_id"] is None
+    assert nom["basis"] == f"median of {len(secs)} sections in stock (koren)" and "datasheet" not in nom["basis"]
+    # each parameter the median of the sections' own (numpy's median, computed here from each unit)
+    params = [web_support.unit(db, web_support.resolve_unit(db, f"{t}:{s}"))["fit"]["params"] for t, s in secs]
+    for name in ("mu", "ex", "kg1", "kp", "kvb"):
+        assert nom["triode"].params[name] == pytest.approx(float(np.median([p[name] for p in params])), rel=1e-12)
+    html = signed_in("viewer").get("/compare?units=W01:A&nominal=1").get_data(as_text=True)
+    assert CAUTION in html and f"median of {len(secs)} sections in stock (koren) — not a datasheet" in html
+    import base64
+    import re
+
+    svg = base64.b64decode(re.search(r'src="data:image/svg\+xml;base64,([^"]+)"', html).group(1)).decode()
+    assert "nominal: median of" in svg and "W01:A" in svg and "against the DT nominal" in svg
+    assert "stroke-dasharray" in svg  # the nominal dashed
+
+
+def test_nominal_is_a_unit_digitised_from_a_datasheet_plot_when_there_is_one(fresh_signed_in, fresh, synth,
+                                                                            tube_types, write_long, tmp_path):
+    f = make_stock(synth, tube_types, write_long, tmp_path / "s.csv", n_tubes=2, seed=3, prefix="N")
+    stock.import_files(fresh, "setup", [str(f)], "DT")
+    sheet = make_stock(synth, tube_types, write_long, tmp_path / "sheet.csv", n_tubes=1, seed=8, label="DT-SHEET")
+    stock.import_files(fresh, "setup", [str(sheet)], "DT", instrument="Datasheet plot, digitised by hand")
+    nom = web_support.type_nominal(fresh, "DT")
+    assert nom["kind"] == "datasheet" and nom["basis"].startswith("digitised datasheet plot (DT-SHEET:")
+    assert nom["fit_id"] in _fit_ids(fresh, "DT-SHEET").values()
+    assert nom["triode"].params == web_support.unit(fresh, nom["fit_id"])["fit"]["params"]
+    html = fresh_signed_in("viewer").get("/compare?units=N01:A+N02:B&nominal=1").get_data(as_text=True)
+    assert "the curves of a digitised datasheet plot (DT-SHEET:" in html
+    c = fresh_signed_in("viewer")
+    sheet_unit = f"DT-SHEET:{nom['triode'].section}"
+    err = c.get(f"/compare?units={sheet_unit}&nominal=1").get_data(as_text=True)
+    assert "units: that unit is the type&#39;s datasheet curves themselves" in err
+
+
+def test_nominal_errors_are_named(fresh_signed_in, fresh, synth, tube_types, write_long, tmp_path):
+    f = make_stock(synth, tube_types, write_long, tmp_path / "one.csv", n_tubes=1, seed=4, prefix="L")
+    stock.import_files(fresh, "setup", [str(f)], "DT")  # two sections: too few for a median
+    stock.add_type(fresh, "setup", "OT", VA, VG)
+    g = make_stock(synth, tube_types, write_long, tmp_path / "other.csv", n_tubes=1, seed=6, prefix="O")
+    stock.import_files(fresh, "setup", [str(g)], "OT")
+    c = fresh_signed_in("viewer")
+    html = c.get("/compare?units=L01:A&nominal=1").get_data(as_text=True)
+    assert "nominal: type DT has no unit digitised from a datasheet plot and 2 converged section(s)" in html
+    assert "units: the tubes are of different types (DT, OT)" in c.get(
+        "/compare?units=L01:A+O01:A&nominal=1").get_data(as_text=True)
+    assert "units: name a tube to draw against" in c.get("/compare?units=&nominal=1").get_data(as_text=True)
+    assert "units: at most 7 tubes" in c.get("/compare?nominal=1&units=" + "+".join(
+        f"X{k}:A" for k in range(8))).get_data(as_text=True)
+    assert "units: no tube labelled" in c.get("/compare?units=NOPE:A&nominal=1").get_data(as_text=True)
+
+
+def test_compare_needs_a_signed_in_viewer(app):
+    assert app.test_client().get("/compare?units=W01:A&nominal=1").status_code == 302
