@@ -305,10 +305,10 @@ def save_fit_plots(results: Sequence[FitResult], paths: Sequence, processes: int
 # crosses, residuals beneath, the caution) in about a millisecond.  Text stays text (the
 # browser's sans-serif face); every name is XML-escaped.
 
-SVG_W, SVG_H = 880, 880  # [px] (matplotlib's 8 in at 110 dpi)
+SVG_W, SVG_H = 880, 800  # [px]; shown at 600-720 px wide, hence the large type
 #: the axes' boxes [px]: left, right; the curves' top and bottom; the residuals' top and bottom
-SVG_LEFT, SVG_RIGHT = 84, 814
-SVG_TOP, SVG_MID, SVG_RTOP, SVG_BOTTOM = 66, 560, 590, 805
+SVG_LEFT, SVG_RIGHT = 100, 800
+SVG_TOP, SVG_MID, SVG_RTOP, SVG_BOTTOM = 72, 500, 528, 700
 
 
 def nice_ticks(lo: float, hi: float, most: int = TICKS) -> list[float]:
@@ -412,20 +412,20 @@ def _axes_frame(out, ax: _Axes, xlabels: bool, ylabel: str, xlabel: str | None):
     out.append(f'<path d="{"".join(ticks)}" stroke="#000" stroke-width="1" fill="none"/>')
     out.append(f'<rect x="{ax.x0}" y="{ax.y0}" width="{ax.x1 - ax.x0}" height="{ax.y1 - ax.y0}" '
                'fill="none" stroke="#000" stroke-width="1"/>')
-    out.append('<g font-size="13" text-anchor="end">')
+    out.append('<g font-size="17" text-anchor="end">')
     for v in yt:
-        out.append(f'<text x="{ax.x0 - 7}" y="{float(ax.y(v)) + 4.5:.1f}">{_tick_text(v, ys)}</text>')
+        out.append(f'<text x="{ax.x0 - 8}" y="{float(ax.y(v)) + 6:.1f}">{_tick_text(v, ys)}</text>')
     out.append("</g>")
     if xlabels:
-        out.append('<g font-size="13" text-anchor="middle">')
+        out.append('<g font-size="17" text-anchor="middle">')
         for v in xt:
-            out.append(f'<text x="{float(ax.x(v)):.1f}" y="{ax.y1 + 20}">{_tick_text(v, xs)}</text>')
+            out.append(f'<text x="{float(ax.x(v)):.1f}" y="{ax.y1 + 24}">{_tick_text(v, xs)}</text>')
         out.append("</g>")
     cy = (ax.y0 + ax.y1) / 2
-    out.append(f'<text x="26" y="{cy:.0f}" font-size="13" text-anchor="middle" '
-               f'transform="rotate(-90 26 {cy:.0f})">{_esc(ylabel)}</text>')
+    out.append(f'<text x="30" y="{cy:.0f}" font-size="17" text-anchor="middle" '
+               f'transform="rotate(-90 30 {cy:.0f})">{_esc(ylabel)}</text>')
     if xlabel:
-        out.append(f'<text x="{(ax.x0 + ax.x1) / 2:.0f}" y="{ax.y1 + 48}" font-size="13" '
+        out.append(f'<text x="{(ax.x0 + ax.x1) / 2:.0f}" y="{ax.y1 + 54}" font-size="17" '
                    f'text-anchor="middle">{_esc(xlabel)}</text>')
 
 
@@ -495,22 +495,22 @@ def svg_fit_plot(result: FitResult) -> bytes:
             inside = np.flatnonzero(ia <= ia_max_ma * 1.05)
             if inside.size:
                 j = inside[-1]
-                labels.append((float(ax.x(va_line[j])) + 3, float(ax.y(ia[j])) + 4, c, f"{v:g} V"))
+                labels.append((float(ax.x(va_line[j])) + 4, float(ax.y(ia[j])) + 5, c, f"{v:g} V"))
     if out_mask.any():
         out.append(f'<path d="{_crosses(ax.x(u.va[out_mask]), ax.y(1e3 * u.ia[out_mask]))}" stroke="#dc143c" '
                    'stroke-width="2"/>')
     out.append("</g>")
-    out.append('<g font-size="9.5">')
-    for x, y, c, text in labels:
+    out.append('<g font-size="13">')
+    for x, y, c, text in labels:  # the curve's colour, darkened so the light ones read on white
+        c = "#" + "".join(f"{int(int(c[i:i + 2], 16) * 0.72):02x}" for i in (1, 3, 5))
         out.append(f'<text x="{x:.1f}" y="{y:.1f}" fill="{c}">{_esc(text.replace("-", chr(0x2212)))}</text>')
     out.append("</g>")
     if out_mask.any():
         n = int(out_mask.sum())
-        lx, ly = ax.x0 + 8, ax.y0 + 8
-        out.append(f'<rect x="{lx}" y="{ly}" width="212" height="24" fill="#fff" fill-opacity="0.85" '
-                   'stroke="#ccc" rx="3"/>')
-        out.append(f'<path d="M{lx + 10} {ly + 8}l8 8m0 -8l-8 8" stroke="#dc143c" stroke-width="2"/>')
-        out.append(f'<text x="{lx + 28}" y="{ly + 16.5}" font-size="11">outliers ({n}, down-weighted)</text>')
+        # the key under the plot, left of the axis label: inside the axes it would cover curves
+        lx, ly = SVG_LEFT - 60, SVG_BOTTOM + 44
+        out.append(f'<path d="M{lx} {ly}l10 10m0 -10l-10 10" stroke="#dc143c" stroke-width="2.2"/>')
+        out.append(f'<text x="{lx + 16}" y="{ly + 10}" font-size="15">outliers ({n}, down-weighted)</text>')
     # the residuals
     if res_ma is not None:
         out.append('<g clip-path="url(#c2)" fill="none">')
@@ -531,9 +531,9 @@ def svg_fit_plot(result: FitResult) -> bytes:
     else:
         sub = f"FIT FAILED: {result.failure}"
     mid = (SVG_LEFT + SVG_RIGHT) / 2
-    out.append(f'<text x="{mid:.0f}" y="26" font-size="14" text-anchor="middle">{_esc(title)}</text>')
+    out.append(f'<text x="{mid:.0f}" y="26" font-size="18" text-anchor="middle">{_esc(title)}</text>')
     fill = "" if result.converged else ' fill="#b00020"'
-    out.append(f'<text x="{mid:.0f}" y="46" font-size="14" text-anchor="middle"{fill}>{_esc(sub[:150])}</text>')
-    out.append(f'<text x="9" y="{SVG_H - 7}" font-size="9" fill="#595959">{_esc(CAUTION)}</text>')
+    out.append(f'<text x="{mid:.0f}" y="52" font-size="16" text-anchor="middle"{fill}>{_esc(sub[:150])}</text>')
+    out.append(f'<text x="9" y="{SVG_H - 9}" font-size="12" fill="#595959">{_esc(CAUTION)}</text>')
     out.append("</svg>\n")
     return "\n".join(out).encode("utf-8")

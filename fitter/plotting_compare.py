@@ -83,18 +83,19 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
         inside = np.flatnonzero(ia <= 0.97 * top)
         if inside.size:
             i = int(inside[-1])
-            ax.annotate(f"{g:g} V", (va[i], ia[i]), fontsize=7, color="0.3", xytext=(3, 0), textcoords="offset points")
-    ax.set_xlabel("plate voltage Va [V]")
-    ax.set_ylabel("plate current Ia [mA]")
+            ax.annotate(f"{g:g} V", (va[i], ia[i]), fontsize=9, color="0.3", xytext=(3, 0), textcoords="offset points")
+    ax.set_xlabel("plate voltage Va [V]", fontsize=11)
+    ax.set_ylabel("plate current Ia [mA]", fontsize=11)
+    ax.tick_params(labelsize=10)
     ax.grid(True, alpha=0.3)
-    ax.legend(loc="upper left", fontsize=8, title="unit (model curves)")
+    ax.legend(loc="upper left", fontsize=10, title="unit (model curves)", title_fontsize=10)
     grid_text = "grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V"
     if title is None:
         title = f"{len(triodes)} units compared at {grid_text}"
     else:
         title = f"{title}\nat {grid_text}"
-    ax.set_title(title, fontsize=10)
-    ax.figure.text(0.01, 0.01, CAUTION, fontsize=6, color="0.35")
+    ax.set_title(title, fontsize=11)
+    ax.figure.text(0.01, 0.01, CAUTION, fontsize=8, color="0.35")
     return ax
 
 
