@@ -365,7 +365,7 @@ class _Axes:
 def _dots(px, py) -> str:
     """A path that draws a round dot at each point (zero-length segments with round caps)."""
     ok = np.isfinite(px) & np.isfinite(py)
-    return "".join(f"M{a:.1f} {b:.1f}h0" for a, b in zip(px[ok], py[ok]))
+    return "".join(map("M{:.1f} {:.1f}h0".format, px[ok].tolist(), py[ok].tolist()))
 
 
 def _crosses(px, py, r=4.0) -> str:
@@ -374,18 +374,12 @@ def _crosses(px, py, r=4.0) -> str:
                    for a, b in zip(px[ok], py[ok]))
 
 
-def _polyline(px, py) -> str:
-    """Points of a polyline, broken where a value is not finite."""
-    parts, run = [], []
-    for a, b in zip(px, py):
-        if np.isfinite(a) and np.isfinite(b):
-            run.append(f"{a:.1f},{b:.1f}")
-        elif run:
-            parts.append(" ".join(run))
-            run = []
-    if run:
-        parts.append(" ".join(run))
-    return parts
+def _polyline(px, py) -> list:
+    """The ``points`` texts of a polyline, one per run of finite values."""
+    ok = np.isfinite(px) & np.isfinite(py)
+    edges = np.flatnonzero(np.diff(np.concatenate([[False], ok, [False]]).astype(np.int8)))
+    return [" ".join(map("{:.1f},{:.1f}".format, px[i:j].tolist(), py[i:j].tolist()))
+            for i, j in zip(edges[::2], edges[1::2])]
 
 
 def _axes_frame(out, ax: _Axes, xlabels: bool, ylabel: str, xlabel: str | None):

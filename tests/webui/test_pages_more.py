@@ -405,3 +405,11 @@ def test_nominal_errors_are_named(fresh_signed_in, fresh, synth, tube_types, wri
 
 def test_compare_needs_a_signed_in_viewer(app):
     assert app.test_client().get("/compare?units=W01:A&nominal=1").status_code == 302
+
+
+def test_a_curve_is_broken_where_the_model_is_not_finite():
+    from fitter.plotting import _polyline
+
+    assert _polyline(np.array([1.0, 2, np.nan, 4, 5, 6]), np.array([1.0, 2, 3, 4, np.inf, 6])) == [
+        "1.0,1.0 2.0,2.0", "4.0,4.0", "6.0,6.0"]
+    assert _polyline(np.array([np.nan]), np.array([1.0])) == []
