@@ -17,7 +17,8 @@ Flask's test client, signed in (server time only: no network, no browser):
    its stored outliers) and a second (plots from the cache) (goal <= 300 ms with plots, cached
    after the first view), after one other tube's page (the process's first plot, which loads
    matplotlib and makes the figure once per server process, is printed apart); then the parts
-   of a first view (the page alone, one plot as SVG and as PNG) and the plots' sizes.  Wall time
+   of a first view (the page alone, one plot as SVG and as PNG) and the plots' sizes.  The first
+   view is the median over five tubes each seen once (the machine is shared).  Wall time
    is the goal; the process's CPU time is printed beside it (the machine is shared);
 3. uploading N units (default 1,000, a long-layout CSV from ``bench/ledger.py``'s generator)
    through ``POST /api/v1/measurements`` with an editor's Bearer token until all are fitted and
@@ -129,15 +130,23 @@ def pages(a, bl):
         w, cpu = _timed(lambda: view("HM-01"))
         print(f"first tube page of the process (matplotlib loaded, figure made): {1e3 * w:7.1f} ms "
               f"(CPU {1e3 * cpu:.0f} ms)")
+        # first views: each tube's page and plots seen for the first time (five tubes of the
+        # real stock, each timed once; median and best), then a tube seen again (best of 3)
+        firsts = []
         out = {}
-        w, cpu = _timed(lambda: out.update(v=view("MM-03")))
-        plots, sizes = out["v"]
+        for label in ("MM-03", "HM-02", "HM-03", "HM-04", "HM-05"):
+            w, cpu = _timed(lambda: out.update(v=view(label)))
+            firsts.append((w, cpu))
+            if label == "MM-03":
+                plots, sizes = out["v"]
+        firsts.sort()
+        w, cpu = firsts[len(firsts) // 2]
         print(f"tube page with {len(plots)} fit plots, first view:     {1e3 * w:7.1f} ms (CPU {1e3 * cpu:.0f} ms; "
-              f"SVGs {', '.join(f'{n / 1e3:.0f} kB' for n in sizes)}) (goal <= 300 ms: "
-              f"{'met' if w <= 0.300 else 'MISSED'})")
-        w2, cpu2 = _timed(lambda: view("MM-03"))
-        print(f"tube page with {len(plots)} fit plots, cached:         {1e3 * w2:7.1f} ms (CPU {1e3 * cpu2:.0f} ms) "
-              f"(goal <= 300 ms: {'met' if w2 <= 0.300 else 'MISSED'})")
+              f"median of {len(firsts)} tubes, best {1e3 * firsts[0][0]:.0f} ms; SVGs "
+              f"{', '.join(f'{n / 1e3:.0f} kB' for n in sizes)}) (goal <= 300 ms: {'met' if w <= 0.300 else 'MISSED'})")
+        w2, cpu2 = min(_timed(lambda: view("MM-03")) for _ in range(3))
+        print(f"tube page with {len(plots)} fit plots, cached:         {1e3 * w2:7.1f} ms (CPU {1e3 * cpu2:.0f} ms, "
+              f"best of 3) (goal <= 300 ms: {'met' if w2 <= 0.300 else 'MISSED'})")
         # the parts of a first view, each the best of 3 (plots drawn again outside the cache)
         from fitter.service import web_support
 
