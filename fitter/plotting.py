@@ -302,8 +302,9 @@ def save_fit_plots(results: Sequence[FitResult], paths: Sequence, processes: int
 # and their extents; measured by bench/web.py), which alone would take a tube page with two
 # sections past its 300 ms.  The page's plot is therefore written here as SVG text: the
 # same content (points, fitted curves labelled with their grid voltage, outliers as red
-# crosses, residuals beneath, the caution) in about a millisecond.  Text stays text (the
-# browser's sans-serif face); every name is XML-escaped.
+# crosses, residuals beneath, the caution) in about 10 ms of CPU, the model's curves
+# evaluated included.  Text stays text (the browser's sans-serif face); every name is
+# XML-escaped.
 
 SVG_W, SVG_H = 880, 800  # [px]; shown at 600-720 px wide, hence the large type
 #: the axes' boxes [px]: left, right; the curves' top and bottom; the residuals' top and bottom

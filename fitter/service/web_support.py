@@ -221,7 +221,7 @@ def fit_plot(db, fit_id, fmt="svg") -> bytes:
     """The plot of a stored fit (:func:`fit_result`) over its measured points, residuals
     beneath, outliers marked: the curves and residuals drawn are those of the stored
     parameters.  SVG (the page's) is written directly (:func:`fitter.plotting.svg_fit_plot`,
-    about a millisecond against 150-200 ms through matplotlib); PNG is matplotlib's
+    about 10 ms against 150-200 ms through matplotlib); PNG is matplotlib's
     (:func:`fitter.plotting.plot_bytes`, as ``platebook fit --plot`` draws)."""
     from ..plotting import plot_bytes, svg_fit_plot
 
