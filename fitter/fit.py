@@ -884,12 +884,47 @@ def _fit_job(args):
     return rank_results(res) if len(models) > 1 else res
 
 
+#: start method of the pools when other threads run ("forkserver", else "spawn" where there is
+#: no forkserver): see :func:`pool_context`
+THREADED_START = "forkserver"
+#: modules the fork server imports once, so that each worker it forks starts with them
+FORKSERVER_PRELOAD = ("fitter.fit",)
+
+
+def pool_context(preload=()):
+    """The :mod:`multiprocessing` context of a pool of fit workers.
+
+    "fork" when this process runs one thread (the command line: a worker starts at once with
+    the parent's modules and data).  When other threads run (a threaded web server such as
+    waitress, a background job thread), forking is unsafe: the child gets a copy of every
+    lock another thread held at that moment, and those threads do not exist in it to release
+    them (logging, the allocator, SQLite or BLAS locks: a hang).  Then the workers come from a
+    fork server (:data:`THREADED_START`), a single-threaded process started once that has
+    imported :data:`FORKSERVER_PRELOAD` and ``preload`` and forks each worker from itself;
+    "spawn" where there is none.  The cost is measured by ``bench/web.py --pool``.
+    """
+    import multiprocessing as mp
+    import threading
+
+    methods = mp.get_all_start_methods()
+    if threading.active_count() <= 1 and "fork" in methods:
+        return mp.get_context("fork")
+    method = THREADED_START if THREADED_START in methods else "spawn"
+    ctx = mp.get_context(method)
+    if method == "forkserver":
+        # taken only when the server starts (it runs for the life of this process)
+        ctx.set_forkserver_preload(sorted(set(FORKSERVER_PRELOAD) | set(preload)))
+    return ctx
+
+
 def fit_many(units: list[CurveSet], models=(DEFAULT_MODEL,), options: FitOptions | None = None,
              processes: int | None = None, progress: Callable[[int], None] | None = None) -> list[list[FitResult]]:
     """Fit ``models`` to every unit, on all cores.
 
     Returns one list of results per unit (ranked by BIC when several models are
-    fitted), in the order of ``units``.  ``progress(n)`` is called as units finish.
+    fitted), in the order of ``units``.  ``progress(n)`` is called as units finish.  The
+    workers are forked, or come from a fork server when other threads run
+    (:func:`pool_context`).
     """
     models = tuple(models)
     jobs = [(u, models, options) for u in units]
@@ -901,9 +936,7 @@ def fit_many(units: list[CurveSet], models=(DEFAULT_MODEL,), options: FitOptions
             if progress:
                 progress(1)
         return out
-    import multiprocessing as mp
-
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    ctx = pool_context()
     chunk = max(1, min(32, len(units) // (4 * nproc)))
     out = []
     with ctx.Pool(nproc) as pool:

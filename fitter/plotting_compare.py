@@ -15,44 +15,63 @@ MAX_GRIDS = 7
 STYLES = ("-", "--", "-.", ":")
 
 
+def _range_of(t):
+    """(highest plate voltage [V], grid voltages [V]) a unit was measured at, or None."""
+    if t.envelope is not None:
+        return max(t.envelope.va_hi), sorted(set(t.envelope.vg), reverse=True)
+    r = t.valid_range
+    if r:
+        va = r.get("va_v", r.get("va"))
+        vg = r.get("vg_v", r.get("vg"))
+        if va is not None and vg is not None:
+            return float(va[1]), list(np.linspace(vg[1], vg[0], MAX_GRIDS))
+    return None
+
+
 def compare_grid(triodes) -> tuple[np.ndarray, list]:
     """(plate voltages [V], grid voltages [V]) to draw: 0 to the highest plate voltage any unit
     was measured at, and up to :data:`MAX_GRIDS` of the first unit's measured grid voltages
-    (its fitted range when it carries no envelope)."""
-    highs, grids = [], []
-    for t in triodes:
-        if t.envelope is not None:
-            highs.append(max(t.envelope.va_hi))
-            grids.append(sorted(set(t.envelope.vg), reverse=True))
-        elif t.valid_range is not None:
-            highs.append(t.valid_range["va_v"][1])
-            lo, hi = t.valid_range["vg_v"]
-            grids.append(list(np.linspace(hi, lo, MAX_GRIDS)))
-    va_max = max(highs) if highs else 400.0
-    g = grids[0] if grids else [0.0, -2.0, -4.0]
+    (its fitted range when it carries no envelope).  A unit with neither (a nominal model)
+    takes the others' range."""
+    known = [r for r in (_range_of(t) for t in triodes) if r is not None]
+    va_max = max(r[0] for r in known) if known else 400.0
+    g = known[0][1] if known else [0.0, -2.0, -4.0]
     if len(g) > MAX_GRIDS:
         g = [g[i] for i in np.linspace(0, len(g) - 1, MAX_GRIDS).round().astype(int)]
     return np.linspace(0.0, va_max, 300), [float(x) for x in g]
 
 
-def plot_compare(triodes, ax=None):
+def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
     """Each unit's model curves (one colour per unit, one line per grid voltage, each curve
     labelled with its grid voltage at its end) over a common plate-voltage range; returns the
-    axes."""
+    axes.
+
+    ``labels``: the legend's name of each unit (default its label); ``dashed``: the indices of
+    reference units (a type's nominal), drawn dashed in dark grey while the others are solid;
+    ``title``: the plot's title (default: how many units, at which grid voltages)."""
     if ax is None:
         fig, ax = plt.subplots(figsize=(9, 6))
-        fig.subplots_adjust(left=0.08, right=0.94, top=0.93, bottom=0.13)
+        fig.subplots_adjust(left=0.08, right=0.94, top=0.9, bottom=0.13)
     va, grids = compare_grid(triodes)
     colours = plt.get_cmap("tab10")
+    labels = list(labels) if labels is not None else [t.label for t in triodes]
+    dashed = set(dashed)
     top = 0.0
     first = []
+    k_colour = 0
     for k, t in enumerate(triodes):
-        c = colours(k % 10)
+        if k in dashed:
+            c, ls, lw = "0.15", (0, (6, 3)), 1.6
+        else:
+            c = colours(k_colour % 10)
+            ls = "-" if dashed else STYLES[k_colour % len(STYLES)]
+            lw = 1.4
+            k_colour += 1
         for j, g in enumerate(grids):
             with np.errstate(all="ignore"):
                 ia = 1e3 * np.asarray(t.current(va, np.full_like(va, g)), float)
             ia = np.where(np.isfinite(ia), ia, np.nan)
-            ax.plot(va, ia, color=c, ls=STYLES[k % len(STYLES)], lw=1.4, label=t.label if j == 0 else None)
+            ax.plot(va, ia, color=c, ls=ls, lw=lw, label=labels[k] if j == 0 else None)
             if k == 0:
                 first.append((g, ia))
         if t.envelope is not None:
@@ -64,19 +83,25 @@ def plot_compare(triodes, ax=None):
         inside = np.flatnonzero(ia <= 0.97 * top)
         if inside.size:
             i = int(inside[-1])
-            ax.annotate(f"{g:g} V", (va[i], ia[i]), fontsize=7, color="0.3", xytext=(3, 0), textcoords="offset points")
-    ax.set_xlabel("plate voltage Va [V]")
-    ax.set_ylabel("plate current Ia [mA]")
+            ax.annotate(f"{g:g} V", (va[i], ia[i]), fontsize=9, color="0.3", xytext=(3, 0), textcoords="offset points")
+    ax.set_xlabel("plate voltage Va [V]", fontsize=11)
+    ax.set_ylabel("plate current Ia [mA]", fontsize=11)
+    ax.tick_params(labelsize=10)
     ax.grid(True, alpha=0.3)
-    ax.legend(loc="upper left", fontsize=8, title="unit (model curves)")
-    ax.set_title(f"{len(triodes)} units compared at grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V",
-                 fontsize=10)
-    ax.figure.text(0.01, 0.01, CAUTION, fontsize=6, color="0.35")
+    ax.legend(loc="upper left", fontsize=10, title="unit (model curves)", title_fontsize=10)
+    grid_text = "grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V"
+    if title is None:
+        title = f"{len(triodes)} units compared at {grid_text}"
+    else:
+        title = f"{title}\nat {grid_text}"
+    ax.set_title(title, fontsize=11)
+    ax.figure.text(0.01, 0.01, CAUTION, fontsize=8, color="0.35")
     return ax
 
 
-def save_compare_plot(triodes, path):
-    """Write :func:`plot_compare` to ``path`` (SVG or PNG by suffix), atomically; returns the path."""
+def save_compare_plot(triodes, path, **kw):
+    """Write :func:`plot_compare` (keyword arguments passed on) to ``path`` (SVG or PNG by
+    suffix), atomically; returns the path."""
     from .plotting_stage import _save
 
-    return _save(plot_compare(triodes).figure, path)
+    return _save(plot_compare(triodes, **kw).figure, path)

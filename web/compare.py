@@ -1,4 +1,5 @@
-"""The compare page: several tubes' fitted curves on one plot."""
+"""The compare page: several tubes' fitted curves on one plot, or tubes against their type's
+nominal curves (a digitised datasheet plot, else the median of the stock)."""
 
 from __future__ import annotations
 
@@ -18,12 +19,19 @@ bp = Blueprint("compare", __name__)
 @need("viewer")
 def index():
     text = request.args.get("units", "")
+    nominal = request.args.get("nominal") == "1"
     units = [u.strip() for u in text.replace(",", " ").split() if u.strip()]
-    uri = error = None
-    if units:
+    uri = error = basis = None
+    if units or nominal:
         try:
-            uri = "data:image/svg+xml;base64," + base64.b64encode(web_support.compare_plot(ledger(), units)).decode()
+            if nominal:
+                d = web_support.compare_nominal(ledger(), units)
+                svg, basis = d["svg"], d
+            else:
+                svg = web_support.compare_plot(ledger(), units)
+            uri = "data:image/svg+xml;base64," + base64.b64encode(svg).decode()
         except InputError as e:
             error = f"{e.field}: {e.message}" if e.field else str(e)
-    return render_template("compare.html", title="Compare", text=text, uri=uri, error=error,
-                           max_units=web_support.MAX_COMPARE)
+    return render_template("compare.html", title="Compare", text=text, uri=uri, error=error, nominal=nominal,
+                           basis=basis, max_units=web_support.MAX_COMPARE,
+                           min_sections=web_support.MIN_MEDIAN_SECTIONS)

@@ -7,7 +7,7 @@ from __future__ import annotations
 from flask import Blueprint, g, render_template, request
 
 from fitter.errors import InputError
-from fitter.service import stock
+from fitter.service import stock, web_support
 
 from .auth import ledger, need
 
@@ -42,7 +42,8 @@ def index():
             d = stock.match(db=ledger(), **_params(request.args)).data
         except InputError as e:
             error = f"{e.field}: {e.message}" if e.field else str(e)
-    return render_template("match.html", title="Matching", types=types, d=d, error=error, args=request.args,
+    t = web_support.match_table(d) if d else None
+    return render_template("match.html", title="Matching", types=types, d=d, t=t, error=error, args=request.args,
                            groups=GROUPS)
 
 

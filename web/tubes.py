@@ -6,7 +6,7 @@ from __future__ import annotations
 from flask import Blueprint, Response, current_app, render_template, request
 
 from fitter.errors import InputError
-from fitter.service import stock, web_support
+from fitter.service import web_support
 
 from .auth import ledger, need
 
@@ -16,7 +16,7 @@ bp = Blueprint("tubes", __name__)
 @bp.route("/tube/<path:label>")
 @need("viewer")
 def tube(label):
-    d = stock.show_tube(db=ledger(), label=label).data
+    d = web_support.tube_page(ledger(), label)
     point = None
     point_error = None
     va, vg = request.args.get("va", ""), request.args.get("vg", "")
@@ -26,10 +26,7 @@ def tube(label):
             point = web_support.figures_at(ledger(), at, va, vg)
         except InputError as e:  # shown beside the form, the page still renders
             point_error = f"{e.field or ''}: {e.message}" if e.field else str(e)
-    units = {}
-    for s in d["sections"]:
-        if s.get("fit_id"):
-            units[s["fit_id"]] = web_support.unit(ledger(), s["fit_id"])
+    units = d["units"]
     return render_template("tube.html", title=f"Tube {d['label']}", d=d, units=units, point=point,
                            point_error=point_error, va=va, vg=vg, at=at)
 

@@ -14,7 +14,6 @@ import json
 import math
 import tempfile
 from contextlib import contextmanager
-from dataclasses import replace
 from pathlib import Path
 
 from sqlalchemy import select
@@ -23,8 +22,9 @@ from ..errors import InputError
 from ..text import shown
 from .stock import _ledger
 
-__all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "validate_uploads", "import_uploads",
-           "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES"]
+__all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "fit_result", "validate_uploads", "import_uploads",
+           "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES", "tube_page", "match_table",
+           "type_nominal", "compare_nominal", "compare_plot"]
 
 #: largest single upload [bytes] (the reader's own row limit applies as well)
 MAX_UPLOAD_BYTES = 20 * 1024 * 1024
@@ -88,10 +88,34 @@ def unit(db, fit_id) -> dict:
         return _unit_dict(f, sec, tube)
 
 
+def tube_page(db, label) -> dict:
+    """What the tube page shows, from one opening of the ledger: the tube as
+    :func:`fitter.service.stock.show_tube` gives it, and ``units``: each section's current
+    fit as :func:`unit` gives it, by fit id."""
+    from ..ledger import store
+    from ..ledger.schema import Fit, Measurement, Section, Tube
+
+    if not isinstance(label, str) or not label.strip():
+        raise InputError("give a tube label", field="label")
+    with _ledger(db) as ledger:
+        d = store.tube_detail(ledger, label)
+        ids = [x["fit_id"] for x in d["sections"] if x.get("fit_id")]
+        units = {}
+        if ids:
+            with ledger.read() as s:
+                for f, sec, tube in s.execute(select(Fit, Section, Tube)
+                                              .join(Measurement, Fit.measurement_id == Measurement.id)
+                                              .join(Section, Section.id == Measurement.section_id)
+                                              .join(Tube, Tube.id == Section.tube_id).where(Fit.id.in_(ids))):
+                    units[f.id] = _unit_dict(f, sec, tube)
+    d["units"] = units
+    return d
+
+
 def unit_card(db, fit_id) -> dict:
     """The model card (dict, as ``platebook fit --save`` writes) of a stored converged fit."""
     from ..card import card_dict
-    from ..ledger.store import triode_of
+    from ..ledger.store import card_figures, triode_of
 
     fit_id = _unit_id(fit_id)
     with _ledger(db) as ledger, ledger.read() as s:
@@ -99,7 +123,7 @@ def unit_card(db, fit_id) -> dict:
         if not f.converged:
             raise InputError(f"the fit of unit {fit_id} failed ({shown(f.failure or '')}); it has no model card",
                              field="id")
-        d = card_dict(triode_of(f, tube.label, sec.name), f.figures, [src])
+        d = card_dict(triode_of(f, tube.label, sec.name), card_figures(f.figures), [src])
         d["created"] = f.fitted_at
         d["platebook"] = f.engine_version
         return d
@@ -149,45 +173,62 @@ def figures_at(db, fit_id, va, vg) -> dict:
         return point(PointSpec(card=card, va=vals["va"], vg=vals["vg"])).to_dict()
 
 
-def fit_plot(db, fit_id, fmt="svg") -> bytes:
-    """The plot of a stored fit over its measured points, residuals beneath, outliers marked
-    (:func:`fitter.plotting.plot_fit`).
+def fit_result(db, fit_id):
+    """A stored fit as a :class:`fitter.fit.FitResult` for drawing: the stored points cleaned as
+    the fit cleaned them, the stored parameters, their residuals and the outliers the fit found
+    (stored with the fit since the outliers are kept; a row from before that is fitted again
+    to find them by the engine's own rule, as :func:`fitter.fit.fit_curves` did at import).
+    Returns ``(result, how)``, ``how`` being ``"stored"`` or ``"refit"``."""
+    import numpy as np
 
-    The stored fit holds the parameters, not the outlier mask, so the points are fitted
-    again with the same model to find the outliers by the engine's own rule; the curves and
-    residuals drawn are those of the stored parameters.
-    """
-    from ..fit import fit_curves
+    from ..fit import FitResult, fit_curves
     from ..ledger.schema import unpack_points
+    from ..ledger.store import stored_outliers
     from ..models import get_model
-    from ..plotting import save_fit_plot
-    from ..reader import CurveSet
+    from ..reader import CurveSet, clean_curves
 
-    if fmt not in ("svg", "png"):
-        raise InputError(f"must be svg or png, got {shown(str(fmt))!r}", field="format")
     fit_id = _unit_id(fit_id)
     with _ledger(db) as ledger, ledger.read() as s:
         f, m, sec, tube, src = _load(s, fit_id)
         pts = unpack_points(m.points, m.n_points)
         params = dict(f.params)
-        converged, failure, model, figures = f.converged, f.failure, f.model, dict(f.figures or {})
+        converged, failure, figures = f.converged, f.failure, dict(f.figures or {})
+        model = get_model(f.model)
         cs = CurveSet(tube=tube.label, section=sec.name or None, va=pts["va"], vg=pts["vg"], ia=pts["ia"],
                       ig=pts["ig"], source=src, lines=pts["lines"])
-    res = fit_curves(cs, get_model(model))
-    if converged:
-        u = res.unit
-        import numpy as np
+    u = clean_curves(cs, model)
+    if not converged:
+        return FitResult(u, model, False, failure or "fit failed"), "stored"
+    outliers, how = stored_outliers(figures, u.n_points), "stored"
+    if outliers is None:
+        refit = fit_curves(cs, model)
+        u, how = refit.unit, "refit"
+        outliers = refit.outliers if refit.outliers is not None else np.zeros(u.n_points, bool)
+    with np.errstate(all="ignore"):
+        resid = model.current(u.va, u.vg, **params) - u.ia
+    inl = ~outliers
+    rms = figures.get("rms_ma")
+    rel = figures.get("rel_rms")
+    if rms is None:
+        rms = 1e3 * float(np.sqrt(np.mean(resid[inl] ** 2))) if inl.any() else float("nan")
+    if rel is None:
+        rel = float("nan")
+    return FitResult(u, model, True, None, params=params, residuals=resid, outliers=outliers, rms_ma=rms,
+                     rel_rms=rel), how
 
-        with np.errstate(all="ignore"):
-            resid = res.model.current(u.va, u.vg, **params) - u.ia
-        res = replace(res, converged=True, failure=None, params=params, residuals=resid,
-                      rms_ma=figures.get("rms_ma", res.rms_ma), rel_rms=figures.get("rel_rms", res.rel_rms),
-                      outliers=res.outliers if res.outliers is not None else np.zeros(u.n_points, bool))
-    else:
-        res = replace(res, converged=False, failure=failure or "fit failed")
-    with tempfile.TemporaryDirectory(prefix="platebook-plot-") as tmp:
-        path = save_fit_plot(res, Path(tmp, f"plot.{fmt}"))
-        return path.read_bytes()
+
+def fit_plot(db, fit_id, fmt="svg") -> bytes:
+    """The plot of a stored fit (:func:`fit_result`) over its measured points, residuals
+    beneath, outliers marked: the curves and residuals drawn are those of the stored
+    parameters.  SVG (the page's) is written directly (:func:`fitter.plotting.svg_fit_plot`,
+    about 10 ms against 150-200 ms through matplotlib); PNG is matplotlib's
+    (:func:`fitter.plotting.plot_bytes`, as ``platebook fit --plot`` draws)."""
+    from ..plotting import plot_bytes, svg_fit_plot
+
+    if fmt not in ("svg", "png"):
+        raise InputError(f"must be svg or png, got {shown(str(fmt))!r}", field="format")
+    res, _ = fit_result(db, fit_id)
+    return svg_fit_plot(res) if fmt == "svg" else plot_bytes(res, "png")
 
 
 # -- uploads ----------------------------------------------------------------------
@@ -346,6 +387,65 @@ def match_by_id(db, ids, va, vg, tolerance=5.0, group=2) -> dict:
     return {"groups": groups, "unmatched": [left(x) for x in d["unmatched"] + d["excluded"]],
             "total_mismatch_pct": d["total_mismatch_pct"], "optimality": d["optimality"],
             "position": d["position"], "criterion": d["criterion"]}
+
+
+#: names of the figures a match compares, as a table heads them
+FIGURE_HEADS = {"ia": ("Ia", "mA", "ia_ma"), "gm": ("gm", "mA/V", "gm_ms"), "rp": ("rp", "kΩ", "rp_kohm"),
+                "mu": ("mu", "", "mu")}
+
+
+def match_table(d) -> dict:
+    """The matching page's table from :func:`fitter.service.stock.match`'s ``data``: for each
+    group its units side by side with their figures at the position (Ia, gm, and whatever
+    else the criterion compared), each figure's spread in the group and the mismatch that
+    decided it, so a dealer sees why the units were put together.  Bottle pairs list their
+    sections as they pair up (A with A, B with B).
+
+    ``{"figures": [(key, head, unit)], "groups": [{"n", "grade", "mismatch_pct",
+    "spread": {key: pct}, "limit": key, "rows": [{"unit", "pair", "figs": {key: value}}]}]}``.
+    """
+    crit = (d.get("criterion") or {}).get("figures") or ["ia", "gm"]
+    shown_figs = [f for f in ("ia", "gm") if f in FIGURE_HEADS] + [f for f in crit if f in FIGURE_HEADS
+                                                                     and f not in ("ia", "gm")]
+    heads = [(f, FIGURE_HEADS[f][0], FIGURE_HEADS[f][1]) for f in shown_figs]
+
+    def values(fig):
+        return {f: (fig or {}).get(FIGURE_HEADS[f][2]) for f in shown_figs}
+
+    groups = []
+    if "pairs" in d:  # bottle pairs: every section pair side by side
+        figs = d.get("figures") or {}
+        for k, p in enumerate(d["pairs"], 1):
+            rows = []
+            for j, side in enumerate(p.get("sections") or []):
+                for u in side:
+                    rows.append({"unit": u, "pair": j + 1, "figs": values(figs.get(u))})
+            spread = {f: (p.get("spread_pct") or {}).get(f) for f in shown_figs}
+            groups.append({"n": k, "grade": p.get("grade"), "mismatch_pct": p.get("mismatch_pct"), "spread": spread,
+                           "limit": _limit(spread, p.get("mismatch_pct")), "rows": rows,
+                           "title": " + ".join(p.get("bottles") or [])})
+    else:
+        for k, g in enumerate(d.get("groups") or [], 1):
+            figs = {x.get("unit"): x for x in g.get("figures") or []}
+            sides = g.get("sides")
+            side_of = {u: j + 1 for j, side in enumerate(sides or []) for u in side}
+            rows = [{"unit": u, "pair": side_of.get(u), "figs": values(figs.get(u))} for u in g.get("units") or []]
+            if sides:
+                rows.sort(key=lambda r: r["pair"] or 0)
+            mm = g.get("mismatch") or {}
+            spread = {f: mm.get(f"{f}_pct") for f in shown_figs}
+            groups.append({"n": k, "grade": g.get("grade"), "mismatch_pct": mm.get("max_pct"), "spread": spread,
+                           "limit": _limit(spread, mm.get("max_pct")), "rows": rows,
+                           "title": ", ".join(g.get("units") or [])})
+    return {"figures": heads, "groups": groups, "compared": list(crit)}
+
+
+def _limit(spread, mismatch):
+    """The figure whose spread is the group's mismatch (the one that decided it), or None."""
+    if mismatch is None:
+        return None
+    best = [f for f, v in spread.items() if v is not None and abs(v - mismatch) <= 1e-9 * max(1.0, abs(mismatch))]
+    return best[0] if best else None
 
 
 STAGE_KINDS = ("common-cathode", "cathode-follower", "stack")
@@ -510,6 +610,22 @@ def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False)
 # -- the compare page --------------------------------------------------------------------
 
 MAX_COMPARE = 8
+#: what a measurement's instrument says when its points were digitised from a datasheet plot
+DATASHEET_MARK = "datasheet plot"
+#: fewest converged sections a median nominal is taken from
+MIN_MEDIAN_SECTIONS = 3
+#: statuses of the tubes that are in stock (a median nominal is taken over them)
+IN_STOCK = ("in-stock", "reserved")
+
+
+def _compared_units(db, units, most):
+    texts = [u for u in units if str(u).strip()]
+    if len(texts) > most:
+        raise InputError(f"at most {most} tubes at once, got {len(texts)}", field="units")
+    ids = [resolve_unit(db, t, "units") for t in texts]
+    if len(set(ids)) != len(ids):
+        raise InputError("a tube appears twice", field="units")
+    return ids
 
 
 def compare_plot(db, units) -> bytes:
@@ -518,15 +634,105 @@ def compare_plot(db, units) -> bytes:
     from ..card import load_card
     from ..plotting_compare import save_compare_plot
 
-    texts = [u for u in units if str(u).strip()]
-    if len(texts) < 2:
+    if len([u for u in units if str(u).strip()]) < 2:
         raise InputError("name at least two tubes to compare", field="units")
-    if len(texts) > MAX_COMPARE:
-        raise InputError(f"at most {MAX_COMPARE} tubes at once, got {len(texts)}", field="units")
-    ids = [resolve_unit(db, t, "units") for t in texts]
-    if len(set(ids)) != len(ids):
-        raise InputError("a tube appears twice", field="units")
+    ids = _compared_units(db, units, MAX_COMPARE)
     with _card_files(db, ids) as cards:
         triodes = [load_card(c) for c in cards]
     with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
         return save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes()
+
+
+def type_nominal(db, tube_type, model=None) -> dict:
+    """The reference curves of a tube type: ``{"triode", "basis", "kind", "n", "fit_id"}``.
+
+    (a) ``kind="datasheet"``: the current fit of a unit of the type whose measurement was
+    digitised from a datasheet plot (its instrument says :data:`DATASHEET_MARK`; the newest
+    such measurement); (b) else ``kind="median"``: a model whose every parameter is the
+    median of that parameter over the current converged fits of ``model`` of the type's
+    sections in stock (:data:`IN_STOCK`, datasheet units left out; at least
+    :data:`MIN_MEDIAN_SECTIONS`), labelled as what it is, never as a datasheet.
+    """
+    import statistics
+
+    from ..ledger import store
+    from ..ledger.schema import Section, Tube
+    from ..models import get_model
+    from ..triode import FittedTriode
+
+    if not isinstance(tube_type, str) or not tube_type.strip():
+        raise InputError("give a tube type", field="type")
+    with _ledger(db) as ledger, ledger.read() as s:
+        tt = store._type(s, tube_type)
+        tubes = {t.id: t for t in s.scalars(select(Tube).where(Tube.type_id == tt.id))}
+        secs = {x.id: x for x in s.scalars(select(Section).where(Section.tube_id.in_(list(tubes))))} if tubes else {}
+        latest = store._latest_fits(s, list(tubes)) if tubes else {}
+        sheets, stocked = [], []
+        for sid, (m, f) in latest.items():
+            if not f.converged:
+                continue
+            sec = secs[sid]
+            t = tubes[sec.tube_id]
+            if DATASHEET_MARK in (m.instrument or "").lower():
+                sheets.append((m.id, f, t.label, sec.name, m.instrument))
+            elif t.status in IN_STOCK and (model is None or f.model == model):
+                stocked.append(f)
+        if sheets:
+            _, f, label, sec_name, instrument = max(sheets, key=lambda x: x[0])
+            tri = store.triode_of(f, label, sec_name)
+            who = f"{label}:{sec_name}" if sec_name else label
+            return {"triode": tri, "kind": "datasheet", "n": 1, "fit_id": f.id, "type": tt.designation,
+                    "basis": f"digitised datasheet plot ({who}, {tri.model.name})"}
+        if model is None and stocked:
+            model = statistics.mode(f.model for f in stocked)
+            stocked = [f for f in stocked if f.model == model]
+        if len(stocked) < MIN_MEDIAN_SECTIONS:
+            raise InputError(f"type {shown(tt.designation)} has no unit digitised from a datasheet plot and "
+                             f"{len(stocked)} converged section(s) of the {shown(str(model or 'same'))} model in "
+                             f"stock; a nominal needs one or the other (at least {MIN_MEDIAN_SECTIONS} sections)",
+                             field="nominal")
+        m = get_model(model)
+        params = {}
+        for name in m.param_names:
+            vals = [float(f.params[name]) for f in stocked if name in f.params]
+            if vals:
+                params[name] = statistics.median(vals)
+        tri = FittedTriode(m, params, (), None, tube=f"{tt.designation} nominal", section=None)
+        return {"triode": tri, "kind": "median", "n": len(stocked), "fit_id": None, "type": tt.designation,
+                "basis": f"median of {len(stocked)} sections in stock ({m.name})"}
+
+
+def compare_nominal(db, units) -> dict:
+    """Tubes of one type (label:section or unit id, at most :data:`MAX_COMPARE` - 1) drawn
+    solid against their type's nominal (:func:`type_nominal`), dashed, the basis in the legend
+    and the title: ``{"svg": bytes, "basis", "kind", "type"}``."""
+    from ..card import load_card
+    from ..ledger.schema import Fit, Measurement, Section, Tube, TubeType
+    from ..plotting_compare import save_compare_plot
+
+    if not [u for u in units if str(u).strip()]:
+        raise InputError("name a tube to draw against its type's nominal", field="units")
+    ids = _compared_units(db, units, MAX_COMPARE - 1)
+    with _ledger(db) as ledger, ledger.read() as s:
+        rows = s.execute(select(Fit.id, Fit.model, TubeType.designation)
+                         .join(Measurement, Measurement.id == Fit.measurement_id)
+                         .join(Section, Section.id == Measurement.section_id).join(Tube, Tube.id == Section.tube_id)
+                         .join(TubeType, TubeType.id == Tube.type_id).where(Fit.id.in_(ids))).all()
+    info = {i: (model, tt) for i, model, tt in rows}
+    types = sorted({info[i][1] for i in ids})
+    if len(types) > 1:
+        raise InputError(f"the tubes are of different types ({', '.join(shown(t) for t in types)}); "
+                         "a nominal is one type's", field="units")
+    nom = type_nominal(db, types[0], model=info[ids[0]][0])
+    if nom["fit_id"] in ids:
+        raise InputError("that unit is the type's datasheet curves themselves", field="units")
+    with _card_files(db, ids) as cards:
+        triodes = [load_card(c) for c in cards]
+    label = f"nominal: {nom['basis']}"
+    with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
+        path = save_compare_plot(triodes + [nom["triode"]], Path(tmp, "compare.svg"),
+                                 labels=[t.label for t in triodes] + [label], dashed=[len(triodes)],
+                                 title=f"{', '.join(t.label for t in triodes)} against the {types[0]} nominal "
+                                       f"({nom['basis']})")
+        return {"svg": path.read_bytes(), "basis": nom["basis"], "kind": nom["kind"], "type": types[0],
+                "n": nom["n"]}
