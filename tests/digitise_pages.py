@@ -105,7 +105,7 @@ SPECS: dict[str, PageSpec] = {
         seed=11),
     "power": PageSpec(
         name="power", title="TYPE PW-4 (invented) - average plate characteristics",
-        model="dempwolf", params=dict(G=6.5e-4, mu=4.3, gamma=1.38, C=2.6),
+        model="dempwolf", params=dict(G=6.5e-4, mu=4.3, gamma=1.38, C=1.2),
         grid_voltages=(0.0, -10.0, -20.0, -30.0, -40.0, -50.0, -60.0, -70.0, -80.0),
         va_max=500.0, ia_max_ma=200.0, va_step=50.0, ia_step_ma=20.0, minor=5,
         load_line=(450.0, 180.0), rotate_deg=-1.2, blur_px=0.9, noise=0.03, fmt="jpeg", jpeg_quality=70,

@@ -143,8 +143,8 @@ def load_image(data: bytes, name: str = "image") -> PlotImage:
     except MemoryError:
         raise _bad(name, "not enough memory to decode this image") from None
     except Exception as e:  # Pillow reports corrupt input with many exception types
-        what = "truncated" if "truncated" in str(e).lower() else "corrupt or unreadable"
-        raise _bad(name, f"the {fmt.upper()} file is {what} ({type(e).__name__}: {str(e)[:120]})") from None
+        raise _bad(name, f"the {fmt.upper()} file cannot be decoded: it is truncated or corrupt "
+                         f"({type(e).__name__}: {str(e)[:120]})") from None
     ink = ink_from_rgb(rgb)
     return PlotImage(ink=ink, width=int(ink.shape[1]), height=int(ink.shape[0]), format=fmt)
 

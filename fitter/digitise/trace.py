@@ -32,7 +32,9 @@ bridged on the prediction instead:
   the prediction than the curve.
 
 The point of an accepted column is the ink-weighted centre of its run (one pixel of margin
-either side, so a blurred line's edges count), which gives the row to a fraction of a pixel.
+either side, so a blurred line's edges count), which gives the row to a fraction of a pixel;
+of a run somewhat longer than the line (something starting to touch it), only its core
+nearest the prediction, or the part where the line is expected, counts.
 The tracer stops at the box's edge ("box"; "edge" when the box is the whole image), where
 the line runs straight and level for :data:`FLAT_PX` columns (it has run into an axis or a grid line: the
 level stretch is dropped, "end of line"), when no ink is found near the prediction over :data:`GAP_PX` pixels of its length ("end of line"), or when it has
@@ -62,6 +64,8 @@ SEED_RADIUS_PX = 5
 _HISTORY = 8
 #: columns dropped where a line ends (its last column is cut off square, so its centre is off)
 _END_TRIM = 2
+#: columns of a level stretch kept (where the curve meets the axis it runs into)
+_FLAT_KEEP = 10
 #: a line followed this many columns straight (rms FLAT_TOL_PX) and level (slope at most
 #: FLAT_SLOPE, a rotated page's axis included) is an axis or a grid line that the curve has
 #: run into: a triode's plate curve is never level that long except where it lies on the
@@ -98,22 +102,44 @@ def _column(ink: np.ndarray, x: int, lo: int, hi: int):
     return e[0::2], e[1::2], col
 
 
-def _centre(col, lo: int, s: int, e: int) -> float:
-    """Ink-weighted centre row of the run [s, e) (one pixel of margin each side; ``col`` holds
-    the column's values from row ``lo``)."""
-    a = max(s - 1 - lo, 0)
-    b = min(e + 1 - lo, col.shape[0])
+def _centre(col, lo: int, s: int, e: int, margin: int = 1) -> float:
+    """Ink-weighted centre row of the run [s, e) (``margin`` pixels more each side; ``col``
+    holds the column's values from row ``lo``)."""
+    a = max(s - margin - lo, 0)
+    b = min(e + margin - lo, col.shape[0])
     vals = col[a:b].tolist()
     tot = 0.0
     mom = 0.0
     for i, v in enumerate(vals):
-        v -= 0.1
+        v -= 0.3
         if v > 0.0:
             tot += v
             mom += v * i
     if tot <= 0.0:
         return 0.5 * (s + e - 1)
     return lo + a + mom / tot
+
+
+def _touched_centre(col, lo: int, s: int, e: int, yp: float, expect: float) -> float:
+    """Centre of the line in a run longer than the line: something touches it (a crossing
+    line, a label).  Where the run has two or more cores (pixels above 70 % of its darkest,
+    parted by lighter ones), the core nearest the prediction ``yp``; otherwise the part of
+    the run within half the expected length of the prediction."""
+    vals = col[s - lo:e - lo].tolist()
+    top = 0.7 * max(vals)
+    cores = []
+    start = None
+    for i, v in enumerate(vals + [0.0]):
+        if v > top and start is None:
+            start = i
+        elif v <= top and start is not None:
+            cores.append((s + start, s + i))
+            start = None
+    if len(cores) > 1:
+        a, b = min(cores, key=lambda c: max(c[0] - yp, yp - (c[1] - 1), 0.0))
+        return _centre(col, lo, a, b)
+    half = 0.5 * expect
+    return _centre(col, lo, max(s, int(math.floor(yp - half))), min(e, int(math.ceil(yp + half)) + 1), 0)
 
 
 def _predict(hx: list, hy: list, x: int) -> tuple[float, float]:
@@ -196,7 +222,10 @@ def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list
             s, e = best
             length = e - s
             if length <= limit:
-                y = _centre(col, lo, s, e)
+                if length <= expect + 0.75:
+                    y = _centre(col, lo, s, e)
+                else:
+                    y = _touched_centre(col, lo, s, e, yp, expect)
                 if abs(y - yp) <= win:
                     hx.append(x)
                     hy.append(y)
@@ -210,7 +239,7 @@ def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list
                     bridged = 0
                     if len(out_x) % 8 == 0 and _flat(out_x, out_y):
                         # an axis or a grid line the curve has run into: drop the straight stretch
-                        del out_x[-FLAT_PX:], out_y[-FLAT_PX:]
+                        del out_x[len(out_x) - FLAT_PX + _FLAT_KEEP:], out_y[len(out_y) - FLAT_PX + _FLAT_KEEP:]
                         return out_x, out_y, "end of line", thick
                     continue
             bridged += 1
