@@ -26,10 +26,9 @@ from fitter.digitise import (
 )
 from fitter.errors import InputError
 from fitter.fit import fit_curves
-from fitter.models import get_model
 from fitter.reader import read_curves, read_text
 
-from digitise_pages import PAGES, make_page
+from digitise_pages import PAGES, digitise_page, make_page, page_errors
 
 
 # ---------------------------------------------------------------------------
@@ -513,50 +512,6 @@ def _page(name):
     return make_page(name)
 
 
-def digitise_page(page, rng):
-    """What a user does: click every tick mark (+/- 1 px), click each curve once (+/- 1 px),
-    name its grid voltage; then the engine's steps.  Returns (axis map, traces, CSV text)."""
-    img = load_image(page.data, page.spec.name)
-    marks = [AxisMark(x + rng.uniform(-1, 1), y + rng.uniform(-1, 1), axis, v) for x, y, axis, v in page.ticks]
-    axes = fit_axes(marks)
-    curves, traces = [], []
-    for vg, sx, sy in page.seeds:
-        tr = trace_curve(img, (sx + rng.uniform(-1, 1), sy + rng.uniform(-1, 1)), box=page.box)
-        traces.append(tr)
-        va, ia = curve_points(tr, axes, n=40)
-        curves.append((vg, va, ia))
-    text = curves_to_wide_csv(curves, tube=f"SHEET-{page.spec.name}", note="synthetic page (invented tube)")
-    return axes, traces, text
-
-
-def page_errors(page, fit):
-    """(largest current error as a fraction of full scale over every drawn curve, and the
-    relative errors of gm, rp, mu at the mid-range point) of a fit against the page's truth."""
-    m = get_model(page.spec.model)
-    fs = page.spec.ia_max_ma  # full scale: the current axis' top
-    worst = 0.0
-    for vg, (lo, hi) in zip(page.spec.grid_voltages, page.spans):
-        va = np.linspace(lo, hi, 300)
-        diff = m.current(va, np.full_like(va, vg), **fit.triode.params) * 1e3 - page.truth_ma(va, vg)
-        worst = max(worst, float(np.abs(diff).max()) / fs)
-    va0, vg0 = mid_point(page)
-    ss = fit.triode.small_signal(va0, vg0, check=False)
-    dva, dvg = m.voltage_gradient(va0, vg0, **m.full_params(page.spec.params))
-    gm, rp = float(dvg), 1.0 / float(dva)
-    return worst, {"gm": ss.gm / gm - 1.0, "rp": ss.rp / rp - 1.0, "mu": ss.mu / (gm * rp) - 1.0}
-
-
-def mid_point(page):
-    """The middle grid curve, where its truth current is 40 % of full scale (common practice:
-    an operating point in the middle of the plotted family)."""
-    gv = page.spec.grid_voltages
-    k = len(gv) // 2
-    lo, hi = page.spans[k]
-    va = np.linspace(lo, hi, 4001)
-    ia = page.truth_ma(va, gv[k])
-    return float(va[np.searchsorted(ia, 0.4 * page.spec.ia_max_ma)]), float(gv[k])
-
-
 @pytest.mark.parametrize("name", PAGES)
 def test_synthetic_page_digitised_and_fitted_matches_the_truth(name):
     page = _page(name)
@@ -574,7 +529,7 @@ def test_synthetic_page_digitised_and_fitted_matches_the_truth(name):
         covered = (min(float(va.max()), hi) - max(float(va.min()), lo)) / (hi - lo)
         # (the box is the rotated frame's inner rectangle, which cuts a short curve's end off)
         assert covered > 0.6, (name, vg, covered, tr.stop_left, tr.stop_right)
-    res = read_text(text, file=f"{name}.csv")
+    res = read_text(text, file=f"{name}.csv")  # the reader takes the engine's CSV as it is
     assert len(res.units) == 1 and not res.skipped, res.skipped
     unit = res.units[0]
     assert unit.n_curves == len(page.spec.grid_voltages)

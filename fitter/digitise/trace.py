@@ -92,13 +92,14 @@ class Trace:
 
 def _column(ink: np.ndarray, x: int, lo: int, hi: int):
     """Runs of ink in column x between rows lo and hi: (starts, ends (exclusive), values of
-    rows lo..hi as floats).  A run cut by lo or hi is reported as far as it is seen."""
+    rows lo..hi).  A run cut by lo or hi is reported as far as it is seen."""
     col = ink[lo:hi, x]
-    m = np.empty(hi - lo + 2, dtype=np.int8)
-    m[0] = m[-1] = 0
-    np.greater(col, INK_THRESHOLD, out=m[1:-1], casting="unsafe")
-    edges = np.flatnonzero(np.diff(m)) + lo
-    e = edges.tolist()
+    b = col > INK_THRESHOLD
+    e = (np.flatnonzero(b[1:] != b[:-1]) + (lo + 1)).tolist()
+    if b[0]:
+        e.insert(0, lo)
+    if b[-1]:
+        e.append(hi)
     return e[0::2], e[1::2], col
 
 
@@ -170,14 +171,22 @@ def _flat(xs: list, ys: list) -> bool:
     (rms distance from it at most FLAT_TOL_PX), over about as many columns."""
     if len(xs) < FLAT_PX or abs(xs[-1] - xs[-FLAT_PX]) > 1.5 * FLAT_PX:
         return False
-    x = np.asarray(xs[-FLAT_PX:], float)
-    y = np.asarray(ys[-FLAT_PX:], float)
-    x = x - x.mean()
-    y = y - y.mean()
-    slope = float((x * y).sum() / (x * x).sum())
+    x = xs[-FLAT_PX:]
+    y = ys[-FLAT_PX:]
+    mx = sum(x) / FLAT_PX
+    my = sum(y) / FLAT_PX
+    sxx = sxy = syy = 0.0
+    for u, v in zip(x, y):
+        u -= mx
+        v -= my
+        sxx += u * u
+        sxy += u * v
+        syy += v * v
+    slope = sxy / sxx
     if abs(slope) > FLAT_SLOPE:
         return False
-    return float(np.sqrt(np.mean((y - slope * x) ** 2))) <= FLAT_TOL_PX
+    # residual sum of squares of the least-squares line: syy - sxy^2 / sxx
+    return max(syy - slope * sxy, 0.0) / FLAT_PX <= FLAT_TOL_PX ** 2
 
 
 def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list, list, str, float]:
