@@ -17,6 +17,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from PIL import Image, ImageDraw
 
 import fitter.digitise as dg
@@ -26,7 +28,7 @@ from fitter.digitise import (
 )
 from fitter.errors import InputError
 from fitter.fit import fit_curves
-from fitter.reader import read_curves, read_text
+from fitter.reader import CurveReadError, read_curves, read_text
 
 from digitise_pages import PAGES, digitise_page, make_page, page_errors
 
@@ -494,6 +496,96 @@ def test_wide_csv_refuses_bad_names(kw, field):
     with pytest.raises(DigitiseInputError) as e:
         curves_to_wide_csv(_curves(), **kw)
     assert e.value.field == field, str(e.value)
+
+
+# ---------------------------------------------------------------------------
+# Untrusted input: whatever comes in, only the digitiser's own error comes out
+# ---------------------------------------------------------------------------
+
+FUZZ = settings(max_examples=60, deadline=None)
+_PNG_HEAD = _draw((40, 40), [([(0, 20), (39, 20)], 2, (0, 0, 0))])
+_JPEG_HEAD = _draw((40, 40), [([(0, 20), (39, 20)], 2, (0, 0, 0))], fmt="JPEG")
+
+
+@FUZZ
+@given(st.sampled_from([b"", b"\x89PNG\r\n\x1a\n", b"\xff\xd8\xff", _PNG_HEAD[:60], _JPEG_HEAD[:200]]),
+       st.binary(max_size=400), st.integers(0, 3))
+def test_fuzz_load_image(head, tail, cut):
+    # a real file's head, then garbage; or a real file with bytes flipped
+    data = head + tail
+    if cut == 3:
+        data = bytearray(_PNG_HEAD)
+        for k, b in enumerate(tail[:20]):
+            data[(b * 7 + k * 13) % len(data)] ^= 0xFF
+        data = bytes(data)
+    try:
+        img = load_image(data, "fuzz")
+    except DigitiseInputError as e:
+        assert e.field == "image"
+        return
+    assert img.ink.shape == (img.height, img.width) and np.isfinite(img.ink).all()
+
+
+_num = st.one_of(st.floats(allow_nan=True, allow_infinity=True, width=64), st.integers(-10**6, 10**6))
+
+
+@FUZZ
+@given(st.lists(st.tuples(_num, _num, st.sampled_from(["va", "ia", "x"]), _num), max_size=8))
+def test_fuzz_fit_axes(raw):
+    marks = [AxisMark(*m) for m in raw]
+    try:
+        am = fit_axes(marks)
+    except DigitiseInputError as e:
+        assert e.field == "marks" or e.field.startswith("marks["), e.field
+        return
+    assert len(am.residuals) == len(marks)
+    assert np.isfinite(am.va_coef).all() and np.isfinite(am.ia_coef).all()
+    json.dumps(am.to_dict())
+
+
+@FUZZ
+@given(st.integers(0, 2**32 - 1), st.floats(-10, 80), st.floats(-10, 80),
+       st.one_of(st.none(), st.tuples(st.floats(-20, 90), st.floats(-20, 90), st.floats(-20, 90), st.floats(-20, 90))))
+def test_fuzz_trace_curve(seed, sx, sy, box):
+    rng = np.random.default_rng(seed)
+    a = (rng.random((64, 64, 3)) > rng.uniform(0.3, 0.99)).astype(np.uint8) * 255
+    buf = io.BytesIO()
+    Image.fromarray(a).save(buf, format="PNG")
+    img = load_image(buf.getvalue())
+    try:
+        tr = trace_curve(img, (sx, sy), box=box)
+    except DigitiseInputError as e:
+        assert e.field in ("seed", "box"), e.field
+        return
+    assert tr.px.size >= 1 and np.all(np.diff(tr.px) > 0)
+    assert tr.stop_left in ("edge", "end of line", "box") and tr.stop_right in ("edge", "end of line", "box")
+    assert np.isfinite(tr.py).all()
+
+
+_curve_st = st.tuples(
+    st.floats(-200, 10).map(lambda v: round(v, 2)),
+    st.lists(st.floats(0, 2000), min_size=3, max_size=12, unique=True),
+    st.lists(st.floats(0, 500), min_size=12, max_size=12))
+
+
+@FUZZ
+@given(st.lists(_curve_st, min_size=2, max_size=5))
+def test_fuzz_wide_csv_round_trip(raw):
+    curves = [(g, va, ia[:len(va)]) for g, va, ia in raw]
+    try:
+        text = curves_to_wide_csv(curves, tube="FUZZ")
+    except DigitiseInputError as e:
+        assert e.field.startswith("curves["), e.field
+        return
+    try:
+        unit = read_text(text).units[0]
+    except CurveReadError as e:  # whatever the digitiser writes, the reader must take
+        raise AssertionError(f"the reader refused the digitiser's CSV: {e}") from None
+    for g, va, ia in curves:
+        m = unit.vg == float(f"{g:.6g}")
+        got = dict(zip(unit.va[m].tolist(), (unit.ia[m] * 1e3).tolist()))
+        for a, b in zip(va, ia):
+            assert got[float(f"{a:.6g}")] == pytest.approx(float(f"{b:.6g}"), rel=1e-12, abs=1e-12)
 
 
 # ---------------------------------------------------------------------------
