@@ -360,6 +360,28 @@ def test_trace_stops_where_the_curve_runs_into_the_axis():
     assert tr.px.min() > 100, tr.px.min()
 
 
+@pytest.mark.parametrize("k", [2, 8, 15])
+def test_trace_steep_curve_ending_by_a_grid_line(k):
+    # rising ever more steeply (slope up to about 1.5, 6 and 11 px per column), ending 3 px above
+    # a horizontal grid line: followed to its end, and the grid line is not taken up after it
+    xs = np.linspace(10, 390, 2000)
+
+    def f(x):
+        return 290 - 280 * ((np.asarray(x, float) - 10) / 380) ** k
+
+    lines = [(list(zip(xs, f(xs))), 2.5, (0, 0, 0))]
+    lines += [([(gx, 0), (gx, 299)], 1.0, (90, 90, 90)) for gx in range(5, 400, 37)]
+    lines += [([(0, gy), (399, gy)], 1.0, (90, 90, 90)) for gy in range(13, 300, 41)]
+    img = load_image(_draw((400, 300), lines))
+    x0 = 10 + 380 * 0.5 ** (1 / k)
+    tr = trace_curve(img, (x0, float(f(x0))))
+    assert 388 <= tr.px.max() <= 391, tr.px.max()
+    slope = 280 * k / 380 * ((tr.px - 10) / 380) ** (k - 1)
+    # distance across the line (the row error shrunk by the slope) within a pixel
+    across = np.abs(tr.py - f(tr.px)) / np.sqrt(1 + slope ** 2)
+    assert float(across.max()) < 1.0, float(across.max())
+
+
 def test_trace_seed_errors():
     img = _curve_page()
     with pytest.raises(DigitiseInputError) as e:

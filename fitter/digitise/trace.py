@@ -20,8 +20,8 @@ end, found by one vectorised pass over that stretch).  It predicts the row from 
 through the last few, so the slope carries it), and takes the run of ink nearest the
 prediction within a window that widens with the slope and with the columns it has had to
 bridge.  A run is accepted only if its length fits the line being followed (the line's own
-thickness plus the rise across one column); a longer run is a crossing, and the column is
-bridged on the prediction instead:
+thickness plus the rise across one column; not under half of that, not much over it) and
+its centre is close to the prediction; otherwise the column is bridged on the prediction:
 
 * a vertical grid line, an axis or a tick makes a long run in its column (a rotated page's
   grid line a run of tens of pixels);
@@ -230,12 +230,17 @@ def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list
         if best is not None:
             s, e = best
             length = e - s
-            if length <= limit:
+            # a run much shorter than the line is not the line either (a thin grid line
+            # where the curve has ended)
+            if 0.5 * expect - 0.5 <= length <= limit:
                 if length <= expect + 0.75:
                     y = _centre(col, lo, s, e)
                 else:
                     y = _touched_centre(col, lo, s, e, yp, expect)
-                if abs(y - yp) <= win:
+                # the line's centre stays close to the prediction (continuity of slope): a
+                # run further off is something else the window caught (a grid line where the
+                # curve ends, the other line of a crossing)
+                if abs(y - yp) <= 1.0 + 0.5 * thick + 0.5 * a + 0.5 * since * (1.0 + a):
                     hx.append(x)
                     hy.append(y)
                     out_x.append(x)
