@@ -164,6 +164,21 @@ def test_load_image_transparency_and_grey_modes():
     assert img.ink[41, 50] > 0.7 and img.ink[10, 50] < 0.05
 
 
+def test_load_image_applies_the_exif_orientation():
+    # a photograph taken with the camera turned: stored 200 x 120 with "rotate 90 clockwise to
+    # show" (EXIF orientation 6, the TIFF/EXIF standard's code): shown, and read, 120 x 200
+    img = Image.new("RGB", (200, 120), (255, 255, 255))
+    ImageDraw.Draw(img).line([(10, 20), (190, 20)], fill=(0, 0, 0), width=3)
+    exif = Image.Exif()
+    exif[0x0112] = 6
+    buf = io.BytesIO()
+    img.save(buf, format="JPEG", quality=95, exif=exif)
+    got = load_image(buf.getvalue())
+    assert (got.width, got.height) == (120, 200)
+    # the line along the top of the stored image is a vertical line near the right when shown
+    assert got.ink[100, 120 - 1 - 20] > 0.7 and got.ink[100, 20] < 0.1
+
+
 # ---------------------------------------------------------------------------
 # fit_axes
 # ---------------------------------------------------------------------------
@@ -452,6 +467,12 @@ def test_curve_points_spread_along_the_curve():
     with pytest.raises(DigitiseInputError) as e:
         curve_points(tr, "axes")
     assert e.value.field == "axes"
+    for bad in (Trace(px=px, py=px[:-1], stop_left="box", stop_right="box"),
+                Trace(px=np.array([1.0, np.nan]), py=np.array([1.0, 2.0]), stop_left="box", stop_right="box"),
+                Trace(px=np.array([]), py=np.array([]), stop_left="box", stop_right="box")):
+        with pytest.raises(DigitiseInputError) as e:
+            curve_points(bad, _aligned_map())
+        assert e.value.field == "trace"
     # a short trace comes back whole
     short = Trace(px=px[:5], py=_curve(px[:5]), stop_left="box", stop_right="box")
     assert curve_points(short, _aligned_map())[0].size == 5

@@ -51,10 +51,18 @@ def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarra
         raise DigitiseInputError(f"must be a fitted axis map, got {type(axes).__name__}", field="axes")
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or not 2 <= n <= MAX_POINTS:
         raise DigitiseInputError(f"must be a whole number from 2 to {MAX_POINTS}, got {n!r}", field="n")
-    px = np.asarray(trace.px, float)
-    py = np.asarray(trace.py, float)
+    try:
+        px = np.asarray(trace.px, float)
+        py = np.asarray(trace.py, float)
+    except (TypeError, ValueError):
+        raise DigitiseInputError("the traced points must be numbers", field="trace") from None
+    if px.ndim != 1 or px.shape != py.shape:
+        raise DigitiseInputError(f"px and py must be lists of one length, got {px.shape} and {py.shape}",
+                                 field="trace")
     if px.size == 0:
         raise DigitiseInputError("the traced curve has no points", field="trace")
+    if px.size > 100_000 or not (np.isfinite(px).all() and np.isfinite(py).all()):
+        raise DigitiseInputError("the traced points must be finite (and at most 100,000)", field="trace")
     if px.size > n:
         seg = np.hypot(np.diff(px), np.diff(py))
         s = np.concatenate([[0.0], np.cumsum(seg)])
