@@ -44,7 +44,12 @@ MAX_POINTS = 5000
 
 
 def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarray, np.ndarray]:
-    """(va [V], ia [mA]) at about ``n`` points spread along the traced curve, va increasing."""
+    """(va [V], ia [mA]) at about ``n`` points spread along the traced curve, va increasing.
+
+    Points more than a pixel beyond the zero lines of the axes (negative plate voltage or
+    current) are left out: a plate curve has none, and there the tracer has run along an
+    axis or into its tick labels (possible when no box is given).  So fewer than ``n``, or
+    none, may come back."""
     if not isinstance(trace, Trace):
         raise DigitiseInputError(f"must be a traced curve, got {type(trace).__name__}", field="trace")
     if not isinstance(axes, AxisMap):
@@ -83,6 +88,10 @@ def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarra
         px = (cx[hi] - cx[lo]) / cnt
         py = (cy[hi] - cy[lo]) / cnt
     va, ia = axes.to_data(px, py)
+    # beyond the zero lines of the axes (by more than a pixel) is off a plate-curve plot: the
+    # tracer went on along an axis or into its tick labels
+    keep = (va >= -math.hypot(*axes.va_coef[1:])) & (ia >= -math.hypot(*axes.ia_coef[1:]))
+    va, ia = va[keep], ia[keep]
     order = np.argsort(va, kind="stable")
     return va[order], ia[order]
 
