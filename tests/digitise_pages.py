@@ -234,7 +234,7 @@ def make_page(name: str) -> Page:
     if spec.fmt == "jpeg":
         out.save(buf, format="JPEG", quality=spec.jpeg_quality)
     else:
-        out.save(buf, format="PNG")
+        out.save(buf, format="PNG", compress_level=1)  # fast to write; a noisy page compresses little anyway
 
     def place(va, ia):
         x, y = to_pixel(va, ia)
