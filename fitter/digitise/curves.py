@@ -178,8 +178,8 @@ def curves_to_wide_csv(curves: Sequence[tuple[float, Sequence[float], Sequence[f
             raise DigitiseInputError(f"{vg:g} V is beyond any tube's grid voltage", field=f"{f}.grid_v")
         key = _fmt(vg + 0.0)
         if key in seen:
-            raise DigitiseInputError(f"vg = {key} V is also curves[{seen[key]}]'s grid voltage; each curve needs its own",
-                                     field=f"{f}.grid_v")
+            raise DigitiseInputError(f"vg = {key} V is also curves[{seen[key]}]'s grid voltage; "
+                                     "each curve needs its own", field=f"{f}.grid_v")
         seen[key] = i
         va = _values(va, f"{f}.va")
         ia = _values(ia, f"{f}.ia")
