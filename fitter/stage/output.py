@@ -436,7 +436,7 @@ def _idle(stage, banks) -> dict:
     return op
 
 
-def _waveforms(stage, banks, op, vin, guide=None) -> dict:
+def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None) -> dict:
     """Quasi-static response to the grid signal ``vin`` (any shape; push-pull: +vin on grid A,
     -vin on grid B).  Returns arrays: ``v_load`` (voltage across the reflected load [V],
     positive when the plate (A) swings down), per tube ``.ia``, ``.va``, ``.vgk``."""
@@ -458,18 +458,65 @@ def _waveforms(stage, banks, op, vin, guide=None) -> dict:
         return {"v_load": RL * (i - i0), "tube.ia": i, "tube.va": plate - vk, "tube.vgk": vg + vin - vk}
     d0 = op["A.ia"] - op["B.ia"]
     hold = stage.rk is None or stage.bypassed
-    if guide is None:
+    if x0 is not None:
+        pass  # (push-pull: IA, IB, v, vk of a solve nearby)
+    elif guide is None:
         x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
     else:
         # start from the transfer already solved on a grid of drives: a step or two from the answer
         xg, wg = guide
         x0 = (np.interp(vin, xg, wg["A.ia"]), np.interp(vin, xg, wg["B.ia"]), np.interp(vin, xg, wg["v_load"]) / 2.0,
               np.interp(vin, xg, vg + xg - wg["A.vgk"]))
-    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=op["vk"] if hold else None, d0=d0, x0=x0)
+    if hold and vk is None:
+        vk = op["vk"]
+    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=vk if hold else None, d0=d0, x0=x0)
     r = stage.r_primary / 2.0
     return {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
             "A.va": stage.b_plus - r * ia - v - vk, "B.va": stage.b_plus - r * ib + v - vk,
-            "A.vgk": vg + vin - vk, "B.vgk": vg - vin - vk}
+            "A.vgk": vg + vin - vk, "B.vgk": vg - vin - vk, "vk": np.broadcast_to(vk, np.shape(v))}
+
+
+def _shifts(stage) -> bool:
+    """The bias follows the drive: a push-pull's shared, bypassed cathode resistor charges its
+    capacitor to Rk times the mean of both currents over a period (class AB draws more)."""
+    return stage.kind == "push-pull" and stage.rk is not None and stage.bypassed
+
+
+def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=None):
+    """Cathode voltage of a :func:`_shifts` stage at each drive amplitude: the root of
+    G(vk) = vk - Rk mean(IA + IB) over one period with the cathode held at vk.  G rises with
+    slope 1 + Rk (gm + 1/rp summed) > 1, so a Newton step with the idle slope, then secant
+    steps, converge in a few solves.  Returns (vk (len(amps),), waveforms of the distinct
+    samples, (distinct, where) of :func:`_half_period`)."""
+    amps = np.atleast_1d(np.asarray(amps, float))
+    theta = 2 * np.pi * np.arange(n_samples) / n_samples
+    distinct, where = _half_period(n_samples)
+    weight = np.bincount(where, minlength=distinct.size) / n_samples
+    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+    rk = stage._rk
+    slope = 1.0
+    for b, p in zip(banks, stage.positions):
+        gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
+        slope += rk * float(gva + gvg)
+    vk = np.full(amps.shape, float(op["vk"] if vk0 is None else vk0))
+    prev = None
+    tol = 1e-10 * stage.b_plus
+    x0 = None
+    for _ in range(40):
+        w = _waveforms(stage, banks, op, vin, guide, vk=vk[:, None], x0=x0)
+        # the next solve starts here (vk moves little): two or three Newton steps
+        x0 = (w["A.ia"], w["B.ia"], w["v_load"] / 2.0, w["vk"])
+        G = vk - rk * ((w["A.ia"] + w["B.ia"]) @ weight)
+        if np.all(np.abs(G) <= tol):
+            return vk, w, (distinct, where)
+        s_ = np.full(amps.shape, slope)
+        if prev is not None:
+            dv, dG = vk - prev[0], G - prev[1]
+            ok = (np.abs(dv) > 0) & (dG * dv > 0)
+            s_ = np.where(ok, dG / np.where(ok, dv, 1.0), s_)
+        prev = (vk, G)
+        vk = vk - G / s_
+    raise StageSolveError("the shared cathode resistor's voltage under drive did not converge")
 
 
 def waveforms(stage, *triodes, vin) -> dict:
@@ -512,7 +559,10 @@ def _margins(stage, banks, op, amps, keep=None):
     caller's solves."""
     amps = np.asarray(amps, float)
     guide = None if keep is None else keep.get("guide")
-    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide)
+    vk = None
+    if _shifts(stage):
+        vk = _cathode_at(stage, banks, op, amps.ravel(), guide)[0].reshape(amps.shape)[..., None]
+    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide, vk=vk)
     if keep is not None and guide is None and stage.kind == "push-pull" and amps.ndim == 1:
         order = np.argsort(amps)
         keep["guide"] = (np.concatenate([-amps[order][::-1], amps[order]]),
@@ -592,21 +642,47 @@ def drive_limits(stage, *triodes) -> dict:
 def _drive_limits(stage, banks, op, keep=None):
     vgk0 = max(op[f"{p}.vgk"] for p in stage.positions)
     head = stage.grid_onset - vgk0
-    fixed_cathode = stage.rk is None or stage.bypassed
+    fixed_cathode = (stage.rk is None or stage.bypassed) and not _shifts(stage)
     if fixed_cathode:
         # the cathode holds its DC voltage: the grid reaches the onset when the drive
         # equals the headroom, exactly
         grid = head
     else:
         # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
-        # push-pull's cathode moves only with the rectified sum of the currents
+        # push-pull's cathode moves only with the rectified sum of the currents (bypassed:
+        # with its mean over a period, each amplitude's found by _cathode_at, so fewer points)
         hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
+        if _shifts(stage):
+            grid = _grid_limit_shifting(stage, banks, op, head)
+            cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid, n=16, passes=3)
+            return {"grid": grid, "cutoff": cut}
         grid, cut = _two_crossings(lambda a: _margins(stage, banks, op, a, keep), hi)
         if cut is not None and grid is not None and cut >= grid:
             cut = None
         return {"grid": grid, "cutoff": cut}
     cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid)
     return {"grid": grid, "cutoff": cut}
+
+
+def _grid_limit_shifting(stage, banks, op, head):
+    """The drive where a grid reaches the onset when the shared bypassed cathode follows the
+    mean current: the crest reaches it at a = onset - bias + vk(a), a fixed point (vk grows
+    slowly with a), found by secant steps from the held-cathode answer ``head``."""
+    last = [None]
+
+    def h(a):
+        vk = float(_cathode_at(stage, banks, op, [a], vk0=last[0])[0][0])
+        last[0] = vk
+        return a - (stage.grid_onset - stage._vg + vk)
+
+    a0, h0 = head, h(head)
+    a1 = head - h0
+    for _ in range(30):
+        h1 = h(a1)
+        if abs(h1) <= 1e-10 * stage.b_plus:
+            return float(a1)
+        a0, h0, a1 = a1, h1, a1 - h1 * (a1 - a0) / (h1 - h0) if h1 != h0 else a1 - h1
+    raise StageSolveError("the grid-current limit with the shared cathode's bias shift did not converge")
 
 
 # ---------------------------------------------------------------------------
@@ -657,11 +733,16 @@ def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES, guide=None):
     solved once (about half of them) and copied.  ``guide`` (drives, waveforms): the
     push-pull's transfer on a grid of drives covering ``amps``, to start the solve from."""
     amps = np.atleast_1d(np.asarray(amps, float))
-    theta = 2 * np.pi * np.arange(n_samples) / n_samples
-    distinct, where = _half_period(n_samples)
-    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
-    w = _waveforms(stage, banks, op, vin, guide)
-    w = {key: np.broadcast_to(val, vin.shape)[:, where] for key, val in w.items()}
+    if _shifts(stage):
+        _, w, (distinct, where) = _cathode_at(stage, banks, op, amps, guide, n_samples)
+        shape = (amps.size, distinct.size)
+    else:
+        theta = 2 * np.pi * np.arange(n_samples) / n_samples
+        distinct, where = _half_period(n_samples)
+        vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+        w = _waveforms(stage, banks, op, vin, guide)
+        shape = vin.shape
+    w = {key: np.broadcast_to(val, shape)[:, where] for key, val in w.items()}
     h = harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
     return w, h
 
@@ -704,8 +785,9 @@ def _level_at_thd(stage, banks, op, sweep, target, guide=None):
 
 #: what the figures assume (reports and JSON state it)
 ASSUMPTIONS = ("quasi-static mid-band (the transformer is ideal, its magnetising current holds the idle "
-               "current; bypass capacitors hold their charge, so a bypassed cathode resistor's bias shift "
-               "in class AB is not modelled); no grid current")
+               "current; a bypass capacitor holds its charge over a period: a push-pull's shared one at Rk times "
+               "the mean current at each level, so the bias shift under drive is modelled, a single-ended one at "
+               "its idle voltage); no grid current")
 
 
 @dataclass
@@ -761,6 +843,9 @@ class OutputResult:
             out["imbalance_ma"] = 1e3 * f["imbalance"]
             out["class_a"] = {"vin_peak_v": f["vin_cut"], "power_w": f["p_class_a"],
                               "class": f["class"], "crossover_gm_ratio": f["gm_dip"]}
+            if "vk_full" in f:
+                out["cathode_full_v"] = f["vk_full"]
+                out["bias_shift_v"] = f["bias_shift"]
         return out
 
     def report(self) -> str:
@@ -798,6 +883,10 @@ class OutputResult:
                 L.append(f"  class AB: class A up to {f['p_class_a']:.3g} W (grid drive {f['vin_cut']:.3g} V)")
             L.append(f"  crossover: the composite transconductance at idle is {100 * f['gm_dip']:.0f} % of its "
                      f"largest over the swing")
+            if "vk_full" in f:
+                L.append(f"  shared cathode: {self.op['vk']:.2f} V at idle, {f['vk_full']:.2f} V "
+                         f"{'(the bypass capacitor) ' if st.bypassed else '(mean) '}at full output: the bias "
+                         f"shifts by {f['bias_shift']:+.2f} V")
         L.append(f"  output impedance at the secondary {f['z_out']:.3g} ohm, damping factor {f['damping']:.3g}")
         if "errors" in f:
             e = f["errors"]
@@ -915,6 +1004,11 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
     figures["damping"] = stage.speaker / figures["z_out"]
     if not se:
         figures["imbalance"] = op["A.ia"] - op["B.ia"]
+        if stage.rk is not None:
+            # the shared cathode at full output: its mean over the period (bypassed: the
+            # capacitor's voltage, Rk times the mean of both currents)
+            figures["vk_full"] = float(np.mean(w["vk"][-1]))
+            figures["bias_shift"] = figures["vk_full"] - op["vk"]
         # crossover: the composite transconductance (slope of the load voltage against the
         # grid drive) at the idle point against its largest over the swing; a cold bias makes
         # the middle flat (a notch), 1.0 means no dip
@@ -1240,6 +1334,10 @@ def _many_group(stage, cases, thd, level, levels):
     """:func:`_solve_many` for cases of one group (same models and grid-current parameters):
     (figures (n,), failed (n,), to solve one by one (n,))."""
     n0 = len(cases)
+    if _shifts(stage):
+        # the cathode follows each level's mean current: no single transfer to sample, so
+        # each case is solved by solve_output
+        return ({k: np.full(n0, np.nan) for k in _many_keys(stage)}, np.zeros(n0, bool), np.ones(n0, bool))
     se = stage.kind == "single-ended"
     npos = len(stage.positions)
     banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
