@@ -483,22 +483,31 @@ def _shifts(stage) -> bool:
 
 
 def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=None):
-    """Cathode voltage of a :func:`_shifts` stage at each drive amplitude: the root of
-    G(vk) = vk - Rk mean(IA + IB) over one period with the cathode held at vk.  G rises with
-    slope 1 + Rk (gm + 1/rp summed) > 1, so a Newton step with the idle slope, then secant
-    steps, converge in a few solves.  Returns (vk (len(amps),), waveforms of the distinct
-    samples, (distinct, where) of :func:`_half_period`)."""
+    """Cathode voltage of a :func:`_shifts` stage at each drive amplitude (a sine of
+    ``n_samples`` a period, each distinct value solved once): see :func:`_cathode_rows`.
+    Returns (vk (len(amps),), waveforms of the distinct samples, (distinct, where) of
+    :func:`_half_period`)."""
     amps = np.atleast_1d(np.asarray(amps, float))
     theta = 2 * np.pi * np.arange(n_samples) / n_samples
     distinct, where = _half_period(n_samples)
     weight = np.bincount(where, minlength=distinct.size) / n_samples
     vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+    vk, w = _cathode_rows(stage, banks, op, vin, weight, guide, vk0)
+    return vk, w, (distinct, where)
+
+
+def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None):
+    """The shared bypassed cathode's voltage for each row of ``vin`` (a period's samples,
+    ``weight`` each sample's share of the period): the root of G(vk) = vk - Rk mean(IA + IB)
+    with the cathode held at vk.  G rises with slope 1 + Rk (gm + 1/rp summed) > 1, so a
+    Newton step with the idle slope, then secant steps, converge in a few solves.  Returns
+    (vk (rows,), the waveforms there)."""
     rk = stage._rk
     slope = 1.0
     for b, p in zip(banks, stage.positions):
         gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
         slope += rk * float(gva + gvg)
-    vk = np.full(amps.shape, float(op["vk"] if vk0 is None else vk0))
+    vk = np.full(vin.shape[0], float(op["vk"] if vk0 is None else vk0))
     prev = None
     tol = 1e-10 * stage.b_plus
     x0 = None
@@ -508,8 +517,8 @@ def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=Non
         x0 = (w["A.ia"], w["B.ia"], w["v_load"] / 2.0, w["vk"])
         G = vk - rk * ((w["A.ia"] + w["B.ia"]) @ weight)
         if np.all(np.abs(G) <= tol):
-            return vk, w, (distinct, where)
-        s_ = np.full(amps.shape, slope)
+            return vk, w
+        s_ = np.full(vk.shape, slope)
         if prev is not None:
             dv, dG = vk - prev[0], G - prev[1]
             ok = (np.abs(dv) > 0) & (dG * dv > 0)
@@ -520,9 +529,17 @@ def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=Non
 
 
 def waveforms(stage, *triodes, vin) -> dict:
-    """Public form of the quasi-static response (solves the operating point first)."""
+    """Public form of the quasi-static response (solves the operating point first).  For a
+    push-pull on a shared bypassed cathode resistor a 1-D ``vin`` is taken as one period, and
+    the cathode sits at Rk times the mean current over it (the bias shift)."""
     banks = _banks(stage, triodes)
-    return _waveforms(stage, banks, _idle(stage, banks), vin)
+    op = _idle(stage, banks)
+    vin = np.asarray(vin, float)
+    if _shifts(stage) and vin.ndim == 1 and vin.size > 1:
+        # one period: the shared bypass capacitor at Rk times its mean current
+        w = _cathode_rows(stage, banks, op, vin[None, :], np.full(vin.size, 1.0 / vin.size))[1]
+        return {k: np.asarray(v)[0] for k, v in w.items()}
+    return _waveforms(stage, banks, op, vin)
 
 
 def composite_characteristic(stage, *triodes, drives, v):
