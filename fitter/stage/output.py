@@ -499,16 +499,16 @@ def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=Non
 def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None):
     """The shared bypassed cathode's voltage for each row of ``vin`` (a period's samples,
     ``weight`` each sample's share of the period): the root of G(vk) = vk - Rk mean(IA + IB)
-    with the cathode held at vk.  G rises with slope 1 + Rk (gm + 1/rp summed) > 1, so a
-    Newton step with the idle slope, then secant steps, converge in a few solves.  Returns
-    (vk (rows,), the waveforms there)."""
+    with the cathode held at vk.  G rises with slope 1 + Rk mean(-d(IA + IB)/dvk) > 1 (the
+    currents fall as the cathode rises), taken at each solve for a Newton step: three or four
+    solves.  Returns (vk (rows,), the waveforms there)."""
     rk = stage._rk
     slope = 1.0
     for b, p in zip(banks, stage.positions):
         gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
         slope += rk * float(gva + gvg)
     vk = np.full(vin.shape[0], float(op["vk"] if vk0 is None else vk0))
-    prev = None
+    r, q = stage.r_primary / 2.0, stage.reflected_load / 4.0
     tol = 1e-10 * stage.b_plus
     x0 = None
     for _ in range(40):
@@ -518,12 +518,16 @@ def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None):
         G = vk - rk * ((w["A.ia"] + w["B.ia"]) @ weight)
         if np.all(np.abs(G) <= tol):
             return vk, w
-        s_ = np.full(vk.shape, slope)
-        if prev is not None:
-            dv, dG = vk - prev[0], G - prev[1]
-            ok = (np.abs(dv) > 0) & (dG * dv > 0)
-            s_ = np.where(ok, dG / np.where(ok, dv, 1.0), s_)
-        prev = (vk, G)
+        # Newton: dG/dvk from the solved circuit's linearisation at each sample (the tube
+        # equations and the transformer's ampere-turn balance with the cathode held)
+        _, gaa, gga = banks[0].current_and_gradient(w["A.va"], w["A.vgk"])
+        _, gab, ggb = banks[1].current_and_gradient(w["B.va"], w["B.vgk"])
+        ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+        sa, sb = gaa + gga, gab + ggb
+        dv = q * (sb / cb - sa / ca) / (1.0 + q * (gaa / ca + gab / cb))
+        di = (-gaa * dv - sa) / ca + (gab * dv - sb) / cb
+        s_ = 1.0 - rk * (di @ weight)
+        s_ = np.where(np.isfinite(s_) & (s_ >= 1.0), s_, slope)
         vk = vk - G / s_
     raise StageSolveError("the shared cathode resistor's voltage under drive did not converge")
 
