@@ -510,7 +510,7 @@ def output_thd_against_frequency(stage, *triodes, power: float, freq=None, timeo
         # ngspice's long transient in tests/test_transient_output.py)
         hold["Ck"] = float(_cathode_at(stage, banks, op, [x])[0][0])
     vo, thd, hdb = _transient(lambda f: output_netlist(stage, triodes, amplitude=vsrc, freq=f, hold=hold), freq, timeout)
-    notes = [w for w in res.warnings]
+    notes = []
     if stage.l_primary is None:
         notes.append(f"no primary inductance given: the transformer's magnetising inductance is taken as "
                      f"{L_MAGNETISING:g} H (no low-frequency fall)")
