@@ -2,7 +2,8 @@
 
 Goal (issue 11, section 6): a 20-point component sweep over a 200-tube stock <= 2 s, with
 every figure (current, voltages, gain, headroom at 1 % THD, THD at a level, dissipation,
-heater-cathode margin, slew limit).  Also one frequency response (1 Hz .. 1 MHz, 40 points
+heater-cathode margin, slew limit); for output stages 20 reflected loads over 200 units
+(single-ended) or 200 pairs (push-pull) with every output figure.  Also one frequency response (1 Hz .. 1 MHz, 40 points
 per decade, -3 dB points) per stage.
 
 The tubes are invented units from Koren's 12AX7 / 12AU7 sets (from memory of Koren's table,
@@ -40,7 +41,8 @@ def timed(fn, repeat):
 def main():
     root = Path(__file__).resolve().parent.parent
     h = hashlib.sha1()
-    for f in ("fitter/stage/sweeps.py", "fitter/stage/frequency.py", "fitter/stage/solver.py"):
+    for f in ("fitter/stage/sweeps.py", "fitter/stage/frequency.py", "fitter/stage/solver.py",
+              "fitter/stage/output.py"):
         h.update((root / f).read_bytes())
     print("Platebook design-sweep benchmark (median of repeats; min in brackets)")
     print(f"load average at start: {' '.join(f'{x:.2f}' for x in os.getloadavg())}   engine sha1 {h.hexdigest()[:12]}")
@@ -76,6 +78,38 @@ def main():
         component_sweep(st, fieldname, vals[:2], cases[:2], level=level)
         med, lo = timed(lambda: component_sweep(st, fieldname, vals, cases, level=level), 3)
         print(f"  {name:<40} {med:7.3f} s [{lo:.3f}]")
+    # output stages (fitter.stage.output): 20 reflected loads over 200 invented 300B-like units
+    # (Koren's 300B set from memory of Koren's table, an invented 5 % kg1 and 20 % kp spread);
+    # push-pull over 200 invented pairs of them
+    from fitter.stage.output import PushPullOutput, SingleEndedOutput
+
+    p300b = FittedTriode("koren", dict(mu=3.95, ex=1.4, kg1=1550.0, kp=65.0, kvb=300.0), tube="PW")
+    pws = [p300b.with_params({"kg1": 1550 * f, "kp": 65 * k}) for f, k in
+           zip(rng.lognormal(0, 0.05, 2 * n), rng.lognormal(0, 0.2, 2 * n))]
+    outs = [
+        ("single-ended, fixed bias, load 2k..6k",
+         SingleEndedOutput(b_plus=330.0, load=3000.0, r_primary=150.0, grid_bias=-61.0, pa_max=40.0),
+         [(u,) for u in pws[:n]]),
+        ("single-ended, cathode bias, load 2k..6k",
+         SingleEndedOutput(b_plus=360.0, load=3000.0, r_primary=150.0, rk=1000.0, pa_max=40.0),
+         [(u,) for u in pws[:n]]),
+        ("push-pull class A, fixed bias, load 3k..8k",
+         PushPullOutput(b_plus=400.0, load=5000.0, r_primary=200.0, grid_bias=-84.0, pa_max=40.0),
+         list(zip(pws[:n], pws[n:]))),
+        ("push-pull class AB, fixed bias, load 3k..8k",
+         PushPullOutput(b_plus=400.0, load=4000.0, r_primary=200.0, grid_bias=-100.0, pa_max=40.0),
+         list(zip(pws[:n], pws[n:]))),
+        ("push-pull, shared Rk unbypassed, 3k..8k",
+         PushPullOutput(b_plus=450.0, load=5000.0, r_primary=200.0, rk=650.0, bypassed=False),
+         list(zip(pws[:n], pws[n:]))),
+    ]
+    print()
+    print(f"20-point sweep of the reflected load over {n} output-stage cases (THD limit 5 %, THD at 1 W); goal <= 2 s")
+    for name, st, cases in outs:
+        loads = sweep_values(2e3, 6e3, 20) if st.kind == "single-ended" else sweep_values(3e3, 8e3, 20)
+        component_sweep(st, "load", loads[:2], cases[:2], thd_limit=0.05, level=1.0)
+        med, lo = timed(lambda: component_sweep(st, "load", loads, cases, thd_limit=0.05, level=1.0), 3)
+        print(f"  {name:<44} {med:7.3f} s [{lo:.3f}]")
     print()
     print("one tube, 20-point sweep")
     for name, st, fieldname, vals, cases, level in runs:

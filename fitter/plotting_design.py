@@ -28,8 +28,10 @@ def _hz(f):
 
 def plot_response(fr, axes=None):
     """Gain [dB] and phase [deg] against frequency (log), the -3 dB points marked."""
-    if axes is None:
-        fig, axes = plt.subplots(2, 1, figsize=(8.0, 6.4), sharex=True)
+    own = axes is None
+    if own:
+        fig, axes = plt.subplots(2, 1, figsize=(9.0, 6.6), sharex=True, layout="constrained")
+        fig.get_layout_engine().set(rect=(0, 0.03, 1, 0.97))
     ag, ap = axes
     ag.semilogx(fr.freq, fr.gain_db, color="tab:blue", lw=1.6, label="gain")
     mid_db = 20 * np.log10(abs(fr.midband)) if fr.midband else None
@@ -50,10 +52,12 @@ def plot_response(fr, axes=None):
                  "(linearised at the operating point; source 1 V behind Rs)", fontsize=10)
     for ax in axes:
         ax.grid(True, which="both", alpha=0.3)
-    ag.legend(fontsize=8, loc="lower center")
+    # beside the gain panel, outside it: inside, some response would always run under it
+    ag.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     fig = ag.figure
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    if not own:
+        fig.tight_layout(rect=(0, 0.03, 1, 1))
     return axes
 
 
@@ -75,7 +79,20 @@ def plot_sweep(sw, figures=None):
     for ax, name in zip(axes.ravel(), names):
         lo, med, hi = sw.stats(name)
         unit, scale = sw.figure_unit(name)
-        ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
+        a = np.asarray(sw.figures[name], float)
+        every = np.isfinite(a).all(axis=1)
+        if sw.n_units > 1 and not every.all() and every.any() or sw.n_units > 1 and not every.any():
+            # where only some units have the figure (e.g. THD reaches the limit for some), the
+            # median of those few would jump: the line is drawn only where every unit has
+            # it, the band shows the rest, and the panel says so
+            ax.plot(x, np.where(every, med, np.nan) * scale, "-o", ms=3, color="tab:blue")
+            some = np.isfinite(a).any(axis=1) & ~every
+            ax.plot(x[some], med[some] * scale, "o", ms=3, mfc="none", color="tab:blue")
+            if some.any():
+                ax.text(0.99, 0.97, "open marks: median of the units that have it", ha="right", va="top",
+                        transform=ax.transAxes, fontsize=7, color="0.35")
+        else:
+            ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
         if sw.n_units > 1:
             ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
         ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9)
@@ -91,8 +108,14 @@ def plot_sweep(sw, figures=None):
             ax.set_xscale("log")
     for ax in axes.ravel()[n:]:
         ax.set_visible(False)
-    for ax in axes[-1]:
-        ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
+    # the lowest panel of each column carries the swept value's ticks and label (a hidden
+    # panel under one would otherwise leave that column without them)
+    for c in range(cols):
+        shown = [r for r in range(rows) if r * cols + c < n]
+        if shown:
+            ax = axes[shown[-1], c]
+            ax.tick_params(labelbottom=True)
+            ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
     who = sw.units_text
     fig.suptitle(f"{sw.title}: sweep of {sw.field} with {who}"
                  + (" (line: median, band: min..max)" if sw.n_units > 1 else ""), fontsize=10)

@@ -57,9 +57,15 @@ def plot_output(run, axes=None):
     tubes = res.fitted
     f = res.figures
     se0 = res.stage.kind == "single-ended"
-    ncol = 2 + (sweep is not None) + (not se0)
-    if axes is None:
-        fig, axes = plt.subplots(1, ncol, figsize=(6.2 * ncol, 5.6))
+    n = 2 + (sweep is not None) + (not se0)
+    own = axes is None
+    if own:
+        # four panels in two rows (each stays wide enough to read); legends sit under their
+        # panel, where they cover no curve and no label
+        rows, cols = (2, 2) if n == 4 else (1, n)
+        fig, axes = plt.subplots(rows, cols, figsize=(6.6 * cols, 6.0 * rows), layout="constrained", squeeze=False)
+        axes = list(axes.ravel())
+        fig.get_layout_engine().set(rect=(0, 0.025, 1, 0.975))
     fig = axes[0].figure
     ax = axes[0]
     se = st.kind == "single-ended"
@@ -107,7 +113,7 @@ def plot_output(run, axes=None):
     ax.set_ylabel("plate current Ia [mA]")
     ax.set_title(f"{st.kind} output stage: B+ {st.b_plus:g} V, {res.tubes[0]}"
                  + ("" if se else f" / {res.tubes[1]}"), fontsize=10)
-    ax.legend(fontsize=7, loc="upper right")
+    _legend_below(ax)
     ax.grid(alpha=0.3)
 
     ax = axes[1]
@@ -131,7 +137,7 @@ def plot_output(run, axes=None):
     ax.set_xlabel("output power [W]")
     ax.set_ylabel("distortion [% of fundamental]")
     ax.set_title("harmonics against output power (quasi-static, mid-band)", fontsize=10)
-    ax.legend(fontsize=7, loc="upper left")
+    _legend_below(ax)
     ax.grid(alpha=0.3, which="both")
 
     if not se:
@@ -141,11 +147,13 @@ def plot_output(run, axes=None):
         v = np.linspace(-vmax, vmax, 201)
         drives = np.linspace(-f["vin_max"], f["vin_max"], 9)
         ic = composite_characteristic(st, *tubes, drives=drives, v=v)
-        cmap = plt.get_cmap("coolwarm")
+        # (a dark-ended map: the middle curves of a diverging one are too pale to read)
+        cmap = plt.get_cmap("viridis")
         for i, (e, row) in enumerate(zip(drives, ic)):
-            ax.plot(v, 1e3 * row, color=cmap(i / (len(drives) - 1)), lw=1.0)
+            c = cmap(0.9 * i / (len(drives) - 1))
+            ax.plot(v, 1e3 * row, color=c, lw=1.0)
             ax.annotate(f"{e:+.0f} V", (v[-1], 1e3 * row[-1]), xytext=(2, 0), textcoords="offset points",
-                        fontsize=7, va="center", color=cmap(i / (len(drives) - 1)), annotation_clip=False)
+                        fontsize=7, va="center", color=c, annotation_clip=False)
         imb = f["imbalance"]
         ax.plot(v, 1e3 * (v / q + imb), color="k", lw=1.6, label=f"load line Raa/4 = {q:.4g} ohm")
         ax.plot(w["v_load"] / 2.0, 1e3 * (w["A.ia"] - w["B.ia"]), color="tab:red", lw=4.0, alpha=0.35,
@@ -153,7 +161,7 @@ def plot_output(run, axes=None):
         ax.set_xlabel("half-primary voltage v [V] (plate A at B+ - v)")
         ax.set_ylabel("composite current IA - IB [mA]")
         ax.set_title("composite characteristic (grid drive per curve)", fontsize=10)
-        ax.legend(fontsize=7, loc="upper left")
+        _legend_below(ax)
         ax.grid(alpha=0.3)
     if sweep is not None:
         ax = axes[-1]
@@ -161,7 +169,8 @@ def plot_output(run, axes=None):
         ok = np.isfinite(sweep.p_thd)
         if np.any(ok):
             ax.plot(sweep.load[ok], sweep.p_thd[ok], "-s", color="tab:purple", ms=4,
-                    label=f"output at {100 * sweep.thd_target:g} % THD [W]")
+                    label=f"output at {100 * sweep.thd_target:g} % THD [W]"
+                    + ("" if ok.all() else " (missing: THD stays below it)"))
         ax.set_xlabel("reflected load [ohm]")
         ax.set_ylabel("output power [W]")
         ax2 = ax.twinx()
@@ -171,12 +180,21 @@ def plot_output(run, axes=None):
         ax2.set_ylabel("THD [%]")
         lines = ax.get_legend_handles_labels()
         l2 = ax2.get_legend_handles_labels()
-        ax.legend(lines[0] + l2[0], lines[1] + l2[1], fontsize=7, loc="upper right")
+        _legend_below(ax, lines[0] + l2[0], lines[1] + l2[1])
         ax.set_title("reflected-load sweep", fontsize=10)
         ax.grid(alpha=0.3)
-    fig.text(0.01, 0.005, CAUTION, fontsize=6, color="0.3")
-    fig.tight_layout(rect=(0, 0.02, 1, 1))
+    fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
+    if not own:
+        fig.tight_layout(rect=(0, 0.02, 1, 1))
     return axes
+
+
+def _legend_below(ax, handles=None, labels=None):
+    """The legend under the axes (outside them): it covers no curve, label or grid value."""
+    if handles is None:
+        handles, labels = ax.get_legend_handles_labels()
+    ax.legend(handles, labels, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2,
+              frameon=False)
 
 
 def save_output_plot(run, path) -> Path:

@@ -465,9 +465,16 @@ def test_output_stage_matches_ngspice(key):
     for p, pos in zip(plates, st.positions):
         assert float(op[f"v({p})"][0]) - float(op["v(k)"][0]) == pytest.approx(ours[f"{pos}.va"], rel=1e-3)
     assert -float(op["i(VB)"][0]) == pytest.approx(sum(ours[f"{p}.ia"] for p in st.positions), rel=1e-3)
-    if st.rk is not None and st.bypassed:
+    tran = "tran 1u 3m 0 1u"
+    if st.rk is not None and st.bypassed and not se:
+        # the shared bypass capacitor charges to Rk times the mean current at this level (the
+        # bias shift our solve models): a real 47 uF capacitor, 50 ms for it to settle (its
+        # time constant is about 5 ms), the last period analysed
+        circuit = circuit.replace(f"Ck k 0 {ng.BIG_C!r}", "Ck k 0 47e-6")
+        tran = "tran 2.5u 50m 0 2.5u"
+    elif st.rk is not None and st.bypassed:
         circuit = ng.hold_capacitors(circuit)
-    four = ng.fourier(circuit, "tran 1u 3m 0 1u", 1000.0, "v(sec)", nharm=11)
+    four = ng.fourier(circuit, tran, 1000.0, "v(sec)", nharm=11, timeout=300.0)
     h = np.array([x[2] for x in four["harmonics"]])
     p_ng = h[1] ** 2 / (2 * st.speaker)
     assert _db(p_ng / s.power[0]) / 2 == pytest.approx(0.0, abs=0.5)

@@ -39,16 +39,20 @@ def test_single_ended_sweep_point_equals_the_stage_solved_directly():
             r = solve_output(SingleEndedOutput(b_plus=330.0, load=RL, r_primary=150.0, grid_bias=-61.0, pa_max=40.0),
                              t, thd=0.05)
             f = sw.figures
-            assert f["p_max"][i, u] == r.figures["p_max"]
-            assert f["zout"][i, u] == r.figures["z_out"] and f["damping"][i, u] == r.figures["damping"]
-            assert f["tube.ia"][i, u] == r.op["tube.ia"] and f["tube.pa"][i, u] == r.op["tube.pa"]
+            # the sweep solves all units at once; solve_output defines the figures (1e-6: the
+            # batched path's tolerance, tests/test_output_batch.py)
+            assert f["p_max"][i, u] == pytest.approx(r.figures["p_max"], rel=1e-6)
+            assert f["zout"][i, u] == pytest.approx(r.figures["z_out"], rel=1e-9)
+            assert f["damping"][i, u] == pytest.approx(r.figures["damping"], rel=1e-9)
+            assert f["tube.ia"][i, u] == pytest.approx(r.op["tube.ia"], rel=1e-9)
+            assert f["tube.pa"][i, u] == pytest.approx(r.op["tube.pa"], rel=1e-9)
             p_thd = r.figures["p_thd"]
-            assert (math.isnan(f["p_thd"][i, u]) if p_thd is None else f["p_thd"][i, u] == p_thd)
-            assert f["pa_ratio"][i, u] == max(r.op["tube.pa"], r.figures["pa_full"]["tube"]) / 40.0
+            assert (math.isnan(f["p_thd"][i, u]) if p_thd is None else f["p_thd"][i, u] == pytest.approx(p_thd, rel=1e-6))
+            assert f["pa_ratio"][i, u] == pytest.approx(max(r.op["tube.pa"], r.figures["pa_full"]["tube"]) / 40.0, rel=1e-6)
     # the reflected-load sweep of fitter.stage.output agrees (THD at 1 W on the same power sweep)
     ls = load_sweep(st, TA, loads=loads, thd=0.05, level=1.0)
-    assert np.array_equal(ls.p_max, sw.figures["p_max"][:, 0])
-    assert np.allclose(ls.thd_at, sw.figures["thd"][:, 0], rtol=1e-12)
+    assert np.allclose(ls.p_max, sw.figures["p_max"][:, 0], rtol=1e-6, atol=0)
+    assert np.allclose(ls.thd_at, sw.figures["thd"][:, 0], rtol=1e-6, atol=0)
 
 
 def test_push_pull_sweep_point_equals_the_stage_solved_directly():
@@ -58,10 +62,10 @@ def test_push_pull_sweep_point_equals_the_stage_solved_directly():
         r = solve_output(PushPullOutput(b_plus=450.0, load=5000.0, r_primary=150.0, rk=rk, bypassed=False),
                          TA, TB, thd=0.05)
         for p in ("A", "B"):
-            assert sw.figures[f"{p}.ia"][i, 0] == r.op[f"{p}.ia"]
-        assert sw.figures["imbalance"][i, 0] == r.figures["imbalance"]
-        assert sw.figures["p_max"][i, 0] == r.figures["p_max"]
-        assert sw.figures["thd"][i, 0] == pytest.approx(np.interp(2.0, r.sweep.power, r.sweep.thd), rel=1e-12)
+            assert sw.figures[f"{p}.ia"][i, 0] == pytest.approx(r.op[f"{p}.ia"], rel=1e-9)
+        assert sw.figures["imbalance"][i, 0] == pytest.approx(r.figures["imbalance"], rel=1e-9, abs=1e-12)
+        assert sw.figures["p_max"][i, 0] == pytest.approx(r.figures["p_max"], rel=1e-6)
+        assert sw.figures["thd"][i, 0] == pytest.approx(np.interp(2.0, r.sweep.power, r.sweep.thd), rel=1e-6)
     # more cathode resistance, less idle current (common practice: cathode bias)
     assert sw.figures["A.ia"][1, 0] < sw.figures["A.ia"][0, 0]
 
@@ -101,8 +105,8 @@ def test_cli_sweep_single_ended_over_a_stock(tmp_path):
     assert d["kind"] == "single-ended" and d["field"] == "load" and d["units"] == ["PA", "PB", "PC"]
     direct = [solve_output(SingleEndedOutput(b_plus=330.0, load=2000.0, r_primary=150.0, grid_bias=-61.0), t)
               .figures["p_max"] for t in (TA, TB, TC)]
-    assert d["points"][0]["p_max_w"]["max"] == pytest.approx(max(direct), rel=1e-12)
-    assert d["points"][0]["p_max_w"]["min"] == pytest.approx(min(direct), rel=1e-12)
+    assert d["points"][0]["p_max_w"]["max"] == pytest.approx(max(direct), rel=1e-6)
+    assert d["points"][0]["p_max_w"]["min"] == pytest.approx(min(direct), rel=1e-6)
     res = CliRunner().invoke(main, args + ["--plot", str(png)], catch_exceptions=False)
     assert res.exit_code == 0 and CAUTION in res.output and png.read_bytes()[:4] == b"\x89PNG"
     res = CliRunner().invoke(main, args[:-4] + ["--vary", "ra=1k:2k"])

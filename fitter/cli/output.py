@@ -77,6 +77,8 @@ _STAGE_OPTS = CIRCUIT_OPTS + [
     click.option("--response", is_flag=True,
                  help="Also the frequency response at the secondary (1 Hz to 1 MHz, -3 dB points)."),
     click.option("--response-plot", default=None, help="Save the frequency response (gain, phase) to this PNG."),
+    click.option("--thd-at", default=None,
+                 help="Also THD against frequency at this output power [W] (runs ngspice, if installed)."),
     click.option("--json", "json", is_flag=True, help="Print one JSON object."),
 ]
 
@@ -106,11 +108,16 @@ def _run(kind, o, tubes):
 
     spec = OutputSpec(kind, circuit_fields(o), **tubes, thd=_pct(o["thd"], "--thd"), loads=_loads(o["load_sweep"]),
                       level=value(o["level"], "--level", optional=False), errors=o["errors"],
-                      response=o["response"] or o["response_plot"] is not None)
+                      response=o["response"] or o["response_plot"] is not None,
+                      thd_level=value(o["thd_at"], "--thd-at"))
+    from ..stage.transient import SimulatorError
+
     try:
         run = run_output(spec)
     except StageSolveError as e:
         fail(f"the stage could not be solved: {e}", 2)
+    except SimulatorError as e:
+        fail(f"THD against frequency: {e}", 2)
     except InputError as e:
         fail(message(e))
     plot_written = None

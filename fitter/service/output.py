@@ -64,6 +64,8 @@ class OutputSpec:
     #: also the frequency response (gain and phase at the secondary, 1 Hz .. 1 MHz)
     response: bool = False
     points_per_decade: int = 40
+    #: output power [W] for THD against frequency (ngspice); None: not run
+    thd_level: float | None = None
 
 
 @dataclass
@@ -74,6 +76,12 @@ class OutputRun:
     sweep: LoadSweep | None = None
     #: the :class:`~fitter.stage.frequency.FrequencyResponse`, when asked for
     frequency: object | None = None
+    #: THD against frequency (:class:`~fitter.stage.transient.FrequencyDistortion`), when asked
+    #: for and ngspice is installed
+    distortion: object | None = None
+    #: asked for but not run (ngspice missing): one line each
+    notes: list = field(default_factory=list)
+    thd_asked: bool = False
 
     def to_dict(self) -> dict:
         d = self.result.to_dict()
@@ -83,6 +91,10 @@ class OutputRun:
             fr = self.frequency.to_dict()
             d["frequency_response"] = {k: fr[k] for k in ("output", "midband_gain", "midband_gain_db", "f_low_hz",
                                                           "f_high_hz", "points", "notes")}
+        if self.thd_asked:
+            d["thd_against_frequency"] = None if self.distortion is None else self.distortion.to_dict()
+        if self.notes:
+            d["notes"] = list(self.notes)
         return d
 
     def report(self) -> str:
@@ -98,6 +110,13 @@ class OutputRun:
 
             head = text[: -len(CAUTION)].rstrip("\n") if text.endswith(CAUTION) else text
             text = head + "\n\n" + _response_text(self.frequency) + "\n" + CAUTION
+        if self.distortion is not None or self.notes:
+            from .. import CAUTION
+
+            head = text[: -len(CAUTION)].rstrip("\n") if text.endswith(CAUTION) else text
+            extra = ([self.distortion.report()] if self.distortion is not None else []) + \
+                ["note: " + n for n in self.notes]
+            text = head + "\n\n" + "\n".join(extra) + "\n" + CAUTION
         return text
 
 
@@ -161,4 +180,24 @@ def run_output(spec: OutputSpec) -> OutputRun:
         from ..stage.frequency import response
 
         fr = response(stage, *tubes, points_per_decade=spec.points_per_decade)
-    return OutputRun(res, sweep, fr)
+    run = OutputRun(res, sweep, fr, thd_asked=spec.thd_level is not None)
+    if spec.thd_level is not None:
+        _thd_against_frequency(run, stage, tubes, spec.thd_level)
+    return run
+
+
+def _thd_against_frequency(run: OutputRun, stage, tubes, level):
+    """THD against frequency at ``level`` [W] into ``run`` (ngspice); without ngspice a note."""
+    from ..stage import StageInputError
+    from ..stage.transient import SimulatorMissing, output_thd_against_frequency
+
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not (math.isfinite(level) and level > 0):
+        raise SpecError(f"must be a positive output power in watts, got {level!r}", field="thd_level")
+    try:
+        run.distortion = output_thd_against_frequency(stage, *tubes, power=float(level))
+    except SimulatorMissing as e:
+        run.notes.append(str(e))
+    except StageInputError as e:
+        if e.field != "power":
+            raise
+        raise SpecError(e.message, field="thd_level") from None

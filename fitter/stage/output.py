@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field, replace
+from functools import lru_cache
 
 import numpy as np
 
@@ -435,7 +436,7 @@ def _idle(stage, banks) -> dict:
     return op
 
 
-def _waveforms(stage, banks, op, vin, guide=None) -> dict:
+def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None) -> dict:
     """Quasi-static response to the grid signal ``vin`` (any shape; push-pull: +vin on grid A,
     -vin on grid B).  Returns arrays: ``v_load`` (voltage across the reflected load [V],
     positive when the plate (A) swings down), per tube ``.ia``, ``.va``, ``.vgk``."""
@@ -457,24 +458,92 @@ def _waveforms(stage, banks, op, vin, guide=None) -> dict:
         return {"v_load": RL * (i - i0), "tube.ia": i, "tube.va": plate - vk, "tube.vgk": vg + vin - vk}
     d0 = op["A.ia"] - op["B.ia"]
     hold = stage.rk is None or stage.bypassed
-    if guide is None:
+    if x0 is not None:
+        pass  # (push-pull: IA, IB, v, vk of a solve nearby)
+    elif guide is None:
         x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
     else:
         # start from the transfer already solved on a grid of drives: a step or two from the answer
         xg, wg = guide
         x0 = (np.interp(vin, xg, wg["A.ia"]), np.interp(vin, xg, wg["B.ia"]), np.interp(vin, xg, wg["v_load"]) / 2.0,
               np.interp(vin, xg, vg + xg - wg["A.vgk"]))
-    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=op["vk"] if hold else None, d0=d0, x0=x0)
+    if hold and vk is None:
+        vk = op["vk"]
+    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=vk if hold else None, d0=d0, x0=x0)
     r = stage.r_primary / 2.0
     return {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
             "A.va": stage.b_plus - r * ia - v - vk, "B.va": stage.b_plus - r * ib + v - vk,
-            "A.vgk": vg + vin - vk, "B.vgk": vg - vin - vk}
+            "A.vgk": vg + vin - vk, "B.vgk": vg - vin - vk, "vk": np.broadcast_to(vk, np.shape(v))}
+
+
+def _shifts(stage) -> bool:
+    """The bias follows the drive: a push-pull's shared, bypassed cathode resistor charges its
+    capacitor to Rk times the mean of both currents over a period (class AB draws more)."""
+    return stage.kind == "push-pull" and stage.rk is not None and stage.bypassed
+
+
+def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=None):
+    """Cathode voltage of a :func:`_shifts` stage at each drive amplitude (a sine of
+    ``n_samples`` a period, each distinct value solved once): see :func:`_cathode_rows`.
+    Returns (vk (len(amps),), waveforms of the distinct samples, (distinct, where) of
+    :func:`_half_period`)."""
+    amps = np.atleast_1d(np.asarray(amps, float))
+    theta = 2 * np.pi * np.arange(n_samples) / n_samples
+    distinct, where = _half_period(n_samples)
+    weight = np.bincount(where, minlength=distinct.size) / n_samples
+    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+    vk, w = _cathode_rows(stage, banks, op, vin, weight, guide, vk0)
+    return vk, w, (distinct, where)
+
+
+def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None):
+    """The shared bypassed cathode's voltage for each row of ``vin`` (a period's samples,
+    ``weight`` each sample's share of the period): the root of G(vk) = vk - Rk mean(IA + IB)
+    with the cathode held at vk.  G rises with slope 1 + Rk mean(-d(IA + IB)/dvk) > 1 (the
+    currents fall as the cathode rises), taken at each solve for a Newton step: three or four
+    solves.  Returns (vk (rows,), the waveforms there)."""
+    rk = stage._rk
+    slope = 1.0
+    for b, p in zip(banks, stage.positions):
+        gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
+        slope += rk * float(gva + gvg)
+    vk = np.full(vin.shape[0], float(op["vk"] if vk0 is None else vk0))
+    r, q = stage.r_primary / 2.0, stage.reflected_load / 4.0
+    tol = 1e-10 * stage.b_plus
+    x0 = None
+    for _ in range(40):
+        w = _waveforms(stage, banks, op, vin, guide, vk=vk[:, None], x0=x0)
+        # the next solve starts here (vk moves little): two or three Newton steps
+        x0 = (w["A.ia"], w["B.ia"], w["v_load"] / 2.0, w["vk"])
+        G = vk - rk * ((w["A.ia"] + w["B.ia"]) @ weight)
+        if np.all(np.abs(G) <= tol):
+            return vk, w
+        # Newton: dG/dvk from the solved circuit's linearisation at each sample (the tube
+        # equations and the transformer's ampere-turn balance with the cathode held)
+        _, gaa, gga = banks[0].current_and_gradient(w["A.va"], w["A.vgk"])
+        _, gab, ggb = banks[1].current_and_gradient(w["B.va"], w["B.vgk"])
+        ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+        sa, sb = gaa + gga, gab + ggb
+        dv = q * (sb / cb - sa / ca) / (1.0 + q * (gaa / ca + gab / cb))
+        di = (-gaa * dv - sa) / ca + (gab * dv - sb) / cb
+        s_ = 1.0 - rk * (di @ weight)
+        s_ = np.where(np.isfinite(s_) & (s_ >= 1.0), s_, slope)
+        vk = vk - G / s_
+    raise StageSolveError("the shared cathode resistor's voltage under drive did not converge")
 
 
 def waveforms(stage, *triodes, vin) -> dict:
-    """Public form of the quasi-static response (solves the operating point first)."""
+    """Public form of the quasi-static response (solves the operating point first).  For a
+    push-pull on a shared bypassed cathode resistor a 1-D ``vin`` is taken as one period, and
+    the cathode sits at Rk times the mean current over it (the bias shift)."""
     banks = _banks(stage, triodes)
-    return _waveforms(stage, banks, _idle(stage, banks), vin)
+    op = _idle(stage, banks)
+    vin = np.asarray(vin, float)
+    if _shifts(stage) and vin.ndim == 1 and vin.size > 1:
+        # one period: the shared bypass capacitor at Rk times its mean current
+        w = _cathode_rows(stage, banks, op, vin[None, :], np.full(vin.size, 1.0 / vin.size))[1]
+        return {k: np.asarray(v)[0] for k, v in w.items()}
+    return _waveforms(stage, banks, op, vin)
 
 
 def composite_characteristic(stage, *triodes, drives, v):
@@ -511,7 +580,10 @@ def _margins(stage, banks, op, amps, keep=None):
     caller's solves."""
     amps = np.asarray(amps, float)
     guide = None if keep is None else keep.get("guide")
-    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide)
+    vk = None
+    if _shifts(stage):
+        vk = _cathode_at(stage, banks, op, amps.ravel(), guide)[0].reshape(amps.shape)[..., None]
+    w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide, vk=vk)
     if keep is not None and guide is None and stage.kind == "push-pull" and amps.ndim == 1:
         order = np.argsort(amps)
         keep["guide"] = (np.concatenate([-amps[order][::-1], amps[order]]),
@@ -591,21 +663,47 @@ def drive_limits(stage, *triodes) -> dict:
 def _drive_limits(stage, banks, op, keep=None):
     vgk0 = max(op[f"{p}.vgk"] for p in stage.positions)
     head = stage.grid_onset - vgk0
-    fixed_cathode = stage.rk is None or stage.bypassed
+    fixed_cathode = (stage.rk is None or stage.bypassed) and not _shifts(stage)
     if fixed_cathode:
         # the cathode holds its DC voltage: the grid reaches the onset when the drive
         # equals the headroom, exactly
         grid = head
     else:
         # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
-        # push-pull's cathode moves only with the rectified sum of the currents
+        # push-pull's cathode moves only with the rectified sum of the currents (bypassed:
+        # with its mean over a period, each amplitude's found by _cathode_at, so fewer points)
         hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
+        if _shifts(stage):
+            grid = _grid_limit_shifting(stage, banks, op, head)
+            cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid, n=16, passes=3)
+            return {"grid": grid, "cutoff": cut}
         grid, cut = _two_crossings(lambda a: _margins(stage, banks, op, a, keep), hi)
         if cut is not None and grid is not None and cut >= grid:
             cut = None
         return {"grid": grid, "cutoff": cut}
     cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid)
     return {"grid": grid, "cutoff": cut}
+
+
+def _grid_limit_shifting(stage, banks, op, head):
+    """The drive where a grid reaches the onset when the shared bypassed cathode follows the
+    mean current: the crest reaches it at a = onset - bias + vk(a), a fixed point (vk grows
+    slowly with a), found by secant steps from the held-cathode answer ``head``."""
+    last = [None]
+
+    def h(a):
+        vk = float(_cathode_at(stage, banks, op, [a], vk0=last[0])[0][0])
+        last[0] = vk
+        return a - (stage.grid_onset - stage._vg + vk)
+
+    a0, h0 = head, h(head)
+    a1 = head - h0
+    for _ in range(30):
+        h1 = h(a1)
+        if abs(h1) <= 1e-10 * stage.b_plus:
+            return float(a1)
+        a0, h0, a1 = a1, h1, a1 - h1 * (a1 - a0) / (h1 - h0) if h1 != h0 else a1 - h1
+    raise StageSolveError("the grid-current limit with the shared cathode's bias shift did not converge")
 
 
 # ---------------------------------------------------------------------------
@@ -656,11 +754,16 @@ def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES, guide=None):
     solved once (about half of them) and copied.  ``guide`` (drives, waveforms): the
     push-pull's transfer on a grid of drives covering ``amps``, to start the solve from."""
     amps = np.atleast_1d(np.asarray(amps, float))
-    theta = 2 * np.pi * np.arange(n_samples) / n_samples
-    distinct, where = _half_period(n_samples)
-    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
-    w = _waveforms(stage, banks, op, vin, guide)
-    w = {key: np.broadcast_to(val, vin.shape)[:, where] for key, val in w.items()}
+    if _shifts(stage):
+        _, w, (distinct, where) = _cathode_at(stage, banks, op, amps, guide, n_samples)
+        shape = (amps.size, distinct.size)
+    else:
+        theta = 2 * np.pi * np.arange(n_samples) / n_samples
+        distinct, where = _half_period(n_samples)
+        vin = amps[:, None] * np.sin(theta[distinct])[None, :]
+        w = _waveforms(stage, banks, op, vin, guide)
+        shape = vin.shape
+    w = {key: np.broadcast_to(val, shape)[:, where] for key, val in w.items()}
     h = harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
     return w, h
 
@@ -703,8 +806,9 @@ def _level_at_thd(stage, banks, op, sweep, target, guide=None):
 
 #: what the figures assume (reports and JSON state it)
 ASSUMPTIONS = ("quasi-static mid-band (the transformer is ideal, its magnetising current holds the idle "
-               "current; bypass capacitors hold their charge, so a bypassed cathode resistor's bias shift "
-               "in class AB is not modelled); no grid current")
+               "current; a bypass capacitor holds its charge over a period: a push-pull's shared one at Rk times "
+               "the mean current at each level, so the bias shift under drive is modelled, a single-ended one at "
+               "its idle voltage); no grid current")
 
 
 @dataclass
@@ -760,6 +864,9 @@ class OutputResult:
             out["imbalance_ma"] = 1e3 * f["imbalance"]
             out["class_a"] = {"vin_peak_v": f["vin_cut"], "power_w": f["p_class_a"],
                               "class": f["class"], "crossover_gm_ratio": f["gm_dip"]}
+            if "vk_full" in f:
+                out["cathode_full_v"] = f["vk_full"]
+                out["bias_shift_v"] = f["bias_shift"]
         return out
 
     def report(self) -> str:
@@ -797,6 +904,10 @@ class OutputResult:
                 L.append(f"  class AB: class A up to {f['p_class_a']:.3g} W (grid drive {f['vin_cut']:.3g} V)")
             L.append(f"  crossover: the composite transconductance at idle is {100 * f['gm_dip']:.0f} % of its "
                      f"largest over the swing")
+            if "vk_full" in f:
+                L.append(f"  shared cathode: {self.op['vk']:.2f} V at idle, {f['vk_full']:.2f} V "
+                         f"{'(the bypass capacitor) ' if st.bypassed else '(mean) '}at full output: the bias "
+                         f"shifts by {f['bias_shift']:+.2f} V")
         L.append(f"  output impedance at the secondary {f['z_out']:.3g} ohm, damping factor {f['damping']:.3g}")
         if "errors" in f:
             e = f["errors"]
@@ -914,6 +1025,11 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
     figures["damping"] = stage.speaker / figures["z_out"]
     if not se:
         figures["imbalance"] = op["A.ia"] - op["B.ia"]
+        if stage.rk is not None:
+            # the shared cathode at full output: its mean over the period (bypassed: the
+            # capacitor's voltage, Rk times the mean of both currents)
+            figures["vk_full"] = float(np.mean(w["vk"][-1]))
+            figures["bias_shift"] = figures["vk_full"] - op["vk"]
         # crossover: the composite transconductance (slope of the load voltage against the
         # grid drive) at the idle point against its largest over the swing; a cold bias makes
         # the middle flat (a notch), 1.0 means no dip
@@ -1036,3 +1152,354 @@ def load_sweep(stage, *triodes, loads, thd: float = 0.05, level: float = 1.0) ->
         rows.append((res.figures["p_max"], res.figures["thd_max"], math.nan if p_thd is None else p_thd, thd_at))
     a = np.array(rows)
     return LoadSweep(loads, a[:, 0], a[:, 1], a[:, 2], a[:, 3], float(level), float(thd))
+
+
+# ---------------------------------------------------------------------------
+# Many units at once (design sweeps over a stock)
+# ---------------------------------------------------------------------------
+#
+# :func:`solve_output` defines every figure; :func:`_solve_many` gives the figures a design
+# sweep needs for many cases (tuples of tubes) of one stage in a few vectorised passes, and
+# a test compares the two to 1e-6 relative.  How: the idle point and the drive limits are
+# the same equations solved for all units at once (the crest scan as three 16-point passes
+# instead of two of 64: the same 1/4096 bracket before the linear interpolation); the
+# quasi-static transfer has no memory, so each unit's waveform keys are sampled once at
+# Chebyshev nodes over its drive range and every period of the power sweep is that series
+# evaluated at r sin(theta) (one matrix product for all units and levels).  A unit whose
+# series does not fall to the round-off floor (its transfer is not smooth enough for the
+# nodes) is solved by :func:`solve_output` instead, as is a group whose batched solve fails.
+
+#: Chebyshev nodes of the transfer, tried in turn until the series' last coefficients fall
+#: under _CHEB_TAIL of its largest (300B-like units, measured: 32 single-ended, 64 to 128
+#: push-pull, 128 to 192 with a shared unbypassed cathode resistor).  At 1e-9 the figures
+#: agreed with solve_output's to 3e-8 relative or better over the bench's stages
+_CHEB = (32, 64, 128, 192)
+_CHEB_TAIL = 1e-9
+
+
+def _flat_waveforms(stage, banks, op, vin):
+    """:func:`_waveforms` for n units with k inputs each: ``banks`` of n units, ``op`` of
+    (n,) arrays, ``vin`` (n, k); returns (n, k) arrays."""
+    n, k = vin.shape
+    bk = [b.repeat(k) for b in banks]
+    opk = {key: np.repeat(np.asarray(v, float), k) for key, v in op.items()}
+    w = _waveforms(stage, bk, opk, vin.ravel())
+    return {key: np.broadcast_to(v, (n * k,)).reshape(n, k) for key, v in w.items()}
+
+
+def _idle_many(stage, banks, n):
+    rk, vg = stage._rk, stage._vg
+    if isinstance(stage, SingleEndedOutput):
+        i, *_ = _solve_tube(banks[0], np.full(n, float(stage.b_plus)), stage.r_primary + rk, vg, rk)
+        va = stage.b_plus - (stage.r_primary + rk) * i
+        return {"vk": rk * i, "tube.va": va, "tube.vgk": vg - rk * i, "tube.ia": i, "tube.pa": va * i}
+    g = np.full(n, vg)
+    _, ia, ib, vk = _pp_solve(stage, banks, g, g, vk=0.0 if stage.rk is None else None)
+    vk = np.broadcast_to(np.asarray(vk, float), (n,)).copy()
+    op = {"vk": vk}
+    for p, i in (("A", ia), ("B", ib)):
+        va = stage.b_plus - stage.r_primary / 2.0 * i - vk
+        op.update({f"{p}.va": va, f"{p}.vgk": vg - vk, f"{p}.ia": i, f"{p}.pa": va * i})
+    return op
+
+
+def _margins_many(stage, banks, op, amps):
+    """(grid margin, cut-off margin), each (n, k), at the crests +-amps (n, k)."""
+    k = amps.shape[1]
+    w = _flat_waveforms(stage, banks, op, np.concatenate([amps, -amps], axis=1))
+    grid = np.min([stage.grid_onset - np.maximum(w[f"{p}.vgk"][:, :k], w[f"{p}.vgk"][:, k:])
+                   for p in stage.positions], axis=0)
+    cut = np.min([np.minimum(w[f"{p}.ia"][:, :k], w[f"{p}.ia"][:, k:]) - CUTOFF_FRACTION * op[f"{p}.ia"][:, None]
+                  for p in stage.positions], axis=0)
+    return grid, cut
+
+
+def _crossings_many(fun, hi, which, n=16, passes=3):
+    """For each margin index in ``which``: the smallest a in (0, hi] (per unit) where that
+    margin of ``fun(a)`` is <= 0, NaN where it stays positive (:func:`_first_crossing`
+    vectorised over units, with ``passes`` scans of ``n`` points)."""
+    N = hi.size
+    rows = np.arange(N)
+    a = hi[:, None] * np.linspace(0.0, 1.0, n + 1)[None, :]
+    scan = fun(np.ascontiguousarray(a[:, 1:]))
+    out = []
+    for j in which:
+        m = np.concatenate([np.full((N, 1), np.inf), scan[j]], axis=1)
+        bad = m <= 0
+        found = bad.any(axis=1)
+        kk = np.where(found, np.argmax(bad, axis=1), 1)
+        a_lo, a_up, m_lo, m_up = a[rows, kk - 1], a[rows, kk], m[rows, kk - 1], m[rows, kk]
+        for _ in range(passes - 1):
+            g = a_lo[:, None] + (a_up - a_lo)[:, None] * np.linspace(0.0, 1.0, n + 1)[None, :]
+            mm = np.empty_like(g)
+            mm[:, 0], mm[:, -1] = m_lo, m_up
+            mm[:, 1:-1] = fun(np.ascontiguousarray(g[:, 1:-1]))[j]
+            bad = mm <= 0
+            bad[:, -1] |= ~found  # a unit without a crossing keeps a dummy bracket
+            kk = np.argmax(bad, axis=1)
+            kk = np.maximum(kk, 1)
+            a_lo, a_up, m_lo, m_up = g[rows, kk - 1], g[rows, kk], mm[rows, kk - 1], mm[rows, kk]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            root = np.where(np.isfinite(m_lo), a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up), a_lo)
+        out.append(np.where(found, root, np.nan))
+    return out
+
+
+@lru_cache(maxsize=8)
+def _cheb_matrices(K, levels, n_samples):
+    """(C, tab, E_full): C maps node values to the Chebyshev coefficients; tab[l, m, k] is
+    the signed amplitude of harmonic m + 1 (1..10) of T_k(r_l cos theta) at the sweep's
+    levels r_l, from ``n_samples`` samples as :func:`harmonic_amplitudes` takes them (the
+    sine drive's samples are these shifted by a quarter period, which changes each
+    harmonic's phase by a factor common to all k, not its amplitude); E_full evaluates a
+    series at sin(theta_j), the largest level's samples."""
+    kk = np.arange(K)
+    C = np.cos(np.pi * kk[:, None] * (np.arange(K) + 0.5)[None, :] / K) * (2.0 / K)
+    C[0] *= 0.5
+    theta = 2 * np.pi * np.arange(n_samples) / n_samples
+    r = np.linspace(1.0 / levels, 1.0, levels)
+    u = r[:, None] * np.cos(theta)[None, :]  # (L, S)
+    Tk = np.cos(kk[:, None, None] * np.arccos(np.clip(u, -1.0, 1.0))[None])  # (K, L, S)
+    m = np.arange(1, N_HARMONICS + 1)
+    tab = np.einsum("kls,ms->lmk", Tk, np.cos(m[:, None] * theta[None, :]) * (2.0 / n_samples))
+    E_full = np.cos(kk[None, :] * np.arccos(np.clip(np.sin(theta), -1.0, 1.0))[:, None])
+    return C, tab, E_full
+
+
+def _cheb_at(c, r, s):
+    """Series ``c`` (n, K) at r sin(theta): r (n,), s (S,) -> (n, S) (Clenshaw's recurrence)."""
+    u = r[:, None] * s[None, :]
+    b1 = np.zeros_like(u)
+    b2 = np.zeros_like(u)
+    for k in range(c.shape[1] - 1, 0, -1):
+        b1, b2 = 2.0 * u * b1 - b2 + c[:, k:k + 1], b1
+    return u * b1 - b2 + c[:, :1]
+
+
+def _thd_of(v, RL):
+    """(power [W], THD) of periods ``v`` (..., S) of the voltage across the load."""
+    h = harmonic_amplitudes(v, N_HARMONICS)[..., 1:]
+    h1 = h[..., 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        thd = np.sqrt(np.sum(h[..., 1:] ** 2, axis=-1)) / h1
+    return h1 ** 2 / (2.0 * RL), thd
+
+
+def _many_keys(stage):
+    keys = [f"{p}.{q}" for p in stage.positions for q in ("ia", "va", "pa")]
+    keys += ["p_max", "p_thd", "thd", "zout", "damping", "pa_ratio"]
+    if stage.kind == "push-pull":
+        keys.append("imbalance")
+    return keys
+
+
+def _from_result(stage, r, level):
+    """The sweep's figures of one :func:`solve_output` result."""
+    f = r.figures
+    out = {}
+    for p in stage.positions:
+        for q in ("ia", "va", "pa"):
+            out[f"{p}.{q}"] = r.op[f"{p}.{q}"]
+    out["p_max"] = f["p_max"]
+    out["p_thd"] = math.nan if f["p_thd"] is None else f["p_thd"]
+    s = r.sweep
+    out["thd"] = (float(np.interp(level, s.power, s.thd))
+                  if level is not None and s.power[0] <= level <= s.power[-1] else math.nan)
+    out["zout"] = f["z_out"]
+    out["damping"] = f["damping"]
+    out["pa_ratio"] = (max(max(r.op[f"{p}.pa"], f["pa_full"][p]) for p in stage.positions) / stage.pa_max
+                       if stage.pa_max is not None else math.nan)
+    if stage.kind == "push-pull":
+        out["imbalance"] = f["imbalance"]
+    return out
+
+
+def _solve_many(stage, cases, thd=0.05, level=None, levels=N_LEVELS):
+    """The design sweep's figures for every case (a tuple of tubes) of one stage: dict
+    name -> (U,) [SI] (each tube's ``ia``, ``va``, ``pa``; ``p_max``, ``p_thd``, ``thd`` at
+    ``level`` [W], ``zout``, ``damping``, ``pa_ratio``, ``imbalance``), NaN where
+    :func:`solve_output` raises :class:`StageSolveError`; and the count of such cases."""
+    from .solver import _group_key
+
+    U = len(cases)
+    out = {k: np.full(U, np.nan) for k in _many_keys(stage)}
+    failed = np.zeros(U, bool)
+    groups: dict = {}
+    for i, c in enumerate(cases):
+        groups.setdefault(tuple(_group_key(t) for t in c), []).append(i)
+    for idx in groups.values():
+        idx = np.asarray(idx)
+        try:
+            got, bad, alone = _many_group(stage, [cases[i] for i in idx], thd, level, levels)
+        except StageSolveError:
+            got, bad, alone = None, np.zeros(len(idx), bool), np.ones(len(idx), bool)
+        if got is not None:
+            for k, v in got.items():
+                out[k][idx] = v
+        failed[idx[bad]] = True
+        for j in np.nonzero(alone)[0]:
+            u = idx[j]
+            try:
+                r = solve_output(stage, *cases[u], thd=thd, levels=levels)
+            except StageSolveError:
+                failed[u] = True
+                for k in out:
+                    out[k][u] = math.nan
+                continue
+            for k, v in _from_result(stage, r, level).items():
+                out[k][u] = v
+    return out, int(failed.sum())
+
+
+def _many_group(stage, cases, thd, level, levels):
+    """:func:`_solve_many` for cases of one group (same models and grid-current parameters):
+    (figures (n,), failed (n,), to solve one by one (n,))."""
+    n0 = len(cases)
+    if _shifts(stage):
+        # the cathode follows each level's mean current: no single transfer to sample, so
+        # each case is solved by solve_output
+        return ({k: np.full(n0, np.nan) for k in _many_keys(stage)}, np.zeros(n0, bool), np.ones(n0, bool))
+    se = stage.kind == "single-ended"
+    npos = len(stage.positions)
+    banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
+    op = _idle_many(stage, banks, n0)
+    failed = np.zeros(n0, bool)
+    alone = np.zeros(n0, bool)
+    failed |= np.min([op[f"{p}.ia"] for p in stage.positions], axis=0) <= 1e-7
+    vgk0 = np.max([op[f"{p}.vgk"] for p in stage.positions], axis=0)
+    head = stage.grid_onset - vgk0
+    fixed_cathode = stage.rk is None or stage.bypassed
+    if fixed_cathode:
+        failed |= ~(head > 1e-9 * stage.b_plus)
+    keep = np.nonzero(~failed)[0]
+    figs = {k: np.full(n0, np.nan) for k in _many_keys(stage)}
+    if keep.size == 0:
+        return figs, failed, alone
+
+    def sub(ix):
+        return ([_Bank.of([cases[i][j] for i in ix]) for j in range(npos)],
+                {k: np.asarray(v, float)[ix] for k, v in op.items()})
+
+    banks, opk = sub(keep)
+    h = head[keep]
+    fun = lambda a: _margins_many(stage, banks, opk, a)  # noqa: E731
+    # the drive limit (the push-pull's end of class A is no figure of the sweep's, and the
+    # cut-off margin is only searched where it can end the swing)
+    if fixed_cathode:
+        vin_max = np.fmin(h, _crossings_many(fun, h, [1])[0]) if se else h
+    elif se:
+        grid, cut = _crossings_many(fun, 4.0 * h + 1.0, [0, 1])
+        vin_max = np.fmin(grid, cut)
+    else:
+        vin_max = _crossings_many(fun, 2.0 * h + 1.0, [0])[0]
+    bad = ~(vin_max > 1e-9 * stage.b_plus)
+    if bad.any():
+        failed[keep[bad]] = True
+        keep = keep[~bad]
+        if keep.size == 0:
+            return figs, failed, alone
+        banks, opk = sub(keep)
+        vin_max = vin_max[~bad]
+    # the transfer at Chebyshev nodes: few for a smooth one (single-ended), more where a
+    # tube's cut-off bends it (class AB, a shared unbypassed cathode resistor)
+    names = ["v_load"] + ([f"{p}.{q}" for p in stage.positions for q in ("ia", "va")]
+                          if stage.pa_max is not None else [])
+    coef = {}
+    top = 0
+    todo = np.arange(keep.size)
+    for K in _CHEB[0 if se else 1:]:  # a push-pull's transfer is never that smooth
+        C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
+        x = np.cos(np.pi * (np.arange(K) + 0.5) / K)
+        bk, ok_ = sub(keep[todo])
+        w = _flat_waveforms(stage, bk, ok_, vin_max[todo, None] * x[None, :])
+        # einsum, not BLAS: these products are small, and BLAS threads on a busy machine
+        # cost many times the arithmetic (measured: 80 ms against 4 ms)
+        cf = {k: np.einsum("nj,kj->nk", w[k], C) for k in names}
+        c = cf["v_load"]
+        tail = np.max(np.abs(c[:, -4:]), axis=1) / np.max(np.abs(c), axis=1)
+        done = tail <= _CHEB_TAIL
+        if done.any():
+            top = K
+        for k in names:
+            coef.setdefault(k, np.zeros((keep.size, _CHEB[-1])))[todo[done], :K] = cf[k][done]
+        todo = todo[~done]
+        if todo.size == 0:
+            break
+    # a transfer the series cannot follow is solved one by one
+    smooth = np.ones(keep.size, bool)
+    smooth[todo] = False
+    alone[keep[todo]] = True
+    if not top:
+        return figs, failed, alone
+    n = keep.size
+    coef = {k: v[:, :top] for k, v in coef.items()}
+    C, tab, E_full = _cheb_matrices(top, levels, N_SAMPLES)
+    s = E_full[:, 1]  # T_1(sin theta)
+    c = coef["v_load"]
+    RL = stage.reflected_load
+    h = np.abs(np.einsum("lmk,nk->nlm", tab, c))  # H1..H10 at every level
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.sqrt(np.sum(h[:, :, 1:] ** 2, axis=2)) / h[:, :, 0]
+    power = h[:, :, 0] ** 2 / (2.0 * RL)
+    # the drive where THD reaches the target: interpolated, one secant step (as _level_at_thd)
+    over = t >= thd
+    has = over.any(axis=1)
+    k = np.where(has, np.argmax(over, axis=1), 1)
+    rows = np.arange(n)
+    r_l = np.linspace(1.0 / levels, 1.0, levels)
+    lo = np.where(k == 0, 0.0, r_l[np.maximum(k - 1, 0)])
+    tlo = np.where(k == 0, 0.0, t[rows, np.maximum(k - 1, 0)])
+    up, tup = r_l[k], t[rows, k]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rx = lo + (up - lo) * (thd - tlo) / (tup - tlo)
+        rx = np.where(has, rx, 1.0)
+        _, tx = _thd_of(_cheb_at(c, rx, s), RL)
+        below = tx < thd
+        lo, tlo = np.where(below, rx, lo), np.where(below, tx, tlo)
+        up, tup = np.where(below, up, rx), np.where(below, tup, tx)
+        rt = np.where(has, lo + (up - lo) * (thd - tlo) / (tup - tlo), 1.0)
+        p_thd, _ = _thd_of(_cheb_at(c, rt, s), RL)
+    res = {}
+    for p in stage.positions:
+        for q in ("ia", "va", "pa"):
+            res[f"{p}.{q}"] = opk[f"{p}.{q}"]
+    res["p_max"] = power[:, -1]
+    res["p_thd"] = np.where(has, p_thd, np.nan)
+    thd_at = np.full(n, np.nan)
+    if level is not None:
+        for u in range(n):
+            if power[u, 0] <= level <= power[u, -1]:
+                thd_at[u] = np.interp(level, power[u], t[u])
+    res["thd"] = thd_at
+    res["zout"] = _z_out_many(stage, banks, opk)
+    res["damping"] = stage.speaker / res["zout"]
+    if stage.pa_max is not None:
+        pa = []
+        for p in stage.positions:
+            full = np.mean(np.einsum("nk,sk->ns", coef[f"{p}.va"], E_full)
+                           * np.einsum("nk,sk->ns", coef[f"{p}.ia"], E_full), axis=1)
+            pa.append(np.maximum(opk[f"{p}.pa"], full))
+        res["pa_ratio"] = np.max(pa, axis=0) / stage.pa_max
+    if not se:
+        res["imbalance"] = opk["A.ia"] - opk["B.ia"]
+    for key, v in res.items():
+        figs[key][keep] = v
+    for key in figs:
+        figs[key][keep[~smooth]] = np.nan
+    return figs, failed, alone
+
+
+def _z_out_many(stage, banks, op):
+    """:func:`_z_out` for n units (arrays)."""
+    rps = []
+    for b, p in zip(banks, stage.positions):
+        gva, gvg = b.gradient(np.asarray(op[f"{p}.va"], float), np.asarray(op[f"{p}.vgk"], float))
+        with np.errstate(divide="ignore"):
+            rp = np.where(gva > 0, 1.0 / gva, np.inf)
+        if stage.rk is not None and not stage.bypassed and stage.kind == "single-ended":
+            rp = rp + (gvg * rp + 1.0) * stage.rk
+        rps.append(rp)
+    if stage.kind == "single-ended":
+        return (rps[0] + stage.r_primary) / stage.ratio ** 2
+    ra, rb = (r + stage.r_primary / 2.0 for r in rps)
+    return 4.0 * ra * rb / (ra + rb) / stage.ratio ** 2

@@ -476,42 +476,15 @@ def _point(stage, cases, thd_limit, level, slew_vpeak, grid_onset, cutoff_fracti
 
 
 def _output_point(stage, cases, thd_limit, level):
-    """Every figure of an output stage for every case at one stage value (one
-    :func:`fitter.stage.output.solve_output` per case): dict name -> (U,), NaN where the
-    stage cannot be solved with that case (a tube cut off at idle, a grid at the onset)."""
-    from .output import solve_output
-    from .solver import StageSolveError
+    """Every figure of an output stage for every case at one stage value: dict name -> (U,),
+    NaN where the stage cannot be solved with that case (a tube cut off at idle, a grid at
+    the onset).  All cases at once (:func:`fitter.stage.output._solve_many`, which a test
+    compares with one :func:`fitter.stage.output.solve_output` per case)."""
+    from .output import _solve_many
 
-    U = len(cases)
-    keys = [f"{p}.{q}" for p in stage.positions for q in ("ia", "va", "pa")] + ["p_max", "p_thd", "thd", "zout",
-                                                                                 "damping"]
-    if stage.pa_max is not None:
-        keys.append("pa_ratio")
-    if stage.kind == "push-pull":
-        keys.append("imbalance")
-    out = {k: np.full(U, np.nan) for k in keys}
-    failed = 0
-    for u, c in enumerate(cases):
-        try:
-            r = solve_output(stage, *c, thd=thd_limit)
-        except StageSolveError:
-            failed += 1
-            continue
-        f = r.figures
-        for p in stage.positions:
-            for q in ("ia", "va", "pa"):
-                out[f"{p}.{q}"][u] = r.op[f"{p}.{q}"]
-        out["p_max"][u] = f["p_max"]
-        out["p_thd"][u] = math.nan if f["p_thd"] is None else f["p_thd"]
-        s = r.sweep
-        if level is not None and s.power[0] <= level <= s.power[-1]:
-            out["thd"][u] = float(np.interp(level, s.power, s.thd))
-        out["zout"][u] = f["z_out"]
-        out["damping"][u] = f["damping"]
-        if stage.pa_max is not None:
-            out["pa_ratio"][u] = max(max(r.op[f"{p}.pa"], f["pa_full"][p]) for p in stage.positions) / stage.pa_max
-        if stage.kind == "push-pull":
-            out["imbalance"][u] = f["imbalance"]
+    out, failed = _solve_many(stage, cases, thd=thd_limit, level=level)
+    if stage.pa_max is None:
+        out.pop("pa_ratio")
     out["_failed"] = failed
     return out
 
@@ -529,8 +502,8 @@ def component_sweep(stage, field_name: str, values, cases, *, labels=None, log: 
         give each tube's idle current, voltage and dissipation, the largest output
         ``p_max``, the output at ``thd_limit`` ``p_thd``, THD at ``level`` [W], output
         impedance, damping factor, the largest dissipation over the limit (with
-        ``pa_max``) and the DC imbalance (push-pull), each from
-        :func:`fitter.stage.output.solve_output`.
+        ``pa_max``) and the DC imbalance (push-pull), as
+        :func:`fitter.stage.output.solve_output` gives them (computed for all units at once).
     field_name : str
         A numeric field of the stage (see :func:`sweepable_fields`).
     values : array_like

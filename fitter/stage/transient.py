@@ -33,7 +33,8 @@ from .. import CAUTION
 from .circuits import CathodeFollower, CommonCathode, Stack, StageInputError, output_node, stage_kind, stage_title
 from .solver import _check_triodes
 
-__all__ = ["SimulatorMissing", "SimulatorError", "FrequencyDistortion", "thd_against_frequency", "stage_netlist"]
+__all__ = ["SimulatorMissing", "SimulatorError", "FrequencyDistortion", "thd_against_frequency", "stage_netlist",
+           "output_netlist", "output_thd_against_frequency"]
 
 #: ngspice options of the transient runs: each time point's Newton solve well below the
 #: harmonics reported (-80 dB)
@@ -134,6 +135,117 @@ def stage_netlist(stage, triodes, *, source: str, hold: dict | None = None) -> s
     return "\n".join(L) + "\n"
 
 
+#: magnetising inductance of the output transformer's whole primary when the stage gives
+#: none [H]: 60 Mohm at 1 kHz against reflected loads of kilohms, and over a few periods its
+#: current stays at the idle current (the ideal transformer of the quasi-static figures)
+L_MAGNETISING = 1e4
+
+
+def _is_output(stage) -> bool:
+    from .output import PushPullOutput, SingleEndedOutput
+
+    return isinstance(stage, (SingleEndedOutput, PushPullOutput))
+
+
+def output_netlist(stage, triodes, *, amplitude: float, freq: float, hold: dict | None = None) -> str:
+    """A single-ended or push-pull output stage around its tubes' exported subcircuits, the
+    loudspeaker at ``v(out)``; the source(s) a sine of ``amplitude`` [V peak] at ``freq`` [Hz]
+    (push-pull: grid B's in antiphase).
+
+    The output transformer is an ideal transformer made of controlled sources: the secondary
+    voltage is the primary's over n (an E source) and the primary carries the secondary's
+    current over n (an F source); the magnetising inductance (``l_primary``, else
+    :data:`L_MAGNETISING`) lies across the primary and carries the DC, so no DC reaches the
+    secondary.  Why controlled sources rather than coupled inductors: the ratio is exact at
+    every frequency and nothing but the stage's own ``l_primary``, ``l_leak`` and
+    ``c_winding`` shapes the response (coupled inductors need k < 1, which is itself a
+    leakage, and k = 1 makes their inductance matrix singular).  The push-pull's centre tap:
+    half B's voltage equals half A's (an E source), half A carries half B's current plus
+    2/n of the secondary's (F sources), so the ampere-turns balance and only the DC imbalance
+    flows in the magnetising inductance.  The primary's DC resistance is ``r_primary`` (half in
+    each side, push-pull), the leakage inductance ``l_leak`` lies between the plate and the
+    ideal transformer (push-pull: half in each side; behind the controlled sources, on the
+    secondary, ngspice's first time steps failed), the winding capacitance lies across the primary
+    (single-ended plate to AC ground, push-pull plate to plate).  Bias: a fixed grid bias at
+    each grid (through ``rg`` with a coupling capacitor), or the cathode resistor (shared,
+    push-pull).  ``hold`` maps the coupling/bypass capacitors (``CinA``, ``CinB`` or ``Cin``,
+    ``Ck``) to their DC voltage; an ideal bypass (``ck`` None) is held like a real one, and
+    None writes them as 1 F capacitors (the operating point).
+    """
+    from ..export import spice_subcircuit
+
+    caps = dict(cgk=stage.cgk or None, cga=stage.cga or None, cak=stage.cak or None)
+    pp = stage.kind == "push-pull"
+    names = ["PBTUBE1", "PBTUBE2"][:len(triodes)]
+    L = [spice_subcircuit(t, name=n, **caps).rstrip() for t, n in zip(triodes, names)]
+    n = float(stage.ratio)
+    lm = float(stage.l_primary) if stage.l_primary is not None else L_MAGNETISING
+    vg = float(stage._vg)
+    amp, f = float(amplitude), float(freq)
+
+    def cap(name, a, b):
+        L.append(f"{name} {a} {b} 1.0" if hold is None else f"V{name} {a} {b} DC {float(hold[name])!r}")
+
+    def grid(tag, sign):
+        # the source carries the bias as its DC value when there is no coupling capacitor
+        dc = 0.0 if stage.c_in is not None else vg
+        L.append(f"Vin{tag} src{tag} 0 DC {dc!r} SIN({dc!r} {sign * amp!r} {f!r})")
+        L.append(f"Rs{tag} src{tag} in{tag} {float(stage.rs)!r}" if stage.rs > 0 else f"Vrs{tag} src{tag} in{tag} DC 0")
+        if stage.c_in is not None:
+            cap(f"Cin{tag}" if pp else "Cin", f"in{tag}", f"g{tag}")
+        else:
+            L.append(f"Vcin{tag} in{tag} g{tag} DC 0")
+        if stage.rg is not None:
+            L.append(f"Rg{tag} g{tag} nbias {float(stage.rg)!r}")
+
+    L.append(f"Vbias nbias 0 DC {vg!r}")
+    if stage.rk is None:
+        L.append("Vk k 0 DC 0")
+    else:
+        L.append(f"Rk k 0 {float(stage.rk)!r}")
+        if stage.bypassed:
+            cap("Ck", "k", "0")
+    # secondary: E source, a 0 V probe for its current, the loudspeaker (the second 0 V
+    # source is not idle: without it ngspice's step control stalled at 20 kHz in a push-pull
+    # with Miller capacitances, measured; with it the run took 1 s)
+    sec = ["VsS s2 s3 DC 0", "Vsec s3 out DC 0"]
+    sec.append(f"Rspk out 0 {float(stage.speaker)!r}")
+    if not pp:
+        grid("", 1.0)
+        L.append(f"VB bplus 0 DC {float(stage.b_plus)!r}")
+        L.append(f"Rdc bplus ct {float(stage.r_primary)!r}" if stage.r_primary > 0 else "Vdc bplus ct DC 0")
+        # (a zero-volt source between plate and transformer in place of no leakage upset
+        # ngspice's first time steps as the leakage on the secondary did: the plate is then
+        # the transformer's node itself)
+        xp = "xp" if stage.l_leak > 0 else "plate"
+        L += [f"LM ct {xp} {lm!r}", f"ES s2 0 ct {xp} {1.0 / n!r}", f"FS ct {xp} VsS {1.0 / n!r}"]
+        if stage.l_leak > 0:
+            L.append(f"Lleak xp plate {float(stage.l_leak)!r}")
+        L += sec
+        if stage.c_winding > 0:
+            L.append(f"Cw plate 0 {float(stage.c_winding)!r}")
+        L.append(f"X1 plate g k {names[0]}")
+    else:
+        grid("A", 1.0)
+        grid("B", -1.0)
+        r = float(stage.r_primary) / 2.0
+        L.append(f"VB ct 0 DC {float(stage.b_plus)!r}")
+        L += [f"LM ct xa {lm / 4.0!r}", "FA ct xa VsB 1", f"FS ct xa VsS {2.0 / n!r}",
+              "EB xb2 ct ct xa 1", "VsB xb2 xb DC 0", f"ES s2 0 ct xa {2.0 / n!r}"]
+        for side in ("A", "B"):
+            x, pl = f"x{side.lower()}", f"p{side.lower()}"
+            if stage.l_leak > 0:
+                L.append(f"R{side} {x} r{side} {max(r, 1e-3)!r}")  # (a wire: 1 mOhm)
+                L.append(f"Ll{side} r{side} {pl} {float(stage.l_leak) / 2.0!r}")
+            else:
+                L.append(f"R{side} {x} {pl} {max(r, 1e-3)!r}")
+        L += sec
+        if stage.c_winding > 0:
+            L.append(f"Cw pa pb {float(stage.c_winding)!r}")
+        L += [f"XA pa gA k {names[0]}", f"XB pb gB k {names[1]}"]
+    return "\n".join(L) + "\n"
+
+
 def _run(deck: str, timeout: float) -> str:
     exe = _ngspice()
     if exe is None:
@@ -157,10 +269,15 @@ def _deck(circuit: str, control: list) -> str:
     return "* platebook stage (transient)\n" + circuit + ".control\n" + "\n".join(control) + "\nquit 0\n.endc\n.end\n"
 
 
+#: the capacitors held at their DC voltage in a transient run (coupling and bypass)
+_HELD = ("Cin", "Cout", "Ck", "Ctop", "CinA", "CinB")
+
+
 def _held_voltages(stage, triodes, timeout) -> dict:
     """DC voltage across each coupling/bypass capacitor at ngspice's own operating point."""
-    circuit = stage_netlist(stage, triodes, source="DC 0")
-    caps = [ln.split() for ln in circuit.splitlines() if ln[:1] == "C" and ln.split()[0] in ("Cin", "Cout", "Ck", "Ctop")]
+    circuit = (output_netlist(stage, triodes, amplitude=0.0, freq=1.0) if _is_output(stage)
+               else stage_netlist(stage, triodes, source="DC 0"))
+    caps = [ln.split() for ln in circuit.splitlines() if ln[:1] == "C" and ln.split()[0] in _HELD]
     nodes = sorted({n for c in caps for n in c[1:3] if n != "0"})
     if not nodes:
         return {}
@@ -207,12 +324,19 @@ class FrequencyDistortion:
     slew_fmax: float
     notes: list = field(default_factory=list)
 
+    @property
+    def output_stage(self) -> bool:
+        """An output stage: ``level`` is an output power [W], ``vout_peak`` the
+        loudspeaker's voltage [V peak]."""
+        return _is_output(self.stage)
+
     def to_dict(self) -> dict:
+        out = self.output_stage
         return {
-            "kind": stage_kind(self.stage),
-            "title": stage_title(self.stage),
+            "kind": self.stage.kind if out else stage_kind(self.stage),
+            "title": f"{self.stage.kind.capitalize()} output stage" if out else stage_title(self.stage),
             "tubes": list(self.labels),
-            "level_vout_peak_v": self.level,
+            **({"level_w": self.level} if out else {"level_vout_peak_v": self.level}),
             "source_peak_v": self.vin_peak,
             "quasi_static_thd_pct": 100 * self.quasi_static_thd,
             "slew_fmax_hz": self.slew_fmax if math.isfinite(self.slew_fmax) else None,
@@ -225,11 +349,15 @@ class FrequencyDistortion:
         }
 
     def report(self) -> str:
-        lines = [f"THD against frequency at {self.level:g} V peak out (source {self.vin_peak:.4g} V peak), "
+        where = (f"{self.level:g} W into the loudspeaker (source {self.vin_peak:.4g} V peak"
+                 f"{' per grid' if self.stage.kind == 'push-pull' else ''})" if self.output_stage else
+                 f"{self.level:g} V peak out (source {self.vin_peak:.4g} V peak)")
+        lines = [f"THD against frequency at {where}, "
                  "ngspice transient", f"  quasi-static THD at this level: {100 * self.quasi_static_thd:.4g} %"
                  + (f"; slew-limited above about {self.slew_fmax / 1e3:.4g} kHz (standing current into the "
                     "output capacitance)" if math.isfinite(self.slew_fmax) else ""), "",
-                 f"  {'f':>10} {'Vout pk':>9} {'THD %':>9} {'H2 dB':>7} {'H3 dB':>7}"]
+                 f"  {'f':>10} {'Vspk pk' if self.output_stage else 'Vout pk':>9} {'THD %':>9} {'H2 dB':>7} "
+                 f"{'H3 dB':>7}"]
         for i, f in enumerate(self.freq):
             lines.append(f"  {f:10.4g} {self.vout_peak[i]:9.4g} {100 * self.thd[i]:9.4g} "
                          f"{self.harmonics_db[i, 0]:7.1f} {self.harmonics_db[i, 1]:7.1f}")
@@ -302,3 +430,89 @@ def thd_against_frequency(stage, *triodes, vout_peak: float, freq=None, timeout:
         notes.append("at this level the quasi-static analysis warns: " + "; ".join(d.warnings))
     return FrequencyDistortion(stage, tuple(t.label for t in triodes), float(vout_peak), float(vsrc), freq,
                                np.array(vo), np.array(thd), np.array(hdb), float(d.thd), float(fig["slew_fmax"]), notes)
+
+
+def _check_freq(freq, default):
+    freq = np.asarray(default if freq is None else freq, float)
+    if freq.ndim != 1 or freq.size == 0 or not np.all(np.isfinite(freq)) or np.any(freq <= 0) or np.any(freq > 1e8):
+        raise StageInputError("frequencies must be positive numbers up to 100 MHz", field="freq")
+    return freq
+
+
+def _transient(circuit_at, freq, timeout):
+    """(fundamental [V peak], THD, H2..H10 [dB]) of v(out) at each frequency."""
+    vo, thd, hdb = [], [], []
+    for f in freq:
+        period = 1.0 / float(f)
+        ctl = [f"set nfreqs={_NHARM}", "set fourgridsize=2048", "set polydegree=1", *_TRAN_OPTIONS,
+               f"tran {period / _STEPS!r} {_PERIODS * period!r} 0 {period / _STEPS!r}", f"fourier {float(f)!r} v(out)"]
+        log, _ = _run(_deck(circuit_at(float(f)), ctl), timeout)
+        t, harm = _fourier(log)
+        vo.append(harm[1][0])
+        thd.append(t)
+        hdb.append([20 * math.log10(max(harm.get(k, (0, 0))[1], 1e-15)) for k in range(2, _NHARM + 1)])
+    return np.array(vo), np.array(thd), np.array(hdb)
+
+
+def output_thd_against_frequency(stage, *triodes, power: float, freq=None, timeout: float = 60.0) -> FrequencyDistortion:
+    """THD against frequency of a single-ended or push-pull output stage (ngspice transient
+    of :func:`output_netlist`) at the grid drive that gives ``power`` [W] into the
+    loudspeaker quasi-statically (:func:`fitter.stage.output.solve_output`'s power sweep,
+    refined by a secant step); that drive is held at every frequency, so the fall of the
+    output at the ends of the band shows beside its distortion.  With ``rs`` and ``rg`` the
+    source is raised by their divider (the grid takes no current below the onset).
+
+    Parameters
+    ----------
+    power : float
+        Output power [W] at mid-band (at most the stage's largest output).
+    freq : array_like or None
+        Frequencies [Hz]; default 20 Hz, 100 Hz, 1, 10, 20, 50 and 100 kHz.
+
+    Raises
+    ------
+    StageInputError
+        ``power`` not positive or above the largest output (field ``power``), bad ``freq``.
+    SimulatorMissing, SimulatorError
+        As :func:`thd_against_frequency`.
+    """
+    from .output import _banks, _idle, _spectra, _sweep_from, solve_output
+
+    if isinstance(power, bool) or not isinstance(power, (int, float)) or not (math.isfinite(power) and power > 0):
+        raise StageInputError(f"must be a positive output power in watts, got {power!r}", field="power")
+    freq = _check_freq(freq, [20.0, 100.0, 1e3, 1e4, 2e4, 5e4, 1e5])
+    if _ngspice() is None:
+        _run("", timeout)  # raises SimulatorMissing
+    res = solve_output(stage, *triodes)
+    sw = res.sweep
+    if power > sw.power[-1]:
+        raise StageInputError(f"{power:g} W is above the largest output before {res.figures['limit']} "
+                              f"({sw.power[-1]:.3g} W)", field="power")
+    banks = _banks(stage, triodes)
+    op = _idle(stage, banks)
+    # the drive for that power: interpolated in the sweep (power grows with the drive), then
+    # secant steps on sqrt(power), which is nearly linear in the drive
+    x = float(np.interp(math.sqrt(power), np.sqrt(np.concatenate([[0.0], sw.power])), np.concatenate([[0.0], sw.vin])))
+    for _ in range(3):
+        s = _sweep_from(stage, [x], _spectra(stage, banks, op, [x])[1])
+        px = float(s.power[0])
+        if abs(px - power) <= 1e-9 * power:
+            break
+        x *= math.sqrt(power / px)
+    qs_thd = float(s.thd[0])
+    vsrc = x * ((stage.rs + stage.rg) / stage.rg if stage.rg is not None else 1.0)
+    hold = _held_voltages(stage, triodes, timeout)
+    from .output import _cathode_at, _shifts
+
+    if _shifts(stage):
+        # the push-pull's shared bypass capacitor settles at Rk times the mean current at this
+        # level, not at the idle voltage: held there (the settling itself is checked against
+        # ngspice's long transient in tests/test_transient_output.py)
+        hold["Ck"] = float(_cathode_at(stage, banks, op, [x])[0][0])
+    vo, thd, hdb = _transient(lambda f: output_netlist(stage, triodes, amplitude=vsrc, freq=f, hold=hold), freq, timeout)
+    notes = []
+    if stage.l_primary is None:
+        notes.append(f"no primary inductance given: the transformer's magnetising inductance is taken as "
+                     f"{L_MAGNETISING:g} H (no low-frequency fall)")
+    return FrequencyDistortion(stage, tuple(t.label for t in triodes), float(power), float(vsrc), freq,
+                               vo, thd, hdb, qs_thd, math.nan, notes)
