@@ -145,7 +145,9 @@ def _resolve_tubes(db, kind, given: dict) -> dict:
         v = given.get(name)
         if v in (None, ""):
             raise InputError("give a tube (label:section, or a unit id)", field=name)
-        ids[name] = _unit_id(v) if isinstance(v, int) and not isinstance(v, bool) else resolve_unit(db, v, name)
+        if isinstance(v, bool) or not isinstance(v, (int, str)):
+            raise InputError("give a unit id or label:section", field=name)
+        ids[name] = _unit_id(v) if isinstance(v, int) else resolve_unit(db, v, name)
     names = _tubes_of(kind)
     if len(names) == 2 and ids[names[0]] == ids[names[1]]:
         raise InputError("the two tubes must be two different sections", field=names[1])
