@@ -49,7 +49,7 @@ def output():
             out = web_design.output_report(ledger(), kind, values, tubes,
                                            thd=web_design.percent(extra["thd"], "thd", 0.05),
                                            loads=extra["loads"] or None, level=extra["level"] or None)
-            out["plot_uri"] = data_uri(out.pop("plot_svg"))
+            out["panel_uris"] = [data_uri(svg) for svg in out.pop("panels_svg")]
             out["response_uri"] = data_uri(out.pop("response_svg"))
         except (InputError, RuntimeError) as e:
             error = error_text(e)

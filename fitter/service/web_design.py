@@ -214,7 +214,7 @@ def spread_report(db, kind, circuit, tube_type) -> dict:
     (:func:`fitter.service.stages.spread_stage`; a stack pairs each tube's two sections):
     ``{"result": to_dict(), "report", "rows": [{"figure", "unit", "min", "median", "max",
     "count"}], "skipped", "plot_svg"}``."""
-    from ..plotting_spread import save_spread_plot
+    from ..plotting_web import save_spread_plot
     from .stages import SpreadSpec, spread_stage
 
     _kind_class(kind, SMALL_KINDS)
@@ -263,16 +263,17 @@ def output_run(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None,
 
 def output_report(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None) -> dict:
     """:func:`output_run` with the frequency response, for a page: ``{"result": to_dict(),
-    "report", "plot_svg" (load lines, power/THD, composite and load sweep),
-    "response_svg"}``."""
+    "report", "panels_svg": [...], "response_svg"}``; ``panels_svg`` holds the plots of
+    :func:`fitter.plotting_output.plot_output` one panel each (load lines, harmonics against
+    power, the push-pull's composite characteristic, the load sweep)."""
     from ..plotting_design import save_response_plot
-    from ..plotting_output import save_output_plot
+    from ..plotting_web import output_panels
 
     run = output_run(db, kind, circuit, tubes, thd, loads, level, response=True)
+    panels = output_panels(run, "svg")
     with tempfile.TemporaryDirectory(prefix="platebook-output-") as tmp:
-        plot = save_output_plot(run, Path(tmp, "output.svg")).read_bytes()
         resp = save_response_plot(run.frequency, Path(tmp, "response.svg")).read_bytes()
-    return {"result": run.to_dict(), "report": run.report(), "plot_svg": plot, "response_svg": resp}
+    return {"result": run.to_dict(), "report": run.report(), "panels_svg": panels, "response_svg": resp}
 
 
 # -- design sweeps ---------------------------------------------------------------------------

@@ -143,7 +143,8 @@ def test_single_ended_page_shows_the_report_and_three_plots_and_matches_the_comm
     c = signed_in("viewer")
     page = c.get(f"/output?kind=single-ended&tube=W01:A&{SE}&loads=5k,10k,20k").get_data(as_text=True)
     assert not _errors(page) and CAUTION in page
-    assert page.count('src="data:image/svg+xml;base64,') == 2  # load lines + power/THD (+ load sweep); response
+    # load lines, harmonics against power, the load sweep, each a figure; the frequency response
+    assert page.count('src="data:image/svg+xml;base64,') == 4
     (card,) = cards(["W01:A"])
     cli = _cli(["output", "single-ended", "--tube", card, *SE_CLI, "--load-sweep", "5k,10k,20k"])
     want = web_design.output_run(stocked[0], "single-ended", {"b_plus": "250", "load": "10k", "grid_bias": "-8.5",
@@ -176,6 +177,8 @@ def test_push_pull_page_with_two_tubes_and_its_api_match_the_command_line(signed
     page = c.get("/output?" + q).get_data(as_text=True)
     assert not _errors(page)
     assert "W01:A" in page and "W03:B" in page and "DC imbalance (A - B)" in page
+    # load lines, harmonics against power, the composite characteristic; the frequency response
+    assert page.count('src="data:image/svg+xml;base64,') == 4
     a, b = cards(["W01:A", "W03:B"])
     cli = _cli(["output", "push-pull", "--tube-a", a, "--tube-b", b, "--bplus", "250", "--load", "20k",
                 "--bias", "-8.5"])

@@ -18,7 +18,7 @@ from .plotting_stage import _save  # noqa: E402
 from .stage.circuits import stage_title  # noqa: E402
 from .stage.results import _describe  # noqa: E402
 
-__all__ = ["plot_spread", "save_spread_plot", "SPREAD_FIGURES"]
+__all__ = ["plot_spread", "save_spread_plot", "SPREAD_FIGURES", "output_panels"]
 
 #: the figures drawn, in order: mid-band gain and the operating point's current
 SPREAD_FIGURES = ("gain", "ia")
@@ -75,3 +75,29 @@ def save_spread_plot(res, path, title_type: str | None = None) -> Path:
     """Save :func:`plot_spread` (PNG, SVG or PDF by the suffix); returns the path written."""
     axes = plot_spread(res, title_type)
     return _save(axes[0].figure, path)
+
+
+def output_panels(run, fmt: str = "svg") -> list:
+    """The panels of :func:`fitter.plotting_output.plot_output` for ``run`` (an
+    :class:`fitter.service.output.OutputRun`), each drawn into a figure of its own: a list
+    of the figures' bytes (``svg`` or ``png``), each with the caution."""
+    import io
+
+    from .plotting_output import plot_output
+
+    n = 2 + (run.sweep is not None) + (run.result.stage.kind != "single-ended")
+    figs = [plt.figure(figsize=(6.4, 5.4)) for _ in range(n)]
+    try:
+        plot_output(run, axes=[f.add_subplot(1, 1, 1) for f in figs])
+        out = []
+        for f in figs:
+            if f is not figs[0]:  # plot_output captions and lays out the first figure itself
+                f.text(0.01, 0.005, CAUTION, fontsize=6, color="0.3")
+                f.tight_layout(rect=(0, 0.02, 1, 1))
+            buf = io.BytesIO()
+            f.savefig(buf, format=fmt, dpi=120)
+            out.append(buf.getvalue())
+        return out
+    finally:
+        for f in figs:
+            plt.close(f)
