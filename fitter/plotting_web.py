@@ -42,7 +42,9 @@ def _panel(ax, values, labels, title, unit, colour):
     rng = np.random.default_rng(0)
     y = top * (1.1 + 0.2 * rng.random(v.size))
     ax.plot(v, y, "o", ms=4, color=colour, alpha=0.8, mec="white", mew=0.5)
-    ax.axvline(med, color="k", lw=1.4, ls="--", label=f"median {med:.4g}")
+    ax.axvline(med, color="k", lw=1.4, ls="--")
+    ax.annotate(f"median {med:.4g}", (med, top * 1.45), ha="center", va="center", fontsize=8,
+                bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="0.5", alpha=0.9))
     for x, name in ((lo, "min"), (hi, "max")):
         who = names[int(np.argmin(np.abs(v - x)))]
         ax.axvline(x, color="0.45", lw=0.9, ls=":")
@@ -52,14 +54,13 @@ def _panel(ax, values, labels, title, unit, colour):
     ax.set_yticks([t for t in ax.get_yticks() if 0 <= t <= top and float(t).is_integer()])
     ax.set_ylabel("units")
     ax.set_xlabel(title + (f" [{unit}]" if unit else ""))
-    ax.legend(fontsize=8, loc="center right", framealpha=0.9)
     ax.grid(alpha=0.3)
 
 
 def plot_spread(res, title_type: str | None = None):
     """Draw the spread of ``res`` (:class:`fitter.stage.SpreadResult`); returns the axes."""
     names = [k for k in SPREAD_FIGURES if k in res.values]
-    fig, axes = plt.subplots(1, len(names), figsize=(5.2 * len(names), 4.2), squeeze=False)
+    fig, axes = plt.subplots(1, len(names), figsize=(4.5 * len(names), 3.9), squeeze=False)
     colours = ("tab:blue", "tab:orange")
     for ax, key, c in zip(axes[0], names, colours):
         _, scale, unit, label = _describe(key)
