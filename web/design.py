@@ -6,7 +6,7 @@ reproduces it; views parse the request, call :mod:`fitter.service.web_design`, r
 
 from __future__ import annotations
 
-from flask import Blueprint, render_template, request
+from flask import Blueprint, current_app, render_template, request
 
 from fitter.errors import InputError
 from fitter.service import web_design, web_support
@@ -20,6 +20,13 @@ bp = Blueprint("design", __name__)
 #: the output stage's fields the form shows first (the rest, the response's, under "more")
 OUTPUT_MAIN = ("b_plus", "load", "turns_ratio", "speaker", "r_primary", "grid_bias", "rk", "bypassed", "pa_max")
 SMALL_MAIN = ("b_plus", "ra", "rk", "ck", "rl", "r_top", "r_mid", "vbias", "vneg", "r_upper", "r_lower", "pa_max")
+
+
+def _cache():
+    """The design pages' own small cache (their answers are larger than a fit plot)."""
+    from .plots import PlotCache
+
+    return current_app.extensions.setdefault("platebook.design", PlotCache(32))
 
 
 def _kind(allowed, default):
@@ -48,7 +55,8 @@ def output():
         try:
             out = web_design.output_report(ledger(), kind, values, tubes,
                                            thd=web_design.percent(extra["thd"], "thd", 0.05),
-                                           loads=extra["loads"] or None, level=extra["level"] or None)
+                                           loads=extra["loads"] or None, level=extra["level"] or None,
+                                           cache=_cache())
             out["panel_uris"] = [data_uri(svg) for svg in out.pop("panels_svg")]
             out["response_uri"] = data_uri(out.pop("response_svg"))
         except (InputError, RuntimeError) as e:
@@ -79,7 +87,7 @@ def sweep():
                 ledger(), kind, rng["vary"], rng["start"], rng["stop"], rng["points"] or None, log, values,
                 tubes, tube_type or None, thd_limit=web_design.percent(rng["thd_limit"], "thd_limit", None),
                 level=rng["level"] or None, slew_vpeak=None if output else (rng["slew_vpeak"] or None),
-                name=label)
+                name=label, cache=_cache())
             out["plot_uri"] = data_uri(out.pop("plot_svg"))
         except (InputError, RuntimeError) as e:
             error = error_text(e)

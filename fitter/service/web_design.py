@@ -230,14 +230,9 @@ def spread_report(db, kind, circuit, tube_type) -> dict:
 # -- output stages --------------------------------------------------------------------------
 
 
-def output_run(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None, response=False):
-    """An output stage with stored units (:func:`fitter.service.output.run_output`): its
-    :class:`~fitter.service.output.OutputRun`, whose ``to_dict()`` is what ``platebook output
-    KIND --json`` prints.  ``tubes``: ``{"tube": ...}`` or ``{"tube_a": ..., "tube_b": ...}``
-    (label:section or id); ``thd`` a fraction (default 0.05); ``loads`` reflected loads [ohm]
-    for the load sweep; ``level`` its output power [W] (default 1)."""
-    from .output import OutputSpec, run_output
-
+def _output_inputs(db, kind, circuit, tubes, thd, loads, level) -> dict:
+    """The output request read and checked: the circuit in SI, the tubes' unit ids, thd,
+    loads and level (every problem an InputError naming its field)."""
     _kind_class(kind, OUTPUT_KINDS)
     c = parse_circuit(circuit)
     if not isinstance(tubes, dict):
@@ -254,26 +249,55 @@ def output_run(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None,
             if any(x is None for x in loads):
                 raise InputError("give reflected loads separated by commas, e.g. 2k,3k,5k", field="loads")
     level = 1.0 if level is None or level == "" else _number(level, "level")
-    names = _tubes_of(kind)
-    with _card_files(db, [ids[n] for n in names]) as cards:
-        spec = OutputSpec(kind, c, **dict(zip(names, cards)), thd=thd, loads=loads, level=level,
-                          response=bool(response))
+    return {"kind": kind, "circuit": c, "ids": ids, "thd": thd, "loads": loads, "level": level}
+
+
+def _run_output(db, x: dict, response: bool):
+    from .output import OutputSpec, run_output
+
+    names = _tubes_of(x["kind"])
+    with _card_files(db, [x["ids"][n] for n in names]) as cards:
+        spec = OutputSpec(x["kind"], x["circuit"], **dict(zip(names, cards)), thd=x["thd"], loads=x["loads"],
+                          level=x["level"], response=bool(response))
         return run_output(spec)
 
 
-def output_report(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None) -> dict:
+def _key(what: str, x: dict) -> tuple:
+    """A cache key of a checked request: stored fits never change, so the unit ids and the
+    values fix the answer."""
+    return (what,) + tuple((k, tuple(sorted(v.items())) if isinstance(v, dict) else v) for k, v in sorted(x.items()))
+
+
+def output_run(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None, response=False):
+    """An output stage with stored units (:func:`fitter.service.output.run_output`): its
+    :class:`~fitter.service.output.OutputRun`, whose ``to_dict()`` is what ``platebook output
+    KIND --json`` prints.  ``tubes``: ``{"tube": ...}`` or ``{"tube_a": ..., "tube_b": ...}``
+    (label:section or id); ``thd`` a fraction (default 0.05); ``loads`` reflected loads [ohm]
+    for the load sweep; ``level`` its output power [W] (default 1)."""
+    return _run_output(db, _output_inputs(db, kind, circuit, tubes, thd, loads, level), response)
+
+
+def output_report(db, kind, circuit, tubes: dict, thd=None, loads=None, level=None, cache=None) -> dict:
     """:func:`output_run` with the frequency response, for a page: ``{"result": to_dict(),
     "report", "panels_svg": [...], "response_svg"}``; ``panels_svg`` holds the plots of
     :func:`fitter.plotting_output.plot_output` one panel each (load lines, harmonics against
-    power, the push-pull's composite characteristic, the load sweep)."""
-    from ..plotting_design import save_response_plot
-    from ..plotting_web import output_panels
+    power, the push-pull's composite characteristic, the load sweep).  With ``cache`` (an
+    object with ``get(key, make)``, such as :class:`web.plots.PlotCache`) the answer is kept
+    by the unit ids and values asked for."""
+    x = _output_inputs(db, kind, circuit, tubes, thd, loads, level)
 
-    run = output_run(db, kind, circuit, tubes, thd, loads, level, response=True)
-    panels = output_panels(run, "svg")
-    with tempfile.TemporaryDirectory(prefix="platebook-output-") as tmp:
-        resp = save_response_plot(run.frequency, Path(tmp, "response.svg")).read_bytes()
-    return {"result": run.to_dict(), "report": run.report(), "panels_svg": panels, "response_svg": resp}
+    def make():
+        from ..plotting_design import save_response_plot
+        from ..plotting_web import output_panels
+
+        run = _run_output(db, x, response=True)
+        panels = output_panels(run, "svg")
+        with tempfile.TemporaryDirectory(prefix="platebook-output-") as tmp:
+            resp = save_response_plot(run.frequency, Path(tmp, "response.svg")).read_bytes()
+        return {"result": run.to_dict(), "report": run.report(), "panels_svg": panels, "response_svg": resp}
+
+    out = cache.get(_key("output", x), make) if cache is not None else make()
+    return dict(out)
 
 
 # -- design sweeps ---------------------------------------------------------------------------
@@ -293,15 +317,10 @@ def _points(value):
     return n
 
 
-def sweep_run(db, kind, vary, start, stop, points=None, log=False, circuit=None, tubes=None, tube_type=None,
-              thd_limit=None, level=None, slew_vpeak=None):
-    """A design sweep with stored units (:func:`fitter.service.design.stage_sweep`): one tube
-    (or two, for a stack or a push-pull), or every in-stock section of ``tube_type``.  Its
-    :class:`~fitter.stage.sweeps.ComponentSweep`, whose ``to_dict()`` is what ``platebook
-    sweep KIND --json`` prints.  ``thd_limit`` a fraction (default 1 %, output stages 5 %);
-    ``level`` the THD column's output [V peak, or W for an output stage]."""
-    from .design import SweepSpec, stage_sweep
-
+def _sweep_inputs(db, kind, vary, start, stop, points, log, circuit, tubes, tube_type, thd_limit, level,
+                  slew_vpeak) -> dict:
+    """The sweep request read and checked (every problem an InputError naming its field);
+    tubes as unit ids (``ids``), or ``tube_type`` for a type's stock."""
     _kind_class(kind)
     if not isinstance(vary, str) or not vary.strip():
         raise InputError("choose the field to sweep", field="vary")
@@ -317,37 +336,70 @@ def sweep_run(db, kind, vary, start, stop, points=None, log=False, circuit=None,
     log = _switch(log, "log") if log not in (None, "") else False
     c = {k: v for k, v in parse_circuit(circuit or {}).items() if k != vary}
     output = kind in OUTPUT_KINDS
-    thd_limit = _fraction(thd_limit, "thd_limit", 0.05 if output else 0.01)
-    level = None if level in (None, "") else _number(level, "level")
-    slew = 10.0 if slew_vpeak in (None, "") else _number(slew_vpeak, "slew_vpeak")
-    common = dict(thd_limit=thd_limit, level=level)
+    common = {"thd_limit": _fraction(thd_limit, "thd_limit", 0.05 if output else 0.01),
+              "level": None if level in (None, "") else _number(level, "level")}
     if not output:
-        common["slew_vpeak"] = slew
+        common["slew_vpeak"] = 10.0 if slew_vpeak in (None, "") else _number(slew_vpeak, "slew_vpeak")
+    x = {"kind": kind, "vary": vary, "start": lo, "stop": hi, "points": n, "log": log, "circuit": c,
+         "common": common, "ids": None, "type": None}
     tubes = {k: v for k, v in (tubes or {}).items() if v not in (None, "")}
     if tube_type not in (None, ""):
         if tubes:
             raise InputError("a sweep over a type's stock takes its tubes from the stock; leave out the tubes",
                              field=sorted(tubes)[0])
-        with stock_cards(db, tube_type) as (folder, _, _):
-            return stage_sweep(SweepSpec(kind, vary, lo, hi, n, log, c, cards=folder, **common))
-    ids = _resolve_tubes(db, kind, tubes)
-    names = _tubes_of(kind)
-    with _card_files(db, [ids[k] for k in names]) as cards:
-        return stage_sweep(SweepSpec(kind, vary, lo, hi, n, log, c, **dict(zip(names, cards)), **common))
+        x["type"] = tube_type
+    else:
+        x["ids"] = _resolve_tubes(db, kind, tubes)
+    return x
+
+
+def _run_sweep(db, x: dict):
+    from .design import SweepSpec, stage_sweep
+
+    head = (x["kind"], x["vary"], x["start"], x["stop"], x["points"], x["log"], x["circuit"])
+    if x["type"] is not None:
+        with stock_cards(db, x["type"]) as (folder, _, _):
+            return stage_sweep(SweepSpec(*head, cards=folder, **x["common"]))
+    names = _tubes_of(x["kind"])
+    with _card_files(db, [x["ids"][k] for k in names]) as cards:
+        return stage_sweep(SweepSpec(*head, **dict(zip(names, cards)), **x["common"]))
+
+
+def sweep_run(db, kind, vary, start, stop, points=None, log=False, circuit=None, tubes=None, tube_type=None,
+              thd_limit=None, level=None, slew_vpeak=None):
+    """A design sweep with stored units (:func:`fitter.service.design.stage_sweep`): one tube
+    (or two, for a stack or a push-pull), or every in-stock section of ``tube_type``.  Its
+    :class:`~fitter.stage.sweeps.ComponentSweep`, whose ``to_dict()`` is what ``platebook
+    sweep KIND --json`` prints.  ``thd_limit`` a fraction (default 1 %, output stages 5 %);
+    ``level`` the THD column's output [V peak, or W for an output stage]."""
+    return _run_sweep(db, _sweep_inputs(db, kind, vary, start, stop, points, log, circuit, tubes, tube_type,
+                                        thd_limit, level, slew_vpeak))
 
 
 def sweep_report(db, kind, vary, start, stop, points=None, log=False, circuit=None, tubes=None, tube_type=None,
-                 thd_limit=None, level=None, slew_vpeak=None, name=lambda f: f) -> dict:
+                 thd_limit=None, level=None, slew_vpeak=None, name=lambda f: f, cache=None) -> dict:
     """:func:`sweep_run` for a page: ``{"result": to_dict(), "report" (fields named by
     ``name``), "table": {"head": [...], "rows": [[cell, ...]]}, "plot_svg"}``; with a stock
-    each cell is the median with the min..max range."""
-    from ..plotting_design import save_sweep_plot
+    each cell is the median with the min..max range.  With ``cache`` (``get(key, make)``), a
+    sweep of named tubes is kept by their unit ids and the values (a stock's sweep is not:
+    the stock changes)."""
+    x = _sweep_inputs(db, kind, vary, start, stop, points, log, circuit, tubes, tube_type, thd_limit, level,
+                      slew_vpeak)
 
-    sw = sweep_run(db, kind, vary, start, stop, points, log, circuit, tubes, tube_type, thd_limit, level, slew_vpeak)
-    with tempfile.TemporaryDirectory(prefix="platebook-sweep-") as tmp:
-        svg = save_sweep_plot(sw, Path(tmp, "sweep.svg")).read_bytes()
-    return {"result": sw.to_dict(), "report": sw.report(name), "table": _sweep_table(sw), "plot_svg": svg,
-            "n_units": sw.n_units}
+    def make():
+        from ..plotting_design import save_sweep_plot
+
+        sw = _run_sweep(db, x)
+        with tempfile.TemporaryDirectory(prefix="platebook-sweep-") as tmp:
+            svg = save_sweep_plot(sw, Path(tmp, "sweep.svg")).read_bytes()
+        return {"result": sw.to_dict(), "report": sw.report(name), "table": _sweep_table(sw), "plot_svg": svg,
+                "n_units": sw.n_units}
+
+    if cache is None or x["type"] is not None:
+        return make()
+    flat = {k: v for k, v in x.items() if k != "common"}
+    flat.update(x["common"])
+    return dict(cache.get(_key("sweep", flat), make))
 
 
 def _cell(x) -> str:

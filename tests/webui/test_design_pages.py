@@ -306,3 +306,23 @@ def test_the_navigation_and_the_stage_page_link_to_the_design_pages(signed_in):
     page = signed_in("viewer").get("/stage").get_data(as_text=True)
     assert 'href="/output"' in page and 'href="/sweep"' in page  # the navigation
     assert 'href="/output?kind=single-ended"' in page and 'href="/sweep?kind=common-cathode"' in page
+
+
+def test_a_repeated_output_or_sweep_page_comes_from_the_cache_by_unit_ids(app, signed_in):
+    c = signed_in("viewer")
+    url = f"/output?kind=single-ended&tube=W03:A&{SE}&thd=3"
+    first = c.get(url).get_data(as_text=True)
+    cache = app.extensions["platebook.design"]
+    hits = cache.hits
+    # the same tube by its unit id and the same values written differently: the same answer, kept
+    uid = web_support.resolve_unit(app.config["LEDGER"], "W03:A")
+    again = c.get(f"/output?kind=single-ended&tube={uid}&b_plus=250&load=10000&grid_bias=-8.5&pa_max=2.75&thd=3%")
+    assert cache.hits == hits + 1
+    assert re.findall(r'<pre class="report">(.*?)</pre>', first, re.S) == \
+        re.findall(r'<pre class="report">(.*?)</pre>', again.get_data(as_text=True), re.S)
+    other = c.get(f"/output?kind=single-ended&tube=W03:B&{SE}&thd=3").get_data(as_text=True)
+    assert cache.hits == hits + 1 and "W03:B" in other  # another tube is solved afresh
+    url = "/sweep?kind=cathode-follower&vary=rk&start=1k&stop=20k&points=3&tube=W01:B&b_plus=250"
+    c.get(url)
+    c.get(url)
+    assert cache.hits == hits + 2
