@@ -119,6 +119,60 @@ def stage():
     return Response(json.dumps(res.to_dict(), allow_nan=False), mimetype="application/json")
 
 
+# -- design: output stages and sweeps (fitter.service.web_design) ---------------------------
+
+_OUTPUT_KEYS = ("kind", "circuit", "tube", "tube_a", "tube_b", "thd", "loads", "level", "response")
+_SWEEP_KEYS = ("kind", "vary", "start", "stop", "points", "log", "circuit", "tube", "bottom", "top", "tube_a", "tube_b",
+               "type", "thd_limit", "level", "slew_vpeak")
+
+
+def _known(b, keys, what):
+    unknown = sorted(set(b) - set(keys))
+    if unknown:
+        raise InputError(f"not a field of {what} ({', '.join(keys)})", field=unknown[0])
+
+
+def _json(d):
+    return Response(json.dumps(d, allow_nan=False), mimetype="application/json")
+
+
+@bp.route("/output", methods=["POST"])
+@need("viewer")
+def output():
+    """An output stage with stored units: the figures of 'platebook output KIND --json'."""
+    from fitter.service import web_design
+
+    b = _body()
+    _known(b, _OUTPUT_KEYS, "an output request")
+    if not isinstance(b.get("response", False), bool):
+        raise InputError("must be true or false", field="response")
+    tubes = {k: b[k] for k in ("tube", "tube_a", "tube_b") if k in b}
+    try:
+        run = web_design.output_run(ledger(), b.get("kind"), b.get("circuit", {}), tubes, b.get("thd"), b.get("loads"),
+                                    b.get("level"), response=b.get("response", False))
+    except RuntimeError as e:
+        return _no_result(e)
+    return _json(run.to_dict())
+
+
+@bp.route("/sweep", methods=["POST"])
+@need("viewer")
+def sweep():
+    """A design sweep with stored units or a type's stock: the figures of 'platebook sweep KIND --json'."""
+    from fitter.service import web_design
+
+    b = _body()
+    _known(b, _SWEEP_KEYS, "a sweep request")
+    tubes = {k: b[k] for k in ("tube", "bottom", "top", "tube_a", "tube_b") if k in b}
+    try:
+        sw = web_design.sweep_run(ledger(), b.get("kind"), b.get("vary"), b.get("start"), b.get("stop"),
+                                  b.get("points"), b.get("log", False), b.get("circuit", {}), tubes, b.get("type"),
+                                  b.get("thd_limit"), b.get("level"), b.get("slew_vpeak"))
+    except RuntimeError as e:
+        return _no_result(e)
+    return _json(sw.to_dict())
+
+
 @bp.route("/openapi.json", methods=["GET"])
 def openapi():
     return OPENAPI
@@ -127,6 +181,19 @@ def openapi():
 _ERR = {"description": "errors", "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Errors"}}}}
 _UNIT_ID = {"name": "id", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1},
             "description": "a unit id (the id of a stored fit, as POST /measurements returns)"}
+
+# the design endpoints' parts: a value is a number in SI units or text such as "3k"
+_VALUE = {"oneOf": [{"type": "number"}, {"type": "string"}]}
+_TUBE = {"oneOf": [{"type": "integer", "minimum": 1}, {"type": "string"}],
+         "description": "a unit id, or label:section"}
+_OUTPUT_CIRCUIT = {
+    "type": "object", "required": ["b_plus"], "additionalProperties": False,
+    "description": "the stage's fields in SI units (numbers or text like '3k'); give load or turns_ratio, "
+                   "grid_bias or rk",
+    "properties": {**{k: _VALUE for k in ("b_plus", "load", "turns_ratio", "speaker", "r_primary", "grid_bias", "rk",
+                                          "pa_max", "grid_onset", "cgk", "cga", "cak", "rs", "c_in", "rg", "ck",
+                                          "l_primary", "l_leak", "c_winding")},
+                   "bypassed": {"type": "boolean"}}}
 
 OPENAPI = {
     "openapi": "3.0.3",
@@ -210,6 +277,47 @@ OPENAPI = {
                     "tube": {"type": "integer", "minimum": 1}, "bottom": {"type": "integer", "minimum": 1},
                     "top": {"type": "integer", "minimum": 1}}}}}},
             "responses": {"200": {"description": "the stage's figures", "content": {
+                "application/json": {"schema": {"type": "object"}}}}, "400": _ERR, "401": _ERR, "422": _ERR}}},
+        # -- design: output stages and sweeps
+        "/output": {"post": {
+            "summary": "Solve a single-ended or push-pull output stage with stored units (the figures of "
+                       "'platebook output KIND --json')",
+            "requestBody": {"required": True, "content": {"application/json": {"schema": {
+                "type": "object", "required": ["kind", "circuit"], "additionalProperties": False, "properties": {
+                    "kind": {"type": "string", "enum": ["single-ended", "push-pull"]},
+                    "circuit": _OUTPUT_CIRCUIT,
+                    "tube": _TUBE, "tube_a": _TUBE, "tube_b": _TUBE,
+                    "thd": {"type": "number", "exclusiveMinimum": True, "minimum": 0, "exclusiveMaximum": True,
+                            "maximum": 1, "default": 0.05, "description": "THD (fraction) for the output power"},
+                    "loads": {"type": "array", "minItems": 1, "maxItems": 200, "items": _VALUE,
+                              "description": "reflected loads [ohm] for a load sweep"},
+                    "level": {"type": "number", "default": 1, "description": "output power [W] of the load "
+                                                                              "sweep's THD column"},
+                    "response": {"type": "boolean", "default": False,
+                                 "description": "also the frequency response at the secondary"}}}}}},
+            "responses": {"200": {"description": "the stage's figures", "content": {
+                "application/json": {"schema": {"type": "object"}}}}, "400": _ERR, "401": _ERR, "422": _ERR}}},
+        "/sweep": {"post": {
+            "summary": "Sweep one field of a stage over a range, for stored units or a type's in-stock sections "
+                       "(the figures of 'platebook sweep KIND --json')",
+            "requestBody": {"required": True, "content": {"application/json": {"schema": {
+                "type": "object", "required": ["kind", "vary", "start", "stop"], "additionalProperties": False,
+                "properties": {
+                    "kind": {"type": "string", "enum": ["common-cathode", "cathode-follower", "stack",
+                                                        "single-ended", "push-pull"]},
+                    "vary": {"type": "string", "description": "the field to sweep (ra, b_plus, load, grid_bias ...)"},
+                    "start": _VALUE, "stop": _VALUE,
+                    "points": {"type": "integer", "minimum": 2, "maximum": 200, "default": 20},
+                    "log": {"type": "boolean", "default": False},
+                    "circuit": {"type": "object", "additionalProperties": {"oneOf": [_VALUE, {"type": "boolean"}]},
+                                "description": "the stage's other fields in SI units"},
+                    "tube": _TUBE, "bottom": _TUBE, "top": _TUBE, "tube_a": _TUBE, "tube_b": _TUBE,
+                    "type": {"type": "string", "description": "a tube type: its whole in-stock stock instead of tubes"},
+                    "thd_limit": {"type": "number", "exclusiveMinimum": True, "minimum": 0, "exclusiveMaximum": True,
+                                  "maximum": 1, "description": "THD (fraction) of the headroom / output power"},
+                    "level": {"type": "number", "description": "the THD column's level [V peak; W for an output stage]"},
+                    "slew_vpeak": {"type": "number", "description": "output peak of the slew figure [V]"}}}}}},
+            "responses": {"200": {"description": "the figures against the swept value", "content": {
                 "application/json": {"schema": {"type": "object"}}}}, "400": _ERR, "401": _ERR, "422": _ERR}}},
         "/openapi.json": {"get": {"summary": "This document", "security": [],
                                   "responses": {"200": {"description": "OpenAPI 3"}}}},

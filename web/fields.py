@@ -16,6 +16,19 @@ LABELS: dict[str, str] = {
     "rg_top": "top grid leak [Ω]", "c_top": "top grid coupling C [F]",
     "output": "output (top-cathode / bottom-plate)", "tube": "tube", "bottom": "bottom tube",
     "top": "top tube",
+    # a type's stock (stage spread, sweeps)
+    "type": "tube type (its whole stock)", "spread": "tube type (its whole stock)", "cards": "tube type (its whole stock)",
+    "units": "tube type (its whole stock)",
+    # output stages (fitter/stage/output.py)
+    "load": "reflected load [Ω]", "turns_ratio": "turns ratio n (primary:secondary)",
+    "speaker": "loudspeaker [Ω]", "r_primary": "primary DC resistance [Ω]", "grid_bias": "fixed grid bias [V]",
+    "bypassed": "cathode resistor bypassed", "grid_onset": "grid-current onset [V]",
+    "l_primary": "primary inductance [H]", "l_leak": "leakage inductance [H]", "c_winding": "winding capacitance [F]",
+    "tube_a": "tube A", "tube_b": "tube B", "thd": "THD for the output power [%]", "loads": "load sweep [Ω, Ω, ...]",
+    "level": "level for the THD column", "kind": "kind of stage",
+    # design sweeps
+    "vary": "field to sweep", "start": "from", "stop": "to", "points": "points", "log": "logarithmic steps",
+    "thd_limit": "THD limit [%]", "slew_vpeak": "slew check amplitude [V peak]",
 }
 
 
