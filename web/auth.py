@@ -11,6 +11,7 @@ from __future__ import annotations
 import functools
 import hmac
 import secrets
+import threading
 
 from flask import (Blueprint, abort, current_app, flash, g, redirect, render_template, request, session,
                    url_for)
@@ -24,8 +25,22 @@ ROLE_RANK = {"viewer": 0, "editor": 1, "admin": 2}
 SIGNIN_FAILED = "That name and password do not match an active account."
 
 
+_OPENING = threading.Lock()
+
+
 def ledger():
-    return current_app.config["LEDGER"]
+    """The application's ledger, opened on the first request and kept (a failure to open is
+    not kept: the next request tries again)."""
+    app = current_app
+    led = app.extensions.get("platebook.ledger")
+    if led is None:
+        with _OPENING:
+            led = app.extensions.get("platebook.ledger")
+            if led is None:
+                from fitter.service.stock import connect
+
+                led = app.extensions["platebook.ledger"] = connect(app.config["LEDGER"])
+    return led
 
 
 def csrf_token() -> str:

@@ -249,7 +249,7 @@ def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = T
             reader = create_engine(url, poolclass=NullPool)
             _sqlite_hooks(reader, write=False)
         else:
-            engine = create_engine(url, pool_pre_ping=False, pool_size=2, max_overflow=4,
+            engine = create_engine(url, pool_pre_ping=True, pool_size=4, max_overflow=8,
                                    connect_args={"connect_timeout": 10, "application_name": "platebook"})
         ledger = Ledger(url, engine, reader if url.drivername == "sqlite" else None)
         if upgrade:
