@@ -29,8 +29,10 @@ def _info(r: PlotImageRow) -> dict:
             "state": dict(r.state or EMPTY_STATE), "measurement_ids": list(r.measurement_ids or [])}
 
 
-def _get(s, plot_id: int) -> PlotImageRow:
-    r = s.get(PlotImageRow, plot_id)
+def _get(s, plot_id: int, lock: bool = False) -> PlotImageRow:
+    # a writer locks the row (PostgreSQL: FOR UPDATE; SQLite's writer holds the database lock
+    # anyway), so two changes at once both land: each merges into the state the other left
+    r = s.get(PlotImageRow, plot_id, with_for_update=lock)
     if r is None:
         raise InputError(f"no plot {plot_id} in the ledger", field="id")
     return r
@@ -69,29 +71,34 @@ def plot_content(ledger: Ledger, plot_id: int) -> tuple[bytes, str]:
         return bytes(r[0]), r[1]
 
 
-def save_state(ledger: Ledger, plot_id: int, state: dict) -> str:
-    """Replace the work in progress (a JSON-ready dict, already checked); returns the time stamp."""
+def save_state(ledger: Ledger, plot_id: int, **changes) -> dict:
+    """Merge ``changes`` (keys of the state: ``marks``, ``box``, ``curves``, ``saved``; JSON-ready,
+    already checked) into the work in progress, in one transaction; returns the new state."""
+    unknown = set(changes) - set(EMPTY_STATE)
+    if unknown:
+        raise ValueError(f"not parts of a plot's state: {sorted(unknown)}")
 
     def run(s):
-        r = _get(s, plot_id)
-        r.state = dict(state)
+        r = _get(s, plot_id, lock=True)
+        state = {**EMPTY_STATE, **(r.state or {}), **changes}
+        r.state = state
         r.updated_at = now()
-        return r.updated_at
+        return state
 
     return ledger.work(run)
 
 
-def add_measurements(ledger: Ledger, plot_id: int, measurement_ids, state: dict | None = None) -> list:
-    """Record measurements saved from the plot (and, given, the new work state); returns
-    every measurement id saved from it so far."""
+def add_measurements(ledger: Ledger, plot_id: int, measurement_ids, saved: dict | None = None) -> list:
+    """Record measurements saved from the plot (and, given, the state's ``saved`` part: what
+    was saved, the fit to draw); returns every measurement id saved from it so far."""
 
     def run(s):
-        r = _get(s, plot_id)
+        r = _get(s, plot_id, lock=True)
         ids = list(r.measurement_ids or [])
         ids += [int(i) for i in measurement_ids if int(i) not in ids]
         r.measurement_ids = ids
-        if state is not None:
-            r.state = dict(state)
+        if saved is not None:
+            r.state = {**EMPTY_STATE, **(r.state or {}), "saved": saved}
         r.updated_at = now()
         return ids
 

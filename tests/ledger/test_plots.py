@@ -49,18 +49,21 @@ def test_a_plot_is_stored_byte_for_byte_and_its_work_is_kept(ledger):
     info = plots.plot_row(ledger, pid)
     assert (info["name"], info["width"], info["height"], info["size"]) == ("sheet é.png", 120, 80, len(data))
     assert info["state"] == plots.EMPTY_STATE and info["measurement_ids"] == []
-    plots.save_state(ledger, pid, STATE)
+    plots.save_state(ledger, pid, marks=STATE["marks"], box=STATE["box"])
+    assert plots.save_state(ledger, pid, curves=STATE["curves"]) == STATE  # each change merged into the rest
     assert plots.plot_row(ledger, pid)["state"] == STATE  # floats back exactly (JSON)
+    with pytest.raises(ValueError, match="colour"):
+        plots.save_state(ledger, pid, colour="red")
     assert plots.add_measurements(ledger, pid, [7, 8]) == [7, 8]
-    assert plots.add_measurements(ledger, pid, [8, 9], state={**STATE, "saved": {"units": [3]}}) == [7, 8, 9]
-    assert plots.plot_row(ledger, pid)["state"]["saved"] == {"units": [3]}
+    assert plots.add_measurements(ledger, pid, [8, 9], saved={"units": [3]}) == [7, 8, 9]
+    assert plots.plot_row(ledger, pid)["state"] == {**STATE, "saved": {"units": [3]}}
     listed = plots.list_plots(ledger)
     assert [p["id"] for p in listed] == [pid] and listed[0]["curves"] == 1 and listed[0]["saved"] == 3
 
 
 def test_an_unknown_plot_is_an_input_error_on_the_id(ledger):
     for call in (lambda: plots.plot_row(ledger, 99), lambda: plots.plot_content(ledger, 99),
-                 lambda: plots.save_state(ledger, 99, STATE), lambda: plots.add_measurements(ledger, 99, [1])):
+                 lambda: plots.save_state(ledger, 99, box=None), lambda: plots.add_measurements(ledger, 99, [1])):
         with pytest.raises(InputError, match="no plot 99") as e:
             call()
         assert e.value.field == "id"
@@ -73,7 +76,7 @@ def test_backup_and_restore_keep_plot_images_and_their_work(db, tmp_path):
     a, data_a = _store(led, 1)
     _store(led, 2, who="bob")
     _store(led, 1)  # the same image twice: two rows, one file
-    plots.save_state(led, a, STATE)
+    plots.save_state(led, a, **STATE)
     rows = dump(led)
     led.close()
     folder = tmp_path / "backup"
