@@ -337,8 +337,7 @@ def set_axes(db, plot_id, marks, box=None) -> dict:
         marks = _marks(marks, info)
         box = _box(box, info)
         axes = _axis_map(marks)
-        state.update(marks=marks, box=box)
-        plots.save_state(ledger, pid, state)
+        state = plots.save_state(ledger, pid, marks=marks, box=box)
     return {"id": pid, "marks": marks, "box": box, "axes": _axes_dict(axes, marks), "counts": _counts(marks),
             "curves": _with_data(state.get("curves") or [], axes)}
 
@@ -377,11 +376,18 @@ def trace(db, plot_id, seed, box=None, n=TRACE_POINTS) -> dict:
         image = _decoded(ledger, info)
     tr = trace_curve(image, (sx, sy), box=tuple(box) if box is not None else None)
     va, ia = curve_points(tr, axes, n=n)
-    px, py = axes.to_pixel(np.asarray(va, float), np.asarray(ia, float))
+    va, ia = np.asarray(va, float), np.asarray(ia, float)
+    inside = (va >= 0) & (ia >= 0)  # a trace may run on along an axis line: that is not the curve
+    va, ia = va[inside], ia[inside]
+    if len(va) < 3:
+        raise InputError("no curve of plate voltage against current found there; click on a curve inside the plot",
+                         field="seed")
+    px, py = axes.to_pixel(va, ia)
     px, py = np.clip(np.asarray(px, float), 0, info["width"]), np.clip(np.asarray(py, float), 0, info["height"])
     return {"id": pid, "seed": [sx, sy], "px": _floats(px), "py": _floats(py), "va": _floats(va),
             "ia_ma": _floats(ia), "points": [[float(x), float(y)] for x, y in zip(px, py)],
-            "stop_left": tr.stop_left, "stop_right": tr.stop_right, "followed": int(len(tr.px))}
+            "stop_left": tr.stop_left, "stop_right": tr.stop_right, "followed": int(len(tr.px)),
+            "left_out": int((~inside).sum())}
 
 
 def set_curves(db, plot_id, curves) -> dict:
@@ -394,13 +400,18 @@ def set_curves(db, plot_id, curves) -> dict:
     with _ledger(db) as ledger:
         info, state = _state_of(ledger, pid)
         curves = _curves(curves, info)
-        state["curves"] = curves
-        plots.save_state(ledger, pid, state)
+        state = plots.save_state(ledger, pid, curves=curves)
     try:
         axes = _axis_map(state.get("marks") or [])
     except InputError:
         axes = None
     return {"id": pid, "curves": _with_data(curves, axes)}
+
+
+def _model_names():
+    from ..models import MODELS
+
+    return list(MODELS)
 
 
 def _units_of_source(db, sha) -> list:
@@ -463,19 +474,34 @@ def save(db, user, plot_id, tube, tube_type, section="", model="koren") -> dict:
     tube = plain_text(tube.strip() if isinstance(tube, str) else tube, "tube", max_len=64)
     section = plain_text(section.strip() if isinstance(section, str) else (section or ""), "section", max_len=16,
                          empty=True)
+    from ..ledger.store import _type
+    from ..models import get_model
+
+    try:
+        model = get_model(model).name
+    except (ValueError, TypeError, AttributeError):
+        raise InputError(f"unknown model {shown(str(model))[:40]!r}; one of {', '.join(_model_names())}",
+                         field="model") from None
+    if not isinstance(tube_type, str) or not tube_type.strip():
+        raise InputError("choose the tube type", field="type")
     with _ledger(db) as ledger:
         info, state = _state_of(ledger, pid)
+        with ledger.read() as s:
+            _type(s, tube_type)
     axes = _need_axes(state.get("marks") or [])
     curves = state.get("curves") or []
     if not curves:
         raise InputError("trace at least one curve first (step 3)", field="curves")
-    given, spans = [], []
+    given, spans, left_out = [], [], 0
     for i, c in enumerate(curves):
         if c.get("grid_v") is None:
             raise InputError("type this curve's grid voltage", field=f"curves[{i}].grid_v")
         p = np.asarray(c["points"], float).reshape(-1, 2)
         va, ia = axes.to_data(p[:, 0], p[:, 1])
         va, ia = np.asarray(va, float), np.asarray(ia, float)
+        inside = (va >= 0) & (ia >= 0)  # a point placed below or left of the axes is not on the plot
+        left_out += int((~inside).sum())
+        va, ia = va[inside], ia[inside]
         order = np.argsort(va, kind="stable")
         given.append((float(c["grid_v"]), _floats(va[order]), _floats(ia[order])))
         if len(va):
@@ -502,7 +528,6 @@ def save(db, user, plot_id, tube, tube_type, section="", model="koren") -> dict:
         from ..ledger.schema import now
 
         saved["at"] = now()
-        state["saved"] = saved
-        plots.add_measurements(ledger, pid, mids, state=state)
+        plots.add_measurements(ledger, pid, mids, saved=saved)
     return {"id": pid, "units": units, "measurement_ids": mids, "failed": failed, "overlay": overlay,
-            "again": saved["again"], "csv": text, "tube": tube, "section": section or None}
+            "again": saved["again"], "csv": text, "tube": tube, "section": section or None, "left_out": left_out}
