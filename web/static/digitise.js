@@ -15,7 +15,7 @@
   var statusEl = document.getElementById("digi-status");
   var errorEl = document.getElementById("digi-error");
   var COLOURS = ["#b3261e", "#1f5fa8", "#2d7d46", "#8a4fb8", "#c46a00", "#007a7a", "#6d5b00", "#b0337a"];
-  var FIT_COLOUR = "#e0007a";
+  var FIT_COLOUR = "#ffd000";
 
   var view = { scale: 1, ox: 0, oy: 0 };
   var img = new Image();
@@ -45,6 +45,15 @@
   function clearProblem() { errorEl.textContent = ""; }
   function say(text) { statusEl.textContent = text; }
 
+  // every change goes out one at a time, in order, each with the state as it is when sent, so a
+  // slow answer can never put older work back over newer
+  var queue = Promise.resolve();
+  function inTurn(fn) {
+    var p = queue.then(fn, fn);
+    queue = p.catch(function () { return null; });
+    return p;
+  }
+
   var timers = {};
   function later(key, fn, ms) {
     clearTimeout(timers[key]);
@@ -62,7 +71,9 @@
     });
     return { marks: out, idx: idx };
   }
-  function saveAxes() {
+  function saveAxes() { return inTurn(sendAxes); }
+  function saveCurves() { return inTurn(sendCurves); }
+  function sendAxes() {
     var c = completeMarks();
     return call("PUT", "/axes", { marks: c.marks, box: st.box }).then(function (d) {
       clearProblem();
@@ -73,8 +84,7 @@
       }
       st.counts = d.counts;
       mergeData(d.curves);
-      renderMarks();
-      renderCurves();
+      updateMarks();
       draw();
     }, function (e) {
       var m = /^marks\[(\d+)\]/.exec(e.field || "");
@@ -90,11 +100,11 @@
       return out;
     });
   }
-  function saveCurves() {
+  function sendCurves() {
     return call("PUT", "/curves", { curves: curvesBody() }).then(function (d) {
       clearProblem();
       mergeData(d.curves);
-      renderCurves();
+      updateCurves();
     }, problem);
   }
   function mergeData(curves) {
@@ -168,11 +178,14 @@
       ctx.setLineDash([]);
     }
     if (boxCorner) { var q = toScreen(boxCorner[0], boxCorner[1]); dot(q[0], q[1], 5, "#a65f00"); }
-    // the fit, drawn back
+    // the fit, drawn back as a broad translucent band under the points: a point off the band
+    // is a point the fit does not follow
     if (st.saved && st.saved.overlay) {
-      ctx.setLineDash([10, 6]);
-      ctx.lineWidth = 2.5;
+      ctx.lineWidth = 8;
+      ctx.lineCap = "round";
+      ctx.lineJoin = "round";
       ctx.strokeStyle = FIT_COLOUR;
+      ctx.globalAlpha = 0.75;
       st.saved.overlay.forEach(function (o) {
         ctx.beginPath();
         for (var i = 0; i < o.px.length; i++) {
@@ -181,7 +194,8 @@
         }
         ctx.stroke();
       });
-      ctx.setLineDash([]);
+      ctx.globalAlpha = 1;
+      ctx.lineCap = "butt";
     }
     // the curves
     st.curves.forEach(function (c, ci) {
@@ -253,8 +267,6 @@
     body.textContent = "";
     st.marks.forEach(function (m, i) {
       var tr = document.createElement("tr");
-      var res = st.residuals && st.residuals[i];
-      if (res && res.worst) { tr.className = "worst"; }
       cell(tr, String(i + 1));
       var sel = document.createElement("select");
       sel.setAttribute("aria-label", "axis of mark " + (i + 1));
@@ -274,11 +286,21 @@
       inp.addEventListener("input", function () { m.value = inp.value.trim(); draw(); later("axes", saveAxes, 600); });
       inp.addEventListener("keydown", function (e) { if (e.key === "Enter") { later("axes", saveAxes, 0); } });
       cell(tr, inp);
-      cell(tr, res ? res.off.toFixed(1) + " px" : "—").className = "num";
+      cell(tr, "").className = "num off";
       cell(tr, button("✕", "delete mark " + (i + 1), function () {
         st.marks.splice(i, 1); st.residuals = {}; renderMarks(); draw(); saveAxes();
       }));
       body.appendChild(tr);
+    });
+    updateMarks();
+  }
+  // the server's answer shown in place (rebuilding the rows would take the focus from a value
+  // being typed)
+  function updateMarks() {
+    document.querySelectorAll("#marks tbody tr").forEach(function (tr, i) {
+      var res = st.residuals && st.residuals[i];
+      tr.classList.toggle("worst", Boolean(res && res.worst));
+      tr.querySelector("td.off").textContent = res ? res.off.toFixed(1) + " px" : "—";
     });
     var sum = document.getElementById("axes-summary");
     var counts = { va: 0, ia: 0 };
@@ -315,12 +337,18 @@
       inp.setAttribute("aria-label", "grid voltage of curve " + (i + 1));
       inp.addEventListener("input", function () { c.grid_v = inp.value.trim(); draw(); later("curves", saveCurves, 600); });
       cell(tr, inp);
-      cell(tr, String(c.points.length)).className = "num";
+      cell(tr, "").className = "num count";
       cell(tr, button("✕", "delete curve " + (i + 1), function () {
         st.curves.splice(i, 1); selected = Math.min(selected, Math.max(0, st.curves.length - 1));
         renderCurves(); draw(); saveCurves();
       }));
       body.appendChild(tr);
+    });
+    updateCurves();
+  }
+  function updateCurves() {
+    document.querySelectorAll("#curves tbody tr").forEach(function (tr, i) {
+      if (st.curves[i]) { tr.querySelector("td.count").textContent = String(st.curves[i].points.length); }
     });
     document.getElementById("state-3").textContent = st.curves.length ? "(" + st.curves.length + ")" : "";
     renderEdit();
@@ -353,7 +381,7 @@
     var h = document.createElement("p");
     h.className = d.failed ? "error" : "ok";
     h.textContent = (d.earlier ? "Saved earlier. " : "") + (d.failed ? "Stored, but the fit failed:" :
-      "Stored and fitted; the fit is drawn over the image as dashed lines.");
+      "Stored and fitted. The fit is drawn over the image as a yellow band under the points.");
     out.appendChild(h);
     (d.units || []).forEach(function (u) {
       var p = document.createElement("p");
@@ -362,7 +390,7 @@
       a.textContent = u.tube + (u.section ? ":" + u.section : "");
       p.appendChild(a);
       var t = " — " + u.fit.model + (u.fit.converged ? (u.fit.rms_ma !== undefined && u.fit.rms_ma !== null ?
-        ", rms " + Number(u.fit.rms_ma).toPrecision(3) + " mA between the points and the fit" : "") :
+        ", points off the fit by " + Number(u.fit.rms_ma).toPrecision(2) + " mA rms" : "") :
         ", failed" + (u.fit.failure ? ": " + u.fit.failure : ""));
       p.appendChild(document.createTextNode(t));
       p.className = "unit";
@@ -401,7 +429,7 @@
       saveAxes();
     } else if (step === 3) {
       say("Following the curve…");
-      call("POST", "/trace", { seed: p, box: st.box }).then(function (d) {
+      inTurn(function () { return call("POST", "/trace", { seed: p, box: st.box }); }).then(function (d) {
         st.curves.push({ grid_v: "", points: d.points, seed: d.seed, va: d.va, ia_ma: d.ia_ma });
         selected = st.curves.length - 1;
         renderCurves();
@@ -409,7 +437,7 @@
         var inputs = document.querySelectorAll("#curves input.grid-v");
         inputs[inputs.length - 1].focus();
         say("Curve " + st.curves.length + ": " + d.points.length + " points. Type its grid voltage.");
-        return saveCurves();
+        saveCurves();
       }, function (e) { say("No curve found there."); problem(e); });
     } else if (step === 4) {
       var c = st.curves[selected];
@@ -511,7 +539,9 @@
     say("Saving and fitting…");
     // pending edits first, so the server saves what is on the screen
     clearTimeout(timers.axes); clearTimeout(timers.curves);
-    saveAxes().then(saveCurves).then(function () {
+    saveAxes();
+    saveCurves();
+    inTurn(function () {
       if (errorEl.textContent) { throw { message: errorEl.textContent }; }
       return call("POST", "/measurement", body);
     }).then(function (d) {
@@ -525,6 +555,7 @@
   window.addEventListener("resize", function () { size(); draw(); });
 
   // -- start: the image and the stored work -------------------------------------------------
+  canvas.style.aspectRatio = W + " / " + H;  // the view takes the image's shape (up to a height limit)
   size();
   draw();
   img.addEventListener("load", function () {
@@ -551,7 +582,7 @@
     renderMarks();
     renderCurves();
     renderBox();
-    var first = !d.axes ? 1 : (d.curves.length ? 4 : 3);
+    var first = d.saved ? 5 : (!d.axes ? 1 : (d.curves.length ? 4 : 3));
     setStep(first);
     root.dataset.loaded = "1";
   }, problem);
