@@ -104,6 +104,9 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
     # the marks are matplotlib's own tick pixels, so a straight map fits them to a fraction of a pixel
     assert len(axes["residuals"]) == 6 and axes["rms_px"] < 0.5 and axes["worst"] is None
 
+    from fitter.service.digitise import image_cache
+
+    misses = image_cache.misses
     curves = []
     for vg, px, py in page.seeds:
         t = c.post(base + "/trace", json={"seed": [px, py]}, headers=h)
@@ -114,6 +117,7 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
         truth = page.truth_ma(np.array(d["va"]), vg)
         assert np.max(np.abs(np.array(d["ia_ma"]) - truth)) < 0.02 * page.spec.ia_max_ma
         curves.append({"grid_v": vg, "points": d["points"], "seed": d["seed"]})
+    assert image_cache.misses == misses  # decoded once, at the upload: every trace found it in the cache
     # a hand correction: one point moved by two pixels down
     curves[0]["points"][5] = [curves[0]["points"][5][0], curves[0]["points"][5][1] + 2.0]
     r = c.put(base + "/curves", json={"curves": curves}, headers=h)
@@ -284,3 +288,52 @@ def test_the_pages_upload_and_open_the_work_and_the_script_needs_the_csrf_token(
     r = c.put(f"/api/v1/plots/{pid}/axes", json=marks, headers={"X-CSRF-Token": token})
     assert r.status_code == 200 and r.get_json()["axes"] is not None
     assert c.get(f"/api/v1/plots/{pid}").get_json()["counts"] == {"va": 2, "ia": 2}
+
+
+# -- generated requests (schemathesis) against a plot that exists -------------------------------
+
+PLOT_OPS = [(m.upper(), path) for path, ops in __import__("web.api", fromlist=["OPENAPI"]).OPENAPI["paths"].items()
+            if path.startswith("/plots") for m in ops]
+
+
+@pytest.fixture(scope="module")
+def plot_schema(tmp_path_factory, page):
+    """(schema, editor token, plot id): a ledger of its own with the sheet uploaded and its axes set."""
+    import schemathesis
+
+    from fitter.service import accounts
+    from fitter.service import digitise as svc
+    from web import create_app
+
+    from .webtools import PASSWORD, VA, VG
+
+    db = str(tmp_path_factory.mktemp("plots-schema") / "ledger.sqlite")
+    stock.init(db)
+    stock.add_type(db, "setup", "DT", VA, VG)
+    accounts.add_account(db, "editor1", "editor", PASSWORD)
+    pid = svc.upload_plot(db, "setup", "sheet.png", page.data)["id"]
+    svc.set_axes(db, pid, _marks(page), list(page.box))
+    app = create_app({"LEDGER": db, "SECRET_KEY": "plots-schema-key", "SIGNIN_BACKOFF_S": 1.0})
+    return schemathesis.openapi.from_wsgi("/api/v1/openapi.json", app), accounts.new_token(db, "editor1").data["token"], pid
+
+
+@pytest.mark.parametrize(("method", "path"), PLOT_OPS, ids=[f"{m} {p}" for m, p in PLOT_OPS])
+def test_generated_requests_on_a_real_plot_get_no_server_error(plot_schema, method, path):
+    from hypothesis import HealthCheck, given, settings
+    from schemathesis import GenerationMode
+    from schemathesis.checks import not_a_server_error
+    from schemathesis.specs.openapi.checks import response_schema_conformance, status_code_conformance
+
+    schema, token, pid = plot_schema
+    op = schema[path][method]
+
+    @given(op.as_strategy(generation_mode=GenerationMode.POSITIVE))
+    @settings(max_examples=25, deadline=None, derandomize=True, database=None,
+              suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
+    def run(case):
+        if "{id}" in path:
+            case.path_parameters = {"id": pid}  # the plot that exists, so the steps' own checks run
+        case.call_and_validate(headers={"Authorization": f"Bearer {token}"},
+                               checks=[not_a_server_error, status_code_conformance, response_schema_conformance])
+
+    run()
