@@ -313,10 +313,14 @@
       sum.textContent = "Still needed: " + need.join(", ") + ".";
       document.getElementById("state-1").textContent = "";
     } else if (st.axes) {
-      sum.className = st.axes.worst !== null ? "warn" : "ok";
-      sum.textContent = "Axes set: the marks agree to " + st.axes.rms_px.toFixed(2) + " px (rms)." +
-        (st.axes.worst_message ? " " + st.axes.worst_message.charAt(0).toUpperCase() + st.axes.worst_message.slice(1) + "." : "");
-      document.getElementById("state-1").textContent = "✓";
+      var worst = -1;
+      st.marks.forEach(function (m, i) { if (st.residuals[i] && st.residuals[i].worst) { worst = i; } });
+      var w = st.marks[worst];
+      sum.className = w ? "warn" : "ok";
+      sum.textContent = "Axes set. The marks lie " + st.axes.rms_px.toFixed(2) + " px (rms) off the fitted axes." +
+        (w ? " Mark " + (worst + 1) + " (" + (w.axis === "va" ? "plate voltage " : "current ") + w.value + ") is " +
+          st.residuals[worst].off.toFixed(1) + " px from where the other marks put that value: check its position and value." : "");
+      document.getElementById("state-1").textContent = w ? "check mark " + (worst + 1) : "✓";
     }
   }
   function renderCurves() {
