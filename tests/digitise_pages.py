@@ -35,9 +35,11 @@ from pathlib import Path
 
 import numpy as np
 
+from fitter.digitise import AxisMark, curve_points, curves_to_wide_csv, fit_axes, load_image, trace_curve
 from fitter.models import get_model
 
-__all__ = ["PageSpec", "Page", "PAGES", "SPECS", "make_page", "all_pages"]
+__all__ = ["PageSpec", "Page", "PAGES", "SPECS", "make_page", "all_pages", "digitise_page", "page_errors",
+           "mid_point"]
 
 
 @dataclass(frozen=True)
@@ -105,7 +107,7 @@ SPECS: dict[str, PageSpec] = {
         seed=11),
     "power": PageSpec(
         name="power", title="TYPE PW-4 (invented) - average plate characteristics",
-        model="dempwolf", params=dict(G=6.5e-4, mu=4.3, gamma=1.38, C=2.6),
+        model="dempwolf", params=dict(G=6.5e-4, mu=4.3, gamma=1.38, C=1.2),
         grid_voltages=(0.0, -10.0, -20.0, -30.0, -40.0, -50.0, -60.0, -70.0, -80.0),
         va_max=500.0, ia_max_ma=200.0, va_step=50.0, ia_step_ma=20.0, minor=5,
         load_line=(450.0, 180.0), rotate_deg=-1.2, blur_px=0.9, noise=0.03, fmt="jpeg", jpeg_quality=70,
@@ -264,6 +266,55 @@ def make_page(name: str) -> Page:
 
 def all_pages() -> list[Page]:
     return [make_page(n) for n in PAGES]
+
+
+# ---------------------------------------------------------------------------
+# A simulated user, and the comparison with the truth (tests/test_digitise.py, bench/digitise.py)
+# ---------------------------------------------------------------------------
+
+
+def digitise_page(page, rng):
+    """What a user does: click every tick mark (+/- 1 px), click each curve once (+/- 1 px),
+    name its grid voltage; then the engine's steps.  Returns (axis map, traces, CSV text)."""
+    img = load_image(page.data, page.spec.name)
+    marks = [AxisMark(x + rng.uniform(-1, 1), y + rng.uniform(-1, 1), axis, v) for x, y, axis, v in page.ticks]
+    axes = fit_axes(marks)
+    curves, traces = [], []
+    for vg, sx, sy in page.seeds:
+        tr = trace_curve(img, (sx + rng.uniform(-1, 1), sy + rng.uniform(-1, 1)), box=page.box)
+        traces.append(tr)
+        va, ia = curve_points(tr, axes, n=40)
+        curves.append((vg, va, ia))
+    text = curves_to_wide_csv(curves, tube=f"SHEET-{page.spec.name}", note="synthetic page (invented tube)")
+    return axes, traces, text
+
+
+def page_errors(page, fit):
+    """(largest current error as a fraction of full scale over every drawn curve, and the
+    relative errors of gm, rp, mu at the mid-range point) of a fit against the page's truth."""
+    m = get_model(page.spec.model)
+    fs = page.spec.ia_max_ma  # full scale: the current axis' top
+    worst = 0.0
+    for vg, (lo, hi) in zip(page.spec.grid_voltages, page.spans):
+        va = np.linspace(lo, hi, 300)
+        diff = m.current(va, np.full_like(va, vg), **fit.triode.params) * 1e3 - page.truth_ma(va, vg)
+        worst = max(worst, float(np.abs(diff).max()) / fs)
+    va0, vg0 = mid_point(page)
+    ss = fit.triode.small_signal(va0, vg0, check=False)
+    dva, dvg = m.voltage_gradient(va0, vg0, **m.full_params(page.spec.params))
+    gm, rp = float(dvg), 1.0 / float(dva)
+    return worst, {"gm": ss.gm / gm - 1.0, "rp": ss.rp / rp - 1.0, "mu": ss.mu / (gm * rp) - 1.0}
+
+
+def mid_point(page):
+    """The middle grid curve, where its truth current is 40 % of full scale (common practice:
+    an operating point in the middle of the plotted family)."""
+    gv = page.spec.grid_voltages
+    k = len(gv) // 2
+    lo, hi = page.spans[k]
+    va = np.linspace(lo, hi, 4001)
+    ia = page.truth_ma(va, gv[k])
+    return float(va[np.searchsorted(ia, 0.4 * page.spec.ia_max_ma)]), float(gv[k])
 
 
 if __name__ == "__main__":

@@ -59,16 +59,18 @@ def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarra
         seg = np.hypot(np.diff(px), np.diff(py))
         s = np.concatenate([[0.0], np.cumsum(seg)])
         targets = np.linspace(s[0], s[-1], n)
-        # each kept point: the mean of the trace within AVERAGE_PX along the curve (fewer at the ends)
-        lo = np.searchsorted(s, targets - AVERAGE_PX, side="left")
-        hi = np.searchsorted(s, targets + AVERAGE_PX, side="right")
+        # the trace point nearest each target; targets that fall in one gap of the trace (a
+        # bridged crossing) land on one point, kept once
+        centre = np.clip(np.searchsorted(s, targets), 0, px.size - 1)
+        centre = np.unique(centre)
+        # each kept point: the mean of the trace within AVERAGE_PX along the curve, the window
+        # made symmetric about the point (so at the ends the ends stay the ends)
+        lo = np.searchsorted(s, s[centre] - AVERAGE_PX, side="left")
+        hi = np.searchsorted(s, s[centre] + AVERAGE_PX, side="right")
+        half = np.maximum(np.minimum(centre - lo, hi - 1 - centre), 0)
+        lo, hi = centre - half, centre + half + 1
         cx = np.concatenate([[0.0], np.cumsum(px)])
         cy = np.concatenate([[0.0], np.cumsum(py)])
-        # at the ends the window is made symmetric about the target so the ends stay the ends
-        centre = np.clip(np.searchsorted(s, targets), 0, px.size - 1)
-        half = np.minimum(centre - lo, hi - 1 - centre)
-        half = np.maximum(half, 0)
-        lo, hi = centre - half, centre + half + 1
         cnt = hi - lo
         px = (cx[hi] - cx[lo]) / cnt
         py = (cy[hi] - cy[lo]) / cnt

@@ -143,8 +143,8 @@ def load_image(data: bytes, name: str = "image") -> PlotImage:
     except MemoryError:
         raise _bad(name, "not enough memory to decode this image") from None
     except Exception as e:  # Pillow reports corrupt input with many exception types
-        what = "truncated" if "truncated" in str(e).lower() else "corrupt or unreadable"
-        raise _bad(name, f"the {fmt.upper()} file is {what} ({type(e).__name__}: {str(e)[:120]})") from None
+        raise _bad(name, f"the {fmt.upper()} file cannot be decoded: it is truncated or corrupt "
+                         f"({type(e).__name__}: {str(e)[:120]})") from None
     ink = ink_from_rgb(rgb)
     return PlotImage(ink=ink, width=int(ink.shape[1]), height=int(ink.shape[0]), format=fmt)
 
@@ -170,9 +170,26 @@ def _as_rgb(img) -> np.ndarray:
     return a
 
 
+def _interp_matrix(n_out: int, n_blocks: int, block: int) -> np.ndarray:
+    """(n_out, n_blocks) weights of linear interpolation between block centres (held flat
+    beyond the first and last centre)."""
+    centres = (np.arange(n_blocks) + 0.5) * block - 0.5
+    pos = np.clip(np.arange(n_out, dtype=np.float64), centres[0], centres[-1])
+    m = np.zeros((n_out, n_blocks), dtype=np.float32)
+    if n_blocks == 1:
+        m[:, 0] = 1.0
+        return m
+    j = np.clip(np.searchsorted(centres, pos, side="right") - 1, 0, n_blocks - 2)
+    t = (pos - centres[j]) / block
+    rows = np.arange(n_out)
+    m[rows, j] = 1.0 - t
+    m[rows, j + 1] = t
+    return m
+
+
 def _paper(channel: np.ndarray) -> np.ndarray:
     """The paper level of one channel at every pixel (see the module's notes)."""
-    from scipy.ndimage import maximum_filter, zoom
+    from scipy.ndimage import maximum_filter
 
     h, w = channel.shape
     nby, nbx = max(1, h // _BLOCK), max(1, w // _BLOCK)
@@ -183,10 +200,8 @@ def _paper(channel: np.ndarray) -> np.ndarray:
     level = np.percentile(sample, 90, axis=2).astype(np.float32)
     level = maximum_filter(level, size=3, mode="nearest")
     level = np.maximum(level, 0.15)
-    if level.size == 1:
-        return np.full(channel.shape, float(level[0, 0]), dtype=np.float32)
-    full = zoom(level, (h / nby, w / nbx), order=1, mode="nearest", grid_mode=True)
-    return full[:h, :w].astype(np.float32)
+    # bilinear between block centres, as two small matrix products
+    return _interp_matrix(h, nby, by) @ level @ _interp_matrix(w, nbx, bx).T
 
 
 def ink_from_rgb(rgb: np.ndarray) -> np.ndarray:

@@ -20,8 +20,8 @@ end, found by one vectorised pass over that stretch).  It predicts the row from 
 through the last few, so the slope carries it), and takes the run of ink nearest the
 prediction within a window that widens with the slope and with the columns it has had to
 bridge.  A run is accepted only if its length fits the line being followed (the line's own
-thickness plus the rise across one column); a longer run is a crossing, and the column is
-bridged on the prediction instead:
+thickness plus the rise across one column; not under half of that, not much over it) and
+its centre is close to the prediction; otherwise the column is bridged on the prediction:
 
 * a vertical grid line, an axis or a tick makes a long run in its column (a rotated page's
   grid line a run of tens of pixels);
@@ -32,7 +32,9 @@ bridged on the prediction instead:
   the prediction than the curve.
 
 The point of an accepted column is the ink-weighted centre of its run (one pixel of margin
-either side, so a blurred line's edges count), which gives the row to a fraction of a pixel.
+either side, so a blurred line's edges count), which gives the row to a fraction of a pixel;
+of a run somewhat longer than the line (something starting to touch it), only its core
+nearest the prediction, or the part where the line is expected, counts.
 The tracer stops at the box's edge ("box"; "edge" when the box is the whole image), where
 the line runs straight and level for :data:`FLAT_PX` columns (it has run into an axis or a grid line: the
 level stretch is dropped, "end of line"), when no ink is found near the prediction over :data:`GAP_PX` pixels of its length ("end of line"), or when it has
@@ -62,6 +64,8 @@ SEED_RADIUS_PX = 5
 _HISTORY = 8
 #: columns dropped where a line ends (its last column is cut off square, so its centre is off)
 _END_TRIM = 2
+#: columns of a level stretch kept (where the curve meets the axis it runs into)
+_FLAT_KEEP = 10
 #: a line followed this many columns straight (rms FLAT_TOL_PX) and level (slope at most
 #: FLAT_SLOPE, a rotated page's axis included) is an axis or a grid line that the curve has
 #: run into: a triode's plate curve is never level that long except where it lies on the
@@ -88,32 +92,55 @@ class Trace:
 
 def _column(ink: np.ndarray, x: int, lo: int, hi: int):
     """Runs of ink in column x between rows lo and hi: (starts, ends (exclusive), values of
-    rows lo..hi as floats).  A run cut by lo or hi is reported as far as it is seen."""
+    rows lo..hi).  A run cut by lo or hi is reported as far as it is seen."""
     col = ink[lo:hi, x]
-    m = np.empty(hi - lo + 2, dtype=np.int8)
-    m[0] = m[-1] = 0
-    np.greater(col, INK_THRESHOLD, out=m[1:-1], casting="unsafe")
-    edges = np.flatnonzero(np.diff(m)) + lo
-    e = edges.tolist()
+    b = col > INK_THRESHOLD
+    e = (np.flatnonzero(b[1:] != b[:-1]) + (lo + 1)).tolist()
+    if b[0]:
+        e.insert(0, lo)
+    if b[-1]:
+        e.append(hi)
     return e[0::2], e[1::2], col
 
 
-def _centre(col, lo: int, s: int, e: int) -> float:
-    """Ink-weighted centre row of the run [s, e) (one pixel of margin each side; ``col`` holds
-    the column's values from row ``lo``)."""
-    a = max(s - 1 - lo, 0)
-    b = min(e + 1 - lo, col.shape[0])
+def _centre(col, lo: int, s: int, e: int, margin: int = 1) -> float:
+    """Ink-weighted centre row of the run [s, e) (``margin`` pixels more each side; ``col``
+    holds the column's values from row ``lo``)."""
+    a = max(s - margin - lo, 0)
+    b = min(e + margin - lo, col.shape[0])
     vals = col[a:b].tolist()
     tot = 0.0
     mom = 0.0
     for i, v in enumerate(vals):
-        v -= 0.1
+        v -= 0.3
         if v > 0.0:
             tot += v
             mom += v * i
     if tot <= 0.0:
         return 0.5 * (s + e - 1)
     return lo + a + mom / tot
+
+
+def _touched_centre(col, lo: int, s: int, e: int, yp: float, expect: float) -> float:
+    """Centre of the line in a run longer than the line: something touches it (a crossing
+    line, a label).  Where the run has two or more cores (pixels above 70 % of its darkest,
+    parted by lighter ones), the core nearest the prediction ``yp``; otherwise the part of
+    the run within half the expected length of the prediction."""
+    vals = col[s - lo:e - lo].tolist()
+    top = 0.7 * max(vals)
+    cores = []
+    start = None
+    for i, v in enumerate(vals + [0.0]):
+        if v > top and start is None:
+            start = i
+        elif v <= top and start is not None:
+            cores.append((s + start, s + i))
+            start = None
+    if len(cores) > 1:
+        a, b = min(cores, key=lambda c: max(c[0] - yp, yp - (c[1] - 1), 0.0))
+        return _centre(col, lo, a, b)
+    half = 0.5 * expect
+    return _centre(col, lo, max(s, int(math.floor(yp - half))), min(e, int(math.ceil(yp + half)) + 1), 0)
 
 
 def _predict(hx: list, hy: list, x: int) -> tuple[float, float]:
@@ -144,14 +171,22 @@ def _flat(xs: list, ys: list) -> bool:
     (rms distance from it at most FLAT_TOL_PX), over about as many columns."""
     if len(xs) < FLAT_PX or abs(xs[-1] - xs[-FLAT_PX]) > 1.5 * FLAT_PX:
         return False
-    x = np.asarray(xs[-FLAT_PX:], float)
-    y = np.asarray(ys[-FLAT_PX:], float)
-    x = x - x.mean()
-    y = y - y.mean()
-    slope = float((x * y).sum() / (x * x).sum())
+    x = xs[-FLAT_PX:]
+    y = ys[-FLAT_PX:]
+    mx = sum(x) / FLAT_PX
+    my = sum(y) / FLAT_PX
+    sxx = sxy = syy = 0.0
+    for u, v in zip(x, y):
+        u -= mx
+        v -= my
+        sxx += u * u
+        sxy += u * v
+        syy += v * v
+    slope = sxy / sxx
     if abs(slope) > FLAT_SLOPE:
         return False
-    return float(np.sqrt(np.mean((y - slope * x) ** 2))) <= FLAT_TOL_PX
+    # residual sum of squares of the least-squares line: syy - sxy^2 / sxx
+    return max(syy - slope * sxy, 0.0) / FLAT_PX <= FLAT_TOL_PX ** 2
 
 
 def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list, list, str, float]:
@@ -195,9 +230,17 @@ def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list
         if best is not None:
             s, e = best
             length = e - s
-            if length <= limit:
-                y = _centre(col, lo, s, e)
-                if abs(y - yp) <= win:
+            # a run much shorter than the line is not the line either (a thin grid line
+            # where the curve has ended)
+            if 0.5 * expect - 0.5 <= length <= limit:
+                if length <= expect + 0.75:
+                    y = _centre(col, lo, s, e)
+                else:
+                    y = _touched_centre(col, lo, s, e, yp, expect)
+                # the line's centre stays close to the prediction (continuity of slope): a
+                # run further off is something else the window caught (a grid line where the
+                # curve ends, the other line of a crossing)
+                if abs(y - yp) <= 1.0 + 0.5 * thick + 0.5 * a + 0.5 * since * (1.0 + a):
                     hx.append(x)
                     hy.append(y)
                     out_x.append(x)
@@ -210,7 +253,7 @@ def _follow(ink, box, hx: list, hy: list, step: int, thick: float) -> tuple[list
                     bridged = 0
                     if len(out_x) % 8 == 0 and _flat(out_x, out_y):
                         # an axis or a grid line the curve has run into: drop the straight stretch
-                        del out_x[-FLAT_PX:], out_y[-FLAT_PX:]
+                        del out_x[len(out_x) - FLAT_PX + _FLAT_KEEP:], out_y[len(out_y) - FLAT_PX + _FLAT_KEEP:]
                         return out_x, out_y, "end of line", thick
                     continue
             bridged += 1
