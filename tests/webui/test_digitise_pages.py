@@ -149,6 +149,9 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
             assert m.instrument == INSTRUMENT and m.id in d["measurement_ids"]
     finally:
         led.close()
+    # the same curves saved again: recognised (same bytes), nothing stored twice, the same unit
+    r2 = c.post(base + "/measurement", json={"tube": "MC7-SHEET", "type": "DT"}, headers=h)
+    assert r2.status_code == 201 and r2.get_json()["again"] and [x["id"] for x in r2.get_json()["units"]] == [u["id"]]
     # a reload (or another device) finds the work where it was
     again = c.get(base, headers=h).get_json()
     assert len(again["marks"]) == 6 and again["box"] == list(page.box) and len(again["curves"]) == len(curves)
@@ -209,6 +212,17 @@ def test_bad_input_names_the_field(editor_api, page):
                                ("post", "/api/v1/plots/999/measurement", save)):
         assert _err(getattr(c, method)(path, json=body, headers=h), 404)["field"] == "id"
     assert _err(c.get("/api/v1/plots/abc", headers=h))["field"] == "id"
+
+
+def test_an_image_over_the_size_limit_is_refused_before_it_is_read(fresh):
+    from fitter.digitise import MAX_IMAGE_BYTES
+    from fitter.errors import InputError
+    from fitter.service import digitise as svc
+
+    with pytest.raises(InputError, match="at most") as e:
+        svc.upload_plot(fresh, "ann", "huge.png", b"\x89PNG\r\n\x1a\n" + bytes(MAX_IMAGE_BYTES))
+    assert e.value.field == "file"
+    assert svc.list_plots(fresh) == []
 
 
 def test_a_failed_fit_is_stored_and_reported_as_failed(editor_api, page):
