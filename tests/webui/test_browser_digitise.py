@@ -114,7 +114,7 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
     ia_ticks = [t for t in sheet.ticks if t[2] == "ia"]
     marks = [va_ticks[1], va_ticks[len(va_ticks) // 2], va_ticks[-2], ia_ticks[1], ia_ticks[len(ia_ticks) // 2],
              ia_ticks[-2]]
-    dialogs, errors = [], []
+    dialogs, errors, refused = [], [], []
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
         try:
@@ -126,7 +126,7 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
                 page.on("console", lambda m: errors.append(m.text) if m.type == "error"
                         and not m.text.startswith("Failed to load resource") else None)
                 # every answer an error but the browser's own favicon request
-                page.on("response", lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400
+                page.on("response", lambda r: refused.append((r.status, r.url.split("/", 3)[3])) if r.status >= 400
                         and not r.url.endswith("/favicon.ico") else None)
                 page.goto(server + "/digitise")
                 assert "/signin" in page.url
@@ -175,6 +175,16 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
                     page.click(f"#marks button[aria-label='delete mark {len(marks) + 1}']")
                     page.wait_for_function("() => !document.querySelector('#marks tbody tr.worst')")
                     assert page.locator("#marks tbody tr").count() == len(marks)
+                    # the value of another mark of that axis: refused, the mark named in the page's words
+                    _click_image(page, px, py)
+                    page.keyboard.type(f"{marks[0][3]:g}")
+                    page.keyboard.press("Enter")
+                    page.click("#zoom-fit")
+                    page.wait_for_function("() => document.getElementById('digi-error').textContent !== ''")
+                    assert page.inner_text("#digi-error").startswith(f"Mark {len(marks) + 1} value: has the same value"), page.inner_text("#digi-error")
+                    page.screenshot(path=str(shots / f"digitise-{size}-2c-same-value.png"), full_page=True)
+                    page.click(f"#marks button[aria-label='delete mark {len(marks) + 1}']")
+                    page.wait_for_function("() => document.getElementById('digi-error').textContent === ''")
 
                 # step 2: the plot area, two corners
                 page.click("button.next[data-go='2']")
@@ -257,3 +267,4 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
         finally:
             browser.close()
     assert dialogs == [] and errors == [], (dialogs, errors)
+    assert refused == [(400, "api/v1/plots/1/axes")]  # only the value typed twice on purpose (laptop, plot 1)

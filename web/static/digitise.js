@@ -38,9 +38,18 @@
       });
     });
   }
+  // the API's field names in the page's words: marks[2].value -> mark 3 value
+  function fieldWords(f) {
+    return String(f).replace(/^marks\[(\d+)\]/, function (_, k) { return "mark " + (Number(k) + 1); })
+      .replace(/^curves\[(\d+)\]/, function (_, k) { return "curve " + (Number(k) + 1); })
+      .replace(/\.points\[(\d+)\]/, function (_, k) { return " point " + (Number(k) + 1); })
+      .replace(".grid_v", " grid voltage").replace(".value", " value").replace(".px", " position")
+      .replace(/^seed$/, "the click").replace(/^box$/, "plot area");
+  }
   function problem(e) {
-    var where = e.field ? e.field + ": " : "";
-    errorEl.textContent = where + (e.message || String(e));
+    var where = e.field ? fieldWords(e.field) + ": " : "";
+    var text = where + (e.message || String(e));
+    errorEl.textContent = text.charAt(0).toUpperCase() + text.slice(1);
   }
   function clearProblem() { errorEl.textContent = ""; }
   function say(text) { statusEl.textContent = text; }
@@ -87,8 +96,11 @@
       updateMarks();
       draw();
     }, function (e) {
-      var m = /^marks\[(\d+)\]/.exec(e.field || "");
-      if (m) { e.field = "mark " + (c.idx[Number(m[1])] + 1) + (e.field.slice(m[0].length) || ""); }
+      var m = /^marks\[(\d+)\]/.exec(e.field || "");  // the server counts only the marks sent
+      if (m) { e.field = "marks[" + c.idx[Number(m[1])] + "]" + e.field.slice(m[0].length); }
+      e.message = String(e.message || "").replace(/marks\[(\d+)\]/g, function (_, k) {
+        return "mark " + (c.idx[Number(k)] + 1);
+      });
       problem(e);
     });
   }
