@@ -21,7 +21,7 @@
   var img = new Image();
   var ready = false;
   var st = { marks: [], box: null, curves: [], axes: null, saved: null };
-  var step = 1, selected = 0, boxCorner = null, drag = null, lastPointer = null;
+  var step = 1, selected = 0, boxCorner = null, drag = null, reach = 12;
 
   // -- talking to the server ------------------------------------------------------------------
   function call(method, path, body) {
@@ -463,7 +463,7 @@
         c.points.push(p);
         c.points.sort(function (a, b) { return a[0] - b[0]; });
       } else if (tool === "delete") {
-        var k = nearestPoint(c, sx, sy, 12);
+        var k = nearestPoint(c, sx, sy, reach);
         if (k < 0) { say("No point of this curve there."); return; }
         c.points.splice(k, 1);
       } else {
@@ -482,14 +482,14 @@
   canvas.addEventListener("pointerdown", function (e) {
     var s = pos(e);
     canvas.setPointerCapture(e.pointerId);
+    reach = e.pointerType === "touch" ? 24 : 12;  // how near a point a press must be to take it [px]
     drag = { start: s, last: s, moved: false, point: -1 };
     if (step === 4 && st.curves[selected] && document.querySelector("input[name=tool]:checked").value === "move") {
-      drag.point = nearestPoint(st.curves[selected], s[0], s[1], 12);
+      drag.point = nearestPoint(st.curves[selected], s[0], s[1], reach);
     }
   });
   canvas.addEventListener("pointermove", function (e) {
     var s = pos(e);
-    lastPointer = s;
     if (!drag) { return; }
     if (!drag.moved && Math.abs(s[0] - drag.start[0]) + Math.abs(s[1] - drag.start[1]) < 5) { return; }
     drag.moved = true;
