@@ -10,7 +10,7 @@ change, so a reload or another device resumes where the user was.
 
 from __future__ import annotations
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from ..errors import InputError
 from .db import Ledger
@@ -22,9 +22,9 @@ __all__ = ["add_plot", "plot_row", "plot_content", "save_state", "add_measuremen
 EMPTY_STATE = {"marks": [], "box": None, "curves": [], "saved": None}
 
 
-def _info(r: PlotImageRow) -> dict:
+def _info(r: PlotImageRow, size: int | None = None) -> dict:
     return {"id": r.id, "name": r.name, "sha256": r.sha256, "format": r.format, "width": r.width,
-            "height": r.height, "size": len(r.content) if r.content is not None else None,
+            "height": r.height, "size": size,
             "uploaded_at": r.uploaded_at, "uploaded_by": r.uploaded_by, "updated_at": r.updated_at,
             "state": dict(r.state or EMPTY_STATE), "measurement_ids": list(r.measurement_ids or [])}
 
@@ -59,7 +59,9 @@ def plot_row(ledger: Ledger, plot_id: int) -> dict:
     "format", "width", "height", "size", "uploaded_at", "uploaded_by", "updated_at", "state",
     "measurement_ids"}``."""
     with ledger.read() as s:
-        return _info(_get(s, plot_id))
+        r = _get(s, plot_id)  # the bytes stay in the database (a deferred column): only their length
+        size = s.scalar(select(func.length(PlotImageRow.content)).where(PlotImageRow.id == plot_id))
+        return _info(r, None if size is None else int(size))
 
 
 def plot_content(ledger: Ledger, plot_id: int) -> tuple[bytes, str]:

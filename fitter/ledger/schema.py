@@ -215,7 +215,7 @@ class PlotImageRow(Base):
     format: Mapped[str] = mapped_column(String(8))  # "png" or "jpeg"
     width: Mapped[int] = mapped_column(Integer)
     height: Mapped[int] = mapped_column(Integer)
-    content: Mapped[bytes] = mapped_column(LargeBinary)
+    content: Mapped[bytes] = mapped_column(LargeBinary, deferred=True)  # read only when the image is asked for
     uploaded_at: Mapped[str] = mapped_column(String(40))
     uploaded_by: Mapped[str] = mapped_column(String(64))
     updated_at: Mapped[str] = mapped_column(String(40))
