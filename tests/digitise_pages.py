@@ -234,7 +234,7 @@ def make_page(name: str) -> Page:
     if spec.fmt == "jpeg":
         out.save(buf, format="JPEG", quality=spec.jpeg_quality)
     else:
-        out.save(buf, format="PNG")
+        out.save(buf, format="PNG", compress_level=1)  # fast to write; a noisy page compresses little anyway
 
     def place(va, ia):
         x, y = to_pixel(va, ia)
@@ -273,15 +273,16 @@ def all_pages() -> list[Page]:
 # ---------------------------------------------------------------------------
 
 
-def digitise_page(page, rng):
+def digitise_page(page, rng, use_box: bool = True):
     """What a user does: click every tick mark (+/- 1 px), click each curve once (+/- 1 px),
-    name its grid voltage; then the engine's steps.  Returns (axis map, traces, CSV text)."""
+    name its grid voltage; then the engine's steps (with the page's plot area as the box, or
+    none).  Returns (axis map, traces, CSV text)."""
     img = load_image(page.data, page.spec.name)
     marks = [AxisMark(x + rng.uniform(-1, 1), y + rng.uniform(-1, 1), axis, v) for x, y, axis, v in page.ticks]
     axes = fit_axes(marks)
     curves, traces = [], []
     for vg, sx, sy in page.seeds:
-        tr = trace_curve(img, (sx + rng.uniform(-1, 1), sy + rng.uniform(-1, 1)), box=page.box)
+        tr = trace_curve(img, (sx + rng.uniform(-1, 1), sy + rng.uniform(-1, 1)), box=page.box if use_box else None)
         traces.append(tr)
         va, ia = curve_points(tr, axes, n=40)
         curves.append((vg, va, ia))

@@ -164,6 +164,21 @@ def test_load_image_transparency_and_grey_modes():
     assert img.ink[41, 50] > 0.7 and img.ink[10, 50] < 0.05
 
 
+def test_load_image_applies_the_exif_orientation():
+    # a photograph taken with the camera turned: stored 200 x 120 with "rotate 90 clockwise to
+    # show" (EXIF orientation 6, the TIFF/EXIF standard's code): shown, and read, 120 x 200
+    img = Image.new("RGB", (200, 120), (255, 255, 255))
+    ImageDraw.Draw(img).line([(10, 20), (190, 20)], fill=(0, 0, 0), width=3)
+    exif = Image.Exif()
+    exif[0x0112] = 6
+    buf = io.BytesIO()
+    img.save(buf, format="JPEG", quality=95, exif=exif)
+    got = load_image(buf.getvalue())
+    assert (got.width, got.height) == (120, 200)
+    # the line along the top of the stored image is a vertical line near the right when shown
+    assert got.ink[100, 120 - 1 - 20] > 0.7 and got.ink[100, 20] < 0.1
+
+
 # ---------------------------------------------------------------------------
 # fit_axes
 # ---------------------------------------------------------------------------
@@ -452,6 +467,18 @@ def test_curve_points_spread_along_the_curve():
     with pytest.raises(DigitiseInputError) as e:
         curve_points(tr, "axes")
     assert e.value.field == "axes"
+    for bad in (Trace(px=px, py=px[:-1], stop_left="box", stop_right="box"),
+                Trace(px=np.array([1.0, np.nan]), py=np.array([1.0, 2.0]), stop_left="box", stop_right="box"),
+                Trace(px=np.array([]), py=np.array([]), stop_left="box", stop_right="box")):
+        with pytest.raises(DigitiseInputError) as e:
+            curve_points(bad, _aligned_map())
+        assert e.value.field == "trace"
+    # points beyond the axes' zero lines (va < 0 or ia < 0 by more than a pixel) are dropped
+    off = Trace(px=np.array([-5.0, -0.5, 10.0, 20.0, 30.0]), py=np.array([290.0, 290.0, 290.0, 301.5, 300.5]),
+                stop_left="edge", stop_right="edge")
+    va, ia = curve_points(off, _aligned_map())
+    np.testing.assert_allclose(va, [-0.5, 10.0, 30.0])
+    np.testing.assert_allclose(ia, [1.0, 1.0, -0.05])
     # a short trace comes back whole
     short = Trace(px=px[:5], py=_curve(px[:5]), stop_left="box", stop_right="box")
     assert curve_points(short, _aligned_map())[0].size == 5
@@ -655,9 +682,25 @@ def test_synthetic_page_digitised_and_fitted_matches_the_truth(name):
         assert abs(err) <= SMALL_SIGNAL_TOL, f"{name}: {k} off by {100 * err:+.2f} %"
 
 
+@pytest.mark.parametrize("name", ["high_mu", "coloured"])
+def test_synthetic_page_without_a_box(name):
+    # no plot area given (the whole image): the tracer may run on along an axis into its tick
+    # labels at the origin; what is beyond the axes' zero lines is left out of the points
+    page = _page(name)
+    _, traces, text = digitise_page(page, np.random.default_rng(1 + sum(map(ord, name))), use_box=False)
+    res = read_text(text, file=f"{name}.csv")
+    assert not res.skipped, res.skipped  # (points within a pixel under zero current: clipped with a note)
+    fit = fit_curves(res.units[0], page.spec.model)
+    assert fit.converged, fit.failure
+    worst, ss = page_errors(page, fit)
+    assert worst <= CURRENT_TOL_FS, f"{name}: current error {100 * worst:.2f} % of full scale"
+    for k, err in ss.items():
+        assert abs(err) <= SMALL_SIGNAL_TOL, f"{name}: {k} off by {100 * err:+.2f} %"
+
+
 def test_pages_are_fixed_and_carry_their_truth():
-    a, b = make_page("coloured"), _page("coloured")
-    assert a.data == b.data, "the generator must be deterministic (fixed seed)"
+    assert make_page("rotated").data == _page("rotated").data, "the generator must be deterministic (fixed seed)"
+    a = _page("coloured")
     img = load_image(a.data)
     assert (img.width, img.height) == (2000, 1500) and img.format == "png"
     # every seed lies on ink, every tick mark within the image

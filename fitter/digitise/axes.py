@@ -121,7 +121,12 @@ class AxisMap:
         }
 
 
-def _number(x, field: str) -> float:
+#: largest pixel coordinate and axis value accepted (far beyond any page and any tube)
+_MAX_PX = 1e6
+_MAX_VALUE = 1e7
+
+
+def _number(x, field: str, limit: float) -> float:
     if isinstance(x, bool):
         raise DigitiseInputError(f"must be a number, got {x!r}", field=field)
     try:
@@ -130,6 +135,8 @@ def _number(x, field: str) -> float:
         raise DigitiseInputError(f"must be a number, got {type(x).__name__}", field=field) from None
     if not math.isfinite(v):
         raise DigitiseInputError(f"must be a finite number, got {v}", field=field)
+    if abs(v) > limit:
+        raise DigitiseInputError(f"{v:g} is beyond any plot (at most {limit:g} in size)", field=field)
     return v
 
 
@@ -145,7 +152,8 @@ def _check(marks) -> list[tuple[float, float, str, float]]:
             raise DigitiseInputError(f"must be an axis mark, got {type(m).__name__}", field=f)
         if m.axis not in _AXES:
             raise DigitiseInputError(f"axis must be 'va' or 'ia', got {str(m.axis)[:20]!r}", field=f"{f}.axis")
-        out.append((_number(m.px, f"{f}.px"), _number(m.py, f"{f}.py"), m.axis, _number(m.value, f"{f}.value")))
+        out.append((_number(m.px, f"{f}.px", _MAX_PX), _number(m.py, f"{f}.py", _MAX_PX), m.axis,
+                    _number(m.value, f"{f}.value", _MAX_VALUE)))
     for axis in _AXES:
         idx = [i for i, m in enumerate(out) if m[2] == axis]
         if len(idx) < 2:
@@ -220,11 +228,11 @@ def fit_axes(marks: Sequence[AxisMark]) -> AxisMap:
     for ax in _AXES:
         other = "ia" if ax == "va" else "va"
         coefs[ax], kinds[ax] = _fit_axis(ax, pts[ax], vals[ax], idx[ax], pts[other])
-    M = np.array([coefs["va"][1:], coefs["ia"][1:]])
-    g1, g2 = np.hypot(*M[0]), np.hypot(*M[1])
-    det = float(np.linalg.det(M))
+    M = np.array([coefs["va"][1:], coefs["ia"][1:]], dtype=float)
+    g1, g2 = float(np.hypot(*M[0])), float(np.hypot(*M[1]))
+    ok = all(math.isfinite(g) and g > 0 for g in (g1, g2))
     # the sine of the angle between the two axes' gradients; a plot's axes are far from parallel
-    if not np.isfinite(det) or g1 == 0 or g2 == 0 or abs(det) / (g1 * g2) < 0.2:
+    if not ok or abs(M[0, 0] / g1 * M[1, 1] / g2 - M[0, 1] / g1 * M[1, 0] / g2) < 0.2:
         raise DigitiseInputError("the va and ia marks give (nearly) parallel axes: put the va marks along the plate "
                                  "voltage axis and the ia marks along the current axis", field="marks")
     res = np.zeros(len(ms))

@@ -44,17 +44,30 @@ MAX_POINTS = 5000
 
 
 def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarray, np.ndarray]:
-    """(va [V], ia [mA]) at about ``n`` points spread along the traced curve, va increasing."""
+    """(va [V], ia [mA]) at about ``n`` points spread along the traced curve, va increasing.
+
+    Points more than a pixel beyond the zero lines of the axes (negative plate voltage or
+    current) are left out: a plate curve has none, and there the tracer has run along an
+    axis or into its tick labels (possible when no box is given).  So fewer than ``n``, or
+    none, may come back."""
     if not isinstance(trace, Trace):
         raise DigitiseInputError(f"must be a traced curve, got {type(trace).__name__}", field="trace")
     if not isinstance(axes, AxisMap):
         raise DigitiseInputError(f"must be a fitted axis map, got {type(axes).__name__}", field="axes")
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or not 2 <= n <= MAX_POINTS:
         raise DigitiseInputError(f"must be a whole number from 2 to {MAX_POINTS}, got {n!r}", field="n")
-    px = np.asarray(trace.px, float)
-    py = np.asarray(trace.py, float)
+    try:
+        px = np.asarray(trace.px, float)
+        py = np.asarray(trace.py, float)
+    except (TypeError, ValueError):
+        raise DigitiseInputError("the traced points must be numbers", field="trace") from None
+    if px.ndim != 1 or px.shape != py.shape:
+        raise DigitiseInputError(f"px and py must be lists of one length, got {px.shape} and {py.shape}",
+                                 field="trace")
     if px.size == 0:
         raise DigitiseInputError("the traced curve has no points", field="trace")
+    if px.size > 100_000 or not (np.isfinite(px).all() and np.isfinite(py).all()):
+        raise DigitiseInputError("the traced points must be finite (and at most 100,000)", field="trace")
     if px.size > n:
         seg = np.hypot(np.diff(px), np.diff(py))
         s = np.concatenate([[0.0], np.cumsum(seg)])
@@ -75,6 +88,10 @@ def curve_points(trace: Trace, axes: AxisMap, *, n: int = 40) -> tuple[np.ndarra
         px = (cx[hi] - cx[lo]) / cnt
         py = (cy[hi] - cy[lo]) / cnt
     va, ia = axes.to_data(px, py)
+    # beyond the zero lines of the axes (by more than a pixel) is off a plate-curve plot: the
+    # tracer went on along an axis or into its tick labels
+    keep = (va >= -math.hypot(*axes.va_coef[1:])) & (ia >= -math.hypot(*axes.ia_coef[1:]))
+    va, ia = va[keep], ia[keep]
     order = np.argsort(va, kind="stable")
     return va[order], ia[order]
 
@@ -161,8 +178,8 @@ def curves_to_wide_csv(curves: Sequence[tuple[float, Sequence[float], Sequence[f
             raise DigitiseInputError(f"{vg:g} V is beyond any tube's grid voltage", field=f"{f}.grid_v")
         key = _fmt(vg + 0.0)
         if key in seen:
-            raise DigitiseInputError(f"vg = {key} V is also curves[{seen[key]}]'s grid voltage; each curve needs its own",
-                                     field=f"{f}.grid_v")
+            raise DigitiseInputError(f"vg = {key} V is also curves[{seen[key]}]'s grid voltage; "
+                                     "each curve needs its own", field=f"{f}.grid_v")
         seen[key] = i
         va = _values(va, f"{f}.va")
         ia = _values(ia, f"{f}.ia")

@@ -19,6 +19,10 @@ Contract (shared with the web front end, issue 12)::
         # PNG or JPEG from bytes (Pillow, with its decompression-bomb guard set to MAX_PIXELS);
         # anything else, truncated files, too large -> DigitiseInputError(field="image") naming `name`.
 
+A JPEG's EXIF orientation is applied (as browsers apply it), so pixel positions are those of
+the page as it is shown.  Colour, grey, palette, 16-bit and transparent images are read
+(transparency over white paper).
+
 How the ink is found.  A scanned or photographed page has paper that is not white and not
 even (grey paper, a shadow across a photograph), and lines that are not black (coloured
 curves, JPEG ringing).  So the paper level is estimated per colour channel and per region:
@@ -121,7 +125,7 @@ def load_image(data: bytes, name: str = "image") -> PlotImage:
     else:
         raise _bad(name, "not a PNG or JPEG image (its first bytes are neither format's signature)")
 
-    from PIL import Image
+    from PIL import Image, ImageOps
 
     try:
         with warnings.catch_warnings():
@@ -134,7 +138,9 @@ def load_image(data: bytes, name: str = "image") -> PlotImage:
             if min(w, h) < MIN_SIDE:
                 raise _bad(name, f"the image is {w} x {h} pixels; a plot needs at least {MIN_SIDE} pixels a side")
             img.load()
-            rgb = _as_rgb(img)
+            # as browsers show it: a photograph's EXIF orientation applied
+            img = ImageOps.exif_transpose(img)
+            rgb = _as_uint8(img)
     except DigitiseInputError:
         raise
     except (Image.DecompressionBombError, Image.DecompressionBombWarning):
@@ -149,25 +155,22 @@ def load_image(data: bytes, name: str = "image") -> PlotImage:
     return PlotImage(ink=ink, width=int(ink.shape[1]), height=int(ink.shape[0]), format=fmt)
 
 
-def _as_rgb(img) -> np.ndarray:
-    """float32 (h, w, 3) in 0..1, transparency composited over white paper."""
+def _as_uint8(img) -> np.ndarray:
+    """uint8 (h, w) grey or (h, w, 3) colour, transparency composited over white paper."""
+    from PIL import Image
+
     mode = img.mode
     if mode in ("I", "I;16", "I;16B", "I;16L", "F"):
         a = np.asarray(img, dtype=np.float32)
         top = 65535.0 if (mode.startswith("I;16") or float(a.max(initial=0)) > 255) else 255.0
-        g = np.clip(a / top, 0, 1)
-        return np.repeat(g[:, :, None], 3, axis=2)
-    if mode not in ("RGB", "L"):
-        has_alpha = mode in ("RGBA", "LA", "PA") or (mode == "P" and "transparency" in img.info)
-        img = img.convert("RGBA" if has_alpha else "RGB")
-        if has_alpha:
-            a = np.asarray(img, dtype=np.float32) / 255.0
-            alpha = a[:, :, 3:4]
-            return a[:, :, :3] * alpha + (1.0 - alpha)
-    a = np.asarray(img, dtype=np.float32) / 255.0
-    if a.ndim == 2:
-        a = np.repeat(a[:, :, None], 3, axis=2)
-    return a
+        return (np.clip(a / top, 0, 1) * 255.0 + 0.5).astype(np.uint8)
+    if mode in ("L", "RGB"):
+        return np.asarray(img, dtype=np.uint8)
+    if mode in ("RGBA", "LA", "PA", "La", "RGBa") or (mode == "P" and "transparency" in img.info):
+        rgba = img.convert("RGBA")
+        paper = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
+        return np.asarray(Image.alpha_composite(paper, rgba).convert("RGB"), dtype=np.uint8)
+    return np.asarray(img.convert("RGB"), dtype=np.uint8)
 
 
 def _interp_matrix(n_out: int, n_blocks: int, block: int) -> np.ndarray:
@@ -187,8 +190,9 @@ def _interp_matrix(n_out: int, n_blocks: int, block: int) -> np.ndarray:
     return m
 
 
-def _paper(channel: np.ndarray) -> np.ndarray:
-    """The paper level of one channel at every pixel (see the module's notes)."""
+def _paper(channel: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The paper level of one uint8 channel as (row weights, block levels, column weights):
+    the level at every pixel is ``rows @ levels @ cols.T`` (see the module's notes)."""
     from scipy.ndimage import maximum_filter
 
     h, w = channel.shape
@@ -197,22 +201,35 @@ def _paper(channel: np.ndarray) -> np.ndarray:
     blocks = channel[: nby * by, : nbx * bx].reshape(nby, by, nbx, bx).transpose(0, 2, 1, 3)
     # a strided sample of each block is plenty for a percentile
     sample = blocks[:, :, ::2, ::2].reshape(nby, nbx, -1)
-    level = np.percentile(sample, 90, axis=2).astype(np.float32)
+    level = np.percentile(sample, 90, axis=2).astype(np.float32) / 255.0
     level = maximum_filter(level, size=3, mode="nearest")
     level = np.maximum(level, 0.15)
-    # bilinear between block centres, as two small matrix products
-    return _interp_matrix(h, nby, by) @ level @ _interp_matrix(w, nbx, bx).T
+    # bilinear between block centres
+    return _interp_matrix(h, nby, by), level, _interp_matrix(w, nbx, bx)
+
+
+#: rows handled at a time (keeps the float temporaries of a large page small)
+_STRIP = 256
 
 
 def ink_from_rgb(rgb: np.ndarray) -> np.ndarray:
-    """Ink (0 paper .. 1 darkest) of an (h, w, 3) float image in 0..1."""
-    norm = np.empty(rgb.shape[:2], dtype=np.float32)
-    norm.fill(1.0)
-    for c in range(3):
-        ch = np.ascontiguousarray(rgb[:, :, c], dtype=np.float32)
-        np.minimum(norm, np.minimum(ch / _paper(ch), 1.0), out=norm)
-    dark = 1.0 - norm
-    top = float(np.percentile(dark[::3, ::3], 99.9))
-    ink = dark / max(top, 0.25)
+    """Ink (0 paper .. 1 darkest), float32 (h, w), of a uint8 (h, w) grey or (h, w, 3) image."""
+    rgb = np.asarray(rgb)
+    if rgb.dtype != np.uint8:
+        rgb = (np.clip(np.asarray(rgb, dtype=np.float32), 0, 1) * 255.0 + 0.5).astype(np.uint8)
+    channels = [rgb] if rgb.ndim == 2 else [rgb[:, :, c] for c in range(rgb.shape[2])][:3]
+    h, w = channels[0].shape
+    papers = [_paper(ch) for ch in channels]
+    ink = np.empty((h, w), dtype=np.float32)
+    for r0 in range(0, h, _STRIP):
+        r1 = min(h, r0 + _STRIP)
+        norm = None
+        for ch, (rows, level, cols) in zip(channels, papers):
+            paper = rows[r0:r1] @ level @ cols.T
+            v = np.minimum(ch[r0:r1].astype(np.float32) * (1.0 / 255.0) / paper, 1.0)
+            norm = v if norm is None else np.minimum(norm, v, out=norm)
+        np.subtract(1.0, norm, out=ink[r0:r1])
+    top = float(np.percentile(ink[::3, ::3], 99.9))
+    ink *= 1.0 / max(top, 0.25)
     np.clip(ink, 0.0, 1.0, out=ink)
-    return ink.astype(np.float32, copy=False)
+    return ink

@@ -14,14 +14,15 @@ Contract (shared with the web front end, issue 12)::
         # of the plot area (default: whole image); crosses grid lines, ticks, labels, other curves.
         # seed not on or near (a few px) a line -> DigitiseInputError(field="seed").
 
-How it follows.  From the seed the tracer steps one column at a time, each way, and looks only
-at a stretch of each column around where it expects the line (its runs of ink, start and
-end, found by one vectorised pass over that stretch).  It predicts the row from the points it has accepted (a straight line
-through the last few, so the slope carries it), and takes the run of ink nearest the
-prediction within a window that widens with the slope and with the columns it has had to
-bridge.  A run is accepted only if its length fits the line being followed (the line's own
-thickness plus the rise across one column; not under half of that, not much over it) and
-its centre is close to the prediction; otherwise the column is bridged on the prediction:
+How it follows.  From the seed the tracer steps one column at a time, each way, and looks
+only at a stretch of each column around where it expects the line (its runs of ink, start
+and end, found by one vectorised pass over that stretch).  It predicts the row from the
+points it has accepted (a straight line through the last few, so the slope carries it), and
+takes the run of ink nearest the prediction within a window that widens with the slope and
+with the columns it has had to bridge.  A run is accepted only if its length fits the line
+being followed (the line's own thickness plus the rise across one column; not under half of
+that, not much over it) and its centre is close to the prediction; otherwise the column is
+bridged on the prediction:
 
 * a vertical grid line, an axis or a tick makes a long run in its column (a rotated page's
   grid line a run of tens of pixels);
@@ -29,16 +30,22 @@ its centre is close to the prediction; otherwise the column is bridged on the pr
   it into one long run for a few columns; after them the runs part, and the slope picks the
   curve again;
 * a label touching the curve does the same; one beside it is a separate run, further from
-  the prediction than the curve.
+  the prediction than the curve;
+* where a curve ends beside a grid line, the grid line's run is too thin and too far off the
+  prediction to be taken up.
 
 The point of an accepted column is the ink-weighted centre of its run (one pixel of margin
 either side, so a blurred line's edges count), which gives the row to a fraction of a pixel;
 of a run somewhat longer than the line (something starting to touch it), only its core
 nearest the prediction, or the part where the line is expected, counts.
-The tracer stops at the box's edge ("box"; "edge" when the box is the whole image), where
-the line runs straight and level for :data:`FLAT_PX` columns (it has run into an axis or a grid line: the
-level stretch is dropped, "end of line"), when no ink is found near the prediction over :data:`GAP_PX` pixels of its length ("end of line"), or when it has
-bridged :data:`BRIDGE_PX` columns without finding the line again ("end of line").
+
+The tracer stops at the box's edge ("box"; "edge" when the box is the whole image); where
+the line runs straight and level for :data:`FLAT_PX` columns (it has run into an axis: all
+but the first few columns of the level stretch are dropped, "end of line"); when no ink is
+found near the prediction over :data:`GAP_PX` pixels of its length ("end of line"); or when
+it has bridged :data:`BRIDGE_PX` columns without finding the line again ("end of line").
+Steep stretches are followed column by column too (a run per column as long as the rise),
+to slopes of about 15 rows per column.
 """
 
 from __future__ import annotations
@@ -339,8 +346,8 @@ def trace_curve(image: PlotImage, seed: tuple[float, float], *,
     ink = image.ink
     found = _seed_run(ink, sx, sy, b)
     if found is None:
-        raise DigitiseInputError(f"no line at or within {SEED_RADIUS_PX} px of ({sx:.1f}, {sy:.1f}); click on the curve "
-                                 "itself", field="seed")
+        raise DigitiseInputError(f"no line at or within {SEED_RADIUS_PX} px of ({sx:.1f}, {sy:.1f}); "
+                                 "click on the curve itself", field="seed")
     x, s, e, y = found
     thick = float(min(max(e - s, 1), 12))
     rx, ry, stop_right, thick_r = _follow(ink, b, [x], [y], +1, thick)
