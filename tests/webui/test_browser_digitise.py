@@ -103,9 +103,14 @@ def _plot(page, server, pid):
 
 
 @pytest.mark.browser
-def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
+def test_digitise_a_datasheet_plot_in_the_browser(server, fresh, shots, tmp_path):
     _need_browser()
     from playwright.sync_api import sync_playwright
+
+    from fitter.service import stock
+
+    # the sheet's invented high-mu type, its test point inside the drawn curves (250 V, -1.5 V)
+    stock.add_type(fresh, "setup", "HX1", 250.0, -1.5)
 
     sheet = make_page("high_mu")  # JPEG, turned by 0.6 degrees, a load line across the curves
     image = tmp_path / "hx1_sheet.jpg"
@@ -229,7 +234,7 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
                 page.click("button.next[data-go='5']")
                 label = f"HX1-{size.upper()}"
                 page.fill("#save-form input[name=tube]", label)
-                page.select_option("#save-form select[name=type]", "DT")
+                page.select_option("#save-form select[name=type]", "HX1")
                 page.click("#save-form button[type=submit]")
                 page.wait_for_selector("#save-result p.ok, #save-result p.error")
                 text = page.inner_text("#save-result")
@@ -260,8 +265,11 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, shots, tmp_path):
                 page.click(f"#save-result a:has-text('{label}')")
                 page.wait_for_url(f"**/tube/{label}")
                 assert f"datasheet-plot-{pid}.csv" in page.inner_text("main")  # the measurement's source
-                page.goto(server + "/stock")
-                assert label in page.inner_text("table")
+                page.goto(server + "/stock?type=HX1")
+                row = page.locator("table tbody tr", has_text=label).inner_text()
+                # Ia at the type's test point from the fit, against the drawn truth (Koren's equations)
+                ia_cell = float(row.split()[-2])
+                assert abs(ia_cell - float(sheet.truth_ma(250.0, -1.5))) < 0.015 * sheet.spec.ia_max_ma, row
                 page.screenshot(path=str(shots / f"digitise-{size}-7-stock.png"), full_page=True)
                 ctx.close()
         finally:
