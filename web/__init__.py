@@ -46,7 +46,7 @@ def create_app(config: dict | None = None) -> Flask:
     variables (``PLATEBOOK_SECRET_KEY``), then ``config``."""
     from fitter.service.accounts import SignInThrottle
 
-    from . import admin, api, auth, compare, design, matching, stages, stock, tubes, upload
+    from . import admin, api, auth, compare, design, digitise, matching, stages, stock, tubes, upload
     from .plots import PlotCache
 
     app = Flask(__name__)
@@ -61,7 +61,8 @@ def create_app(config: dict | None = None) -> Flask:
         from fitter.service.jobs import Worker
 
         app.extensions["platebook.worker"] = Worker(app.config["LEDGER"]).start()
-    for bp in (auth.bp, stock.bp, tubes.bp, upload.bp, matching.bp, stages.bp, design.bp, compare.bp, admin.bp, api.bp):
+    for bp in (auth.bp, stock.bp, tubes.bp, upload.bp, matching.bp, stages.bp, design.bp, compare.bp, admin.bp,
+               api.bp, digitise.bp):
         app.register_blueprint(bp)
     app.before_request(auth.load_user)
     app.before_request(auth.check_csrf)

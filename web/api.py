@@ -323,3 +323,161 @@ OPENAPI = {
                                   "responses": {"200": {"description": "OpenAPI 3"}}}},
     },
 }
+
+
+# -- digitising a datasheet plot (fitter.service.digitise): the page's steps as calls ------------
+
+from fitter.service import digitise as _digi  # noqa: E402
+
+
+def _plot_call(fn, *a, **kw):
+    try:
+        return fn(*a, **kw)
+    except InputError as e:
+        if e.field == "id" and e.message.startswith("no plot"):
+            return {"errors": [e.to_dict()]}, 404
+        raise
+
+
+def _fields(b: dict, allowed: tuple) -> dict:
+    unknown = sorted(set(b) - set(allowed))
+    if unknown:
+        raise InputError(f"not a field of this request ({', '.join(allowed)})", field=unknown[0])
+    return b
+
+
+@bp.route("/plots", methods=["POST"])
+@need("editor")
+def plot_upload():
+    files = [f for f in request.files.getlist("file") if f]
+    if len(files) != 1:
+        raise InputError("send exactly one image (PNG or JPEG) in the field 'file'", field="file")
+    return _digi.upload_plot(ledger(), g.user["name"], files[0].filename or "plot", files[0].read()), 201
+
+
+@bp.route("/plots/<plot_id>", methods=["GET"])
+@need("viewer")
+def plot_get(plot_id):
+    return _plot_call(_digi.plot_info, ledger(), plot_id)
+
+
+@bp.route("/plots/<plot_id>/image", methods=["GET"])
+@need("viewer")
+def plot_image(plot_id):
+    got = _plot_call(_digi.plot_image, ledger(), plot_id)
+    if not isinstance(got[0], bytes):
+        return got
+    resp = Response(got[0], mimetype=got[1])
+    resp.headers["Cache-Control"] = "private, max-age=86400"  # an id's image never changes
+    return resp
+
+
+@bp.route("/plots/<plot_id>/axes", methods=["PUT"])
+@need("editor")
+def plot_axes(plot_id):
+    b = _fields(_body(), ("marks", "box"))
+    if "marks" not in b:
+        raise InputError("required", field="marks")
+    return _plot_call(_digi.set_axes, ledger(), plot_id, b["marks"], b.get("box"))
+
+
+@bp.route("/plots/<plot_id>/trace", methods=["POST"])
+@need("editor")
+def plot_trace(plot_id):
+    b = _fields(_body(), ("seed", "box", "n"))
+    if "seed" not in b:
+        raise InputError("required", field="seed")
+    return _plot_call(_digi.trace, ledger(), plot_id, b["seed"], b.get("box"), b.get("n", _digi.TRACE_POINTS))
+
+
+@bp.route("/plots/<plot_id>/curves", methods=["PUT"])
+@need("editor")
+def plot_curves(plot_id):
+    b = _fields(_body(), ("curves",))
+    if "curves" not in b:
+        raise InputError("required", field="curves")
+    return _plot_call(_digi.set_curves, ledger(), plot_id, b["curves"])
+
+
+@bp.route("/plots/<plot_id>/measurement", methods=["POST"])
+@need("editor")
+def plot_measurement(plot_id):
+    b = _fields(_body(), ("tube", "type", "section", "model"))
+    for k in ("tube", "type"):
+        if k not in b:
+            raise InputError("required", field=k)
+    got = _plot_call(_digi.save, ledger(), g.user["name"], plot_id, b["tube"], b["type"], b.get("section", ""),
+                     b.get("model", "koren"))
+    return got if isinstance(got, tuple) else (got, 201)
+
+
+_PLOT_ID = {"name": "id", "in": "path", "required": True, "description": "a plot id (as POST /plots returns)",
+            "schema": {"type": "integer", "minimum": 1, "maximum": 9223372036854775807}}
+_PIXEL = {"type": "array", "minItems": 2, "maxItems": 2, "items": {"type": "number"},
+          "description": "[px, py]: image pixel column (x to the right) and row (y downwards)"}
+_BOX = {"type": "array", "minItems": 4, "maxItems": 4, "items": {"type": "number"}, "nullable": True,
+        "description": "the plot area [x0, y0, x1, y1] in image pixels (null: the whole image)"}
+_MARK = {"type": "object", "required": ["px", "py", "axis", "value"], "additionalProperties": False, "properties": {
+    "px": {"type": "number"}, "py": {"type": "number"}, "axis": {"type": "string", "enum": ["va", "ia"]},
+    "value": {"type": "number", "description": "the tick's value: volts on the va axis, mA on the ia axis"}}}
+_CURVE = {"type": "object", "required": ["points"], "additionalProperties": False, "properties": {
+    "grid_v": {"type": "number", "nullable": True, "description": "the curve's grid voltage [V]"},
+    "points": {"type": "array", "maxItems": _digi.MAX_POINTS, "items": _PIXEL}, "seed": _PIXEL}}
+_JSON_OBJ = {"application/json": {"schema": {"type": "object"}}}
+
+
+def _op(summary, ok, body=None, code="200", desc="done"):
+    op = {"summary": summary, "parameters": [_PLOT_ID],
+          "responses": {code: {"description": desc, "content": ok}, "400": _ERR, "401": _ERR, "403": _ERR,
+                        "404": _ERR}}
+    if body is not None:
+        op["requestBody"] = {"required": True, "content": {"application/json": {"schema": body}}}
+    return op
+
+
+OPENAPI["paths"].update({
+    "/plots": {"post": {
+        "summary": "Upload a datasheet plot (PNG or JPEG) to digitise",
+        "requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
+            "type": "object", "required": ["file"],
+            "properties": {"file": {"type": "string", "format": "binary"}}}}}},
+        "responses": {"201": {"description": "stored", "content": {"application/json": {"schema": {
+            "type": "object", "required": ["id", "width", "height"], "properties": {
+                "id": {"type": "integer"}, "width": {"type": "integer"}, "height": {"type": "integer"},
+                "name": {"type": "string"}, "format": {"type": "string"}}}}}},
+                      "400": _ERR, "401": _ERR, "403": _ERR}}},
+    "/plots/{id}": {"get": _op("The plot's facts and its work: marks, axis map with residuals, plot area, curves",
+                               _JSON_OBJ)},
+    "/plots/{id}/image": {"get": _op("The image as uploaded", {"image/png": {"schema": {"type": "string",
+                                                                                       "format": "binary"}},
+                                                              "image/jpeg": {"schema": {"type": "string",
+                                                                                        "format": "binary"}}})},
+    "/plots/{id}/axes": {"put": _op(
+        "Step 1 (and 2): store the axis marks (and the plot area); the axis map and each mark's residual [px]",
+        _JSON_OBJ, {"type": "object", "required": ["marks"], "additionalProperties": False, "properties": {
+            "marks": {"type": "array", "maxItems": _digi.MAX_MARKS, "items": _MARK}, "box": _BOX}})},
+    "/plots/{id}/trace": {"post": _op(
+        "Step 3: follow the curve through a clicked pixel; its points in pixels and in V / mA (nothing stored)",
+        _JSON_OBJ, {"type": "object", "required": ["seed"], "additionalProperties": False, "properties": {
+            "seed": _PIXEL, "box": _BOX, "n": {"type": "integer", "minimum": _digi.TRACE_POINTS_RANGE[0],
+                                               "maximum": _digi.TRACE_POINTS_RANGE[1], "default": _digi.TRACE_POINTS}}})},
+    "/plots/{id}/curves": {"put": _op(
+        "Steps 3-4: store the curves (grid voltage, points in pixels, corrected by hand)",
+        _JSON_OBJ, {"type": "object", "required": ["curves"], "additionalProperties": False, "properties": {
+            "curves": {"type": "array", "maxItems": _digi.MAX_CURVES, "items": _CURVE}}})},
+    "/plots/{id}/measurement": {"post": _op(
+        "Step 5: save the curves as a measurement of a tube (instrument 'datasheet plot (digitised)') and fit it",
+        {"application/json": {"schema": {"type": "object", "required": ["units", "measurement_ids", "failed"],
+                                         "properties": {"units": {"type": "array",
+                                                                  "items": {"$ref": "#/components/schemas/Unit"}},
+                                                        "measurement_ids": {"type": "array",
+                                                                            "items": {"type": "integer"}},
+                                                        "failed": {"type": "boolean"},
+                                                        "overlay": {"type": "array", "items": {"type": "object"}}}}}},
+        {"type": "object", "required": ["tube", "type"], "additionalProperties": False, "properties": {
+            "tube": {"type": "string", "description": "the tube's label (a known label adds a re-test)"},
+            "type": {"type": "string", "description": "the tube type (added with 'platebook stock type')"},
+            "section": {"type": "string", "default": ""},
+            "model": {"type": "string", "enum": ["power", "koren", "dempwolf"], "default": "koren"}}},
+        code="201", desc="stored and fitted (a failed fit is stored and reported with failed: true)")},
+})

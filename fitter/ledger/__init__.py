@@ -10,7 +10,9 @@ imports the engine.  Modules:
   layout of stored points;
 * :mod:`fitter.ledger.migrations`: Alembic's scripts (run programmatically by ``db.upgrade``);
 * :mod:`fitter.ledger.store`: the use cases on the tables (import, re-test drift, grade, list,
-  match, reserve, sell, retire, re-fit, back up, restore, copy).
+  match, reserve, sell, retire, re-fit, back up, restore, copy);
+* :mod:`fitter.ledger.plots`: datasheet plots being digitised (the image, the work in progress,
+  the measurements saved from it).
 
 The front ends reach it through :mod:`fitter.service.stock`.
 """

@@ -11,6 +11,7 @@ A back-up folder holds::
                            are the file sources/<sha256> (see below).  These files are for a
                            restore, not for a spreadsheet (cells are not formula-guarded)
     sources/<sha256>       each imported file, byte for byte as it was read
+    plots/<sha256>         each uploaded datasheet plot image, byte for byte (table plot_images)
     cards/<tube>[_<section>].<model>.json   each section's current model card (for people and
                            other tools; a restore does not need them)
 
@@ -42,6 +43,10 @@ BACKUP_FORMAT = "platebook.ledger-backup"
 BACKUP_VERSION = 1
 #: largest CSV cell read back [characters] (a measurement of 100,000 points is ~5 MB of base64)
 csv.field_size_limit(64 * 1024 * 1024)
+
+
+#: tables whose ``content`` is written as a file named by its ``sha256``, in this sub-folder
+_FILES = {"source_files": "sources", "plot_images": "plots"}
 
 
 def _table(name):
@@ -92,7 +97,7 @@ def backup(ledger: Ledger, folder) -> dict:
     if folder.exists() and any(folder.iterdir()):
         raise InputError(f"{shown(folder)} is not empty; back up into a new folder", field="folder")
     try:
-        for sub in ("tables", "sources", "cards"):
+        for sub in ("tables", "sources", "plots", "cards"):
             prepare_folder(folder / sub)
     except OutputError as e:
         raise InputError(str(e), field="folder") from None
@@ -108,8 +113,8 @@ def backup(ledger: Ledger, folder) -> dict:
             n = 0
             for r in c.execute(select(t).order_by(t.c.id)).mappings():
                 row = dict(r)
-                if name == "source_files":
-                    write_atomic(folder / "sources" / row["sha256"], bytes(row["content"]))
+                if name in _FILES:
+                    write_atomic(folder / _FILES[name] / row["sha256"], bytes(row["content"]))
                     row["content"] = None
                 w.writerow([_cell(row[k], t.c[k]) for k in cols])
                 n += 1
@@ -182,14 +187,14 @@ def restore(ledger: Ledger, folder) -> dict:
             row = {}
             for k, (h, s) in enumerate(zip(header, cells), 1):
                 row[h] = _uncell(s, cols[h], {"file": shown(p), "line": lineno, "column": k})
-            if name == "source_files":
-                src = folder / "sources" / str(row["sha256"])
+            if name in _FILES:
+                src = folder / _FILES[name] / str(row["sha256"])
                 try:
                     content = src.read_bytes()
                 except OSError as e:
-                    raise InputError(f"cannot read the source file: {e.strerror or e}", file=shown(src)) from None
+                    raise InputError(f"cannot read the stored file: {e.strerror or e}", file=shown(src)) from None
                 if hashlib.sha256(content).hexdigest() != row["sha256"]:
-                    raise InputError("the source file's SHA-256 differs from its name", file=shown(src))
+                    raise InputError("the stored file's SHA-256 differs from its name", file=shown(src))
                 row["content"] = content
             rows.append(row)
         if len(rows) != tables[name].get("rows"):

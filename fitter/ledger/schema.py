@@ -30,12 +30,12 @@ from sqlalchemy import (JSON, Boolean, Float, ForeignKey, Index, Integer, LargeB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 __all__ = ["Base", "TubeType", "Tube", "Section", "SourceFile", "Measurement", "Fit", "Grade", "Group",
-           "GroupMember", "Event", "STATUSES", "pack_points", "unpack_points", "now", "upgrade", "HEAD"]
+           "GroupMember", "Event", "PlotImageRow", "STATUSES", "pack_points", "unpack_points", "now", "upgrade", "HEAD"]
 
 #: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired
 STATUSES = ("in-stock", "reserved", "sold", "retired")
 #: the Alembic revision this code expects
-HEAD = "0003_upload_jobs"
+HEAD = "0004_plot_images"
 
 _NAMING = {"ix": "ix_%(column_0_label)s", "uq": "uq_%(table_name)s_%(column_0_name)s",
            "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s", "pk": "pk_%(table_name)s"}
@@ -202,11 +202,32 @@ class Event(Base):
     detail: Mapped[str] = mapped_column(Text)
 
 
+class PlotImageRow(Base):
+    """A datasheet plot uploaded to be digitised: the image's bytes exactly as sent, and the
+    work in progress (``state``: axis marks, plot box, curves with their grid voltage and
+    points in image pixels) so that a reload or another device resumes it.  ``measurement_ids``
+    lists the measurements saved from it (:mod:`fitter.ledger.plots`)."""
+
+    __tablename__ = "plot_images"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(Text)
+    sha256: Mapped[str] = mapped_column(String(64), index=True)
+    format: Mapped[str] = mapped_column(String(8))  # "png" or "jpeg"
+    width: Mapped[int] = mapped_column(Integer)
+    height: Mapped[int] = mapped_column(Integer)
+    content: Mapped[bytes] = mapped_column(LargeBinary, deferred=True)  # read only when the image is asked for
+    uploaded_at: Mapped[str] = mapped_column(String(40))
+    uploaded_by: Mapped[str] = mapped_column(String(64))
+    updated_at: Mapped[str] = mapped_column(String(40))
+    state: Mapped[dict] = mapped_column(JSON)
+    measurement_ids: Mapped[list] = mapped_column(JSON)
+
+
 Index("ix_fits_measurement_engine", Fit.measurement_id, Fit.engine_version)
 
 #: every table, parents first (the order of backups, restores and copies)
 TABLES = ["tube_types", "tubes", "sections", "source_files", "measurements", "fits", "grades", "groups",
-          "group_members", "events", "accounts", "api_tokens", "upload_jobs"]
+          "group_members", "events", "accounts", "api_tokens", "upload_jobs", "plot_images"]
 
 
 def pack_points(va, vg, ia, ig, lines) -> bytes:

@@ -177,7 +177,7 @@ def test_openapi_document_is_json_and_describes_every_route(fresh_app):
     assert doc["openapi"].startswith("3.")
     assert {"/measurements", "/units/{id}/card", "/units/{id}/spice", "/match", "/stage"} <= set(doc["paths"])
     # every route of the blueprint is in the document (Flask's own url map, read independently)
-    rules = {r.rule.replace("/api/v1", "").replace("<unit_id>", "{id}")
+    rules = {r.rule.replace("/api/v1", "").replace("<unit_id>", "{id}").replace("<plot_id>", "{id}")
              for r in fresh_app.url_map.iter_rules() if r.rule.startswith("/api/v1")}
     assert rules == set(doc["paths"])
 
