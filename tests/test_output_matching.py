@@ -95,6 +95,20 @@ def test_h2_current_difference_ranks_the_pairs_h2(stock):
     assert alike < -60.0  # measured -67.6 dB, against -42.5 to -43.3 dB for the others
 
 
+def test_on_a_shared_bypassed_cathode_the_h2_difference_still_ranks_the_pairs(stock):
+    # the same stock on a shared cathode resistor with its bypass (Rk at 84 V over both idle
+    # currents): the units' h2 is taken with the cathode at its level's mean current, as the
+    # pair's own solve has it, and the ratio pair H2 / |h2_A - h2_B| stays one within 15 %
+    ia = stock[0].small_signal(VA, VG, check=False).ia
+    st = PushPullOutput(b_plus=400.0 + 84.0, load=5000.0, rk=84.0 / (2 * ia), bypassed=True)
+    pos = PushPullSlot(st, stock[0], level=0.8)
+    h2 = unit_figures(stock, pos).values["h2"]
+    ratios = [10 ** (pair_prediction(pos, stock[a], stock[b])["h2_db"] / 20) / abs(h2[a] - h2[b])
+              for a, b in [(0, 1), (2, 3), (0, 3), (1, 2)]]
+    assert max(ratios) / min(ratios) < 1.15  # measured 1.06
+    assert pair_prediction(pos, stock[0], stock[2])["h2_db"] < -60.0  # measured -65.0 dB
+
+
 def test_push_pull_slot_refuses_other_stages_and_levels(stock):
     from fitter.stage.output import SingleEndedOutput
 

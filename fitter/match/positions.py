@@ -204,7 +204,7 @@ class PushPullSlot:
 
 def _push_pull_values(position, units):
     from ..stage import StageInputError, StageSolveError
-    from ..stage.output import _banks, _drive_limits, _idle, _waveforms
+    from ..stage.output import _banks, _drive_limits, _idle, _period_waveforms
 
     st = position.stage
     banks_ref = _banks(st, (position.reference, position.reference))
@@ -219,7 +219,8 @@ def _push_pull_values(position, units):
         try:
             banks = _banks(st, (u, position.reference))
             op = _idle(st, banks)
-            w = _waveforms(st, banks, op, vin)
+            # a shared bypassed cathode sits at its level's mean current, as pair_prediction has it
+            w = _period_waveforms(st, banks, op, vin)
         except (StageSolveError, StageInputError):  # the stage cannot run it (cut off): no figures
             continue
         ia = w["A.ia"]

@@ -537,10 +537,14 @@ def waveforms(stage, *triodes, vin) -> dict:
     push-pull on a shared bypassed cathode resistor a 1-D ``vin`` is taken as one period, and
     the cathode sits at Rk times the mean current over it (the bias shift)."""
     banks = _banks(stage, triodes)
-    op = _idle(stage, banks)
+    return _period_waveforms(stage, banks, _idle(stage, banks), vin)
+
+
+def _period_waveforms(stage, banks, op, vin) -> dict:
+    """:func:`_waveforms` with the operating point solved; a 1-D ``vin`` of a stage whose bias
+    shifts is one period, with the shared bypass capacitor at Rk times its mean current."""
     vin = np.asarray(vin, float)
     if _shifts(stage) and vin.ndim == 1 and vin.size > 1:
-        # one period: the shared bypass capacitor at Rk times its mean current
         w = _cathode_rows(stage, banks, op, vin[None, :], np.full(vin.size, 1.0 / vin.size))[1]
         return {k: np.asarray(v)[0] for k, v in w.items()}
     return _waveforms(stage, banks, op, vin)
