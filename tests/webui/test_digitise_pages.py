@@ -90,7 +90,7 @@ def _err(r, status=400):
     return r.get_json()["errors"][0]
 
 
-def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(editor_api, page):
+def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(editor_api, page, fresh_app):
     c, h, db, pid = editor_api
     base = f"/api/v1/plots/{pid}"
     info = c.get(base, headers=h).get_json()
@@ -157,6 +157,12 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
     assert len(again["marks"]) == 6 and again["box"] == list(page.box) and len(again["curves"]) == len(curves)
     assert again["saved"]["units"] == [u["id"]] and again["measurement_ids"] == d["measurement_ids"]
     assert again["curves"][0]["points"][5] == curves[0]["points"][5]
+    # the tube page says where the points came from
+    from .webtools import sign_in
+
+    b = fresh_app.test_client()
+    assert sign_in(b, "viewer1").status_code == 302
+    assert INSTRUMENT in b.get("/tube/MC7-SHEET").get_data(as_text=True)
 
 
 def test_bad_input_names_the_field(editor_api, page):
