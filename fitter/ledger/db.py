@@ -33,7 +33,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, SQLAlchemy
 from sqlalchemy.orm import sessionmaker
 from sqlalchemy.pool import NullPool
 
-from ..errors import InputError
+from .errors import LedgerError  # noqa: F401  (its home is errors.py; raised and re-exported here)
 
 __all__ = ["DB_ENV", "LedgerError", "Ledger", "default_path", "resolve_url", "open_ledger", "safe_url",
            "scrub"]
@@ -49,10 +49,6 @@ MAX_RETRIES = 60
 #: of those, retries after a unique key was taken by a concurrent writer (more means a real
 #: conflict in the data, reported at once)
 MAX_KEY_RETRIES = 5
-
-
-class LedgerError(InputError):
-    """The ledger could not be opened or used; the message never holds a password."""
 
 
 def default_path() -> Path:
@@ -253,7 +249,7 @@ def open_ledger(db: str | None = None, *, upgrade: bool = True, create: bool = T
                                    connect_args={"connect_timeout": 10, "application_name": "platebook"})
         ledger = Ledger(url, engine, reader if url.drivername == "sqlite" else None)
         if upgrade:
-            from .schema import upgrade as _upgrade
+            from .migrate import upgrade as _upgrade
 
             _upgrade(ledger)
         return ledger

@@ -14,7 +14,7 @@ grid current ig [A] (NaN throughout when the file has no grid-current column), a
 file line of each point (integers, exact in float64).  :func:`pack_points` /
 :func:`unpack_points` are the only code that reads or writes that layout.
 
-The schema is owned by Alembic (:mod:`fitter.ledger.migrations`); :func:`upgrade` brings a
+The schema is owned by Alembic (:mod:`fitter.ledger.migrations`); :func:`fitter.ledger.migrate.upgrade` brings a
 database to the current revision, and a test checks that the migrations build exactly
 these tables.
 """
@@ -22,7 +22,6 @@ these tables.
 from __future__ import annotations
 
 import datetime as _dt
-from pathlib import Path
 
 import numpy as np
 from sqlalchemy import (JSON, Boolean, Float, ForeignKey, Index, Integer, LargeBinary, MetaData, String, Text,
@@ -30,7 +29,7 @@ from sqlalchemy import (JSON, Boolean, Float, ForeignKey, Index, Integer, LargeB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 __all__ = ["Base", "TubeType", "Tube", "Section", "SourceFile", "Measurement", "Fit", "Grade", "Group",
-           "GroupMember", "Event", "PlotImageRow", "STATUSES", "pack_points", "unpack_points", "now", "upgrade", "HEAD"]
+           "GroupMember", "Event", "PlotImageRow", "STATUSES", "pack_points", "unpack_points", "now", "HEAD"]
 
 #: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired
 STATUSES = ("in-stock", "reserved", "sold", "retired")
@@ -246,71 +245,3 @@ def unpack_points(blob: bytes, n: int) -> dict:
     va, vg, ia, ig, lines = (a[k * n:(k + 1) * n].astype(float) for k in range(5))
     return {"va": va, "vg": vg, "ia": ia, "ig": None if np.isnan(ig).all() else ig,
             "lines": lines.astype(np.int64) if np.isfinite(lines).all() else None}
-
-
-# -- migrations ---------------------------------------------------------------
-
-
-def alembic_config(connection=None):
-    from alembic.config import Config
-
-    cfg = Config()
-    cfg.set_main_option("script_location", str(Path(__file__).with_name("migrations")))
-    cfg.attributes["connection"] = connection
-    return cfg
-
-
-def current_revision(connection) -> str | None:
-    from alembic.runtime.migration import MigrationContext
-
-    return MigrationContext.configure(connection).get_current_revision()
-
-
-def _stamped_head(connection) -> bool:
-    """Is the database stamped with :data:`HEAD`?  (Alembic's version table, read directly.)"""
-    from sqlalchemy import inspect, text
-
-    if "alembic_version" not in inspect(connection).get_table_names():
-        return False
-    return connection.execute(text("SELECT version_num FROM alembic_version")).scalars().all() == [HEAD]
-
-
-def upgrade(ledger) -> bool:
-    """Bring the ledger's schema to :data:`HEAD` (Alembic); True when it changed anything.
-
-    Runs in one transaction (both databases have transactional DDL), retried like any unit
-    of work, so two processes opening a new ledger at once do not trip over each other.
-    """
-    from .db import LedgerError
-
-    with ledger.read_engine.connect() as c:
-        if _stamped_head(c):  # the usual case: no need to load Alembic at all
-            return False
-        rev = current_revision(c)
-    if rev == HEAD:
-        return False
-    from alembic import command
-
-    if rev is not None and rev not in _known_revisions():
-        raise LedgerError(f"the ledger's schema (revision {rev}) is newer than this Platebook knows; "
-                          "update Platebook", field="db")
-
-    def run(session):
-        conn = session.connection()
-        if current_revision(conn) == HEAD:  # another process got there first
-            return False
-        command.upgrade(alembic_config(conn), "head")
-        return True
-
-    return ledger.work(run)
-
-
-def _known_revisions() -> set:
-    from alembic.script import ScriptDirectory
-
-    return {s.revision for s in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
-
-
-# the web front end's accounts share this metadata (their migration is 0002_accounts)
-from . import accounts as _accounts  # noqa: E402,F401
-from . import jobs as _jobs  # noqa: E402,F401  (background uploads, migration 0003_upload_jobs)

@@ -107,7 +107,8 @@ def _pm(v, e, spec=".2f"):
 def init(db=None) -> Result:
     """Create the ledger (or bring its schema up to date)."""
     from ..ledger.db import open_ledger
-    from ..ledger.schema import HEAD, upgrade
+    from ..ledger.migrate import upgrade
+    from ..ledger.schema import HEAD
 
     ledger = open_ledger(db, upgrade=False)
     try:

@@ -8,7 +8,8 @@ from alembic.migration import MigrationContext
 
 from fitter.errors import InputError
 from fitter.ledger.db import LedgerError, default_path, open_ledger, resolve_url
-from fitter.ledger.schema import HEAD, TABLES, Base, current_revision, pack_points, unpack_points
+from fitter.ledger.migrate import current_revision
+from fitter.ledger.schema import HEAD, TABLES, Base, pack_points, unpack_points
 
 
 def test_an_empty_database_upgrades_to_the_schema_the_models_declare(db):
@@ -25,7 +26,7 @@ def test_an_empty_database_upgrades_to_the_schema_the_models_declare(db):
 
 
 def test_opening_twice_does_not_migrate_again(db):
-    from fitter.ledger.schema import upgrade
+    from fitter.ledger.migrate import upgrade
 
     led = open_ledger(db)
     try:
