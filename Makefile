@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 DEMO := demo-out
 DEMO_PORT ?= 8150
 
-.PHONY: demo test install install-test ngspice postgresql chromium bench clean
+.PHONY: demo test install install-test install-bench ngspice postgresql chromium bench clean
 
 $(BIN)/python:
 	$(PY) -m venv $(VENV)
@@ -13,6 +13,9 @@ $(BIN)/python:
 
 install: $(BIN)/python
 	$(BIN)/pip install --quiet -e .
+
+install-bench: $(BIN)/python
+	$(BIN)/pip install --quiet -e '.[bench]'
 
 install-test: $(BIN)/python
 	$(BIN)/pip install --quiet -e '.[test]'
@@ -86,7 +89,7 @@ demo: install
 test: install-test ngspice postgresql chromium
 	$(BIN)/python -m pytest -q
 
-bench: install
+bench: install-bench
 	$(BIN)/python bench/fit.py
 	$(BIN)/python bench/stage.py
 	$(BIN)/python bench/match.py --sizes 100,1000,10000
