@@ -405,6 +405,10 @@ def sweep_report(db, kind, vary, start, stop, points=None, log=False, circuit=No
 def _cell(x) -> str:
     if x is None or not math.isfinite(x):
         return "-"
+    if abs(x) >= 1e4:  # "10.52k", not "1.052e+04"
+        from ..units import format_value
+
+        return format_value(float(x))
     return f"{x:.4g}"
 
 
