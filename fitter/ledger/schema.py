@@ -29,10 +29,14 @@ from sqlalchemy import (JSON, Boolean, Float, ForeignKey, Index, Integer, LargeB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 __all__ = ["Base", "TubeType", "Tube", "Section", "SourceFile", "Measurement", "Fit", "Grade", "Group",
-           "GroupMember", "Event", "PlotImageRow", "STATUSES", "pack_points", "unpack_points", "now", "HEAD"]
+           "GroupMember", "Event", "PlotImageRow", "STATUSES", "DATASHEET_MARK", "pack_points", "unpack_points", "now", "HEAD"]
 
-#: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired
-STATUSES = ("in-stock", "reserved", "sold", "retired")
+#: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired.  A
+#: "reference" is no tube on the shelf: curves read off a datasheet plot, kept as the type's
+#: reference (compare, nominal), never matched, graded, reserved or sold
+STATUSES = ("in-stock", "reserved", "sold", "retired", "reference")
+#: what a measurement's instrument says when its points were read off a datasheet plot
+DATASHEET_MARK = "datasheet plot"
 #: the Alembic revision this code expects
 HEAD = "0004_plot_images"
 

@@ -24,7 +24,7 @@ from ..card import card_dict, unit_from_fields
 from ..errors import InputError
 from ..text import plain_text, shown
 from .db import Ledger
-from .schema import (STATUSES, Event, Fit, Grade, Group, GroupMember, Measurement, Section, SourceFile, Tube,
+from .schema import (DATASHEET_MARK, STATUSES, Event, Fit, Grade, Group, GroupMember, Measurement, Section, SourceFile, Tube,
                      TubeType, now, pack_points, unpack_points)
 
 #: what a fit row stores of a card (and gives back to :func:`fitter.card.unit_from_fields`)
@@ -258,6 +258,8 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     path = Path(path)
     instrument = plain_text(instrument or "", "instrument", max_len=200, empty=True)
     notes = plain_text(notes or "", "notes", max_len=2000, empty=True)
+    # curves read off a datasheet plot make a reference of the type, not a tube in stock
+    sheet = DATASHEET_MARK in instrument.lower()
     try:
         raw = path.read_bytes()
     except OSError as e:
@@ -304,9 +306,14 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
                     other = s.get(TubeType, tubes[label].type_id).designation
                     raise InputError(f"tube {shown(label)!r} is in the ledger as type {other}, not "
                                      f"{type_designation}; nothing was stored", file=shown(path))
+                if (tubes[label].status == "reference") != sheet:
+                    raise InputError(
+                        f"tube {shown(label)!r} is " + ("a datasheet reference; a measured tube" if not sheet else
+                                                        "a tube in the stock; a datasheet plot's curves")
+                        + " takes a label of its own; nothing was stored", file=shown(path), field="instrument")
                 continue
-            tubes[label] = Tube(label=label, type_id=type_id, status="in-stock", location="", notes="",
-                                created_at=now())
+            tubes[label] = Tube(label=label, type_id=type_id, status="reference" if sheet else "in-stock",
+                                location="", notes="", created_at=now())
             new.append(label)
         s.add_all([tubes[k] for k in new])
         s.flush()
@@ -721,6 +728,9 @@ def set_status(ledger: Ledger, labels, status: str, who: str, reason: str = "", 
             t = _tube(s, lab, lock=True)
             if t.status in ("sold", "retired"):
                 raise InputError(f"tube {shown(lab)} is already {t.status}; nothing was changed", field="labels")
+            if t.status == "reference":
+                raise InputError(f"{shown(lab)} is a datasheet reference, not a tube in stock; nothing was changed",
+                                 field="labels")
             if status == "in-stock" and t.status != "reserved":
                 raise InputError(f"tube {shown(lab)} is {t.status}, not reserved", field="labels")
             before = t.status

@@ -19,6 +19,7 @@ from pathlib import Path
 from sqlalchemy import select
 
 from ..errors import InputError
+from ..ledger.schema import DATASHEET_MARK  # what a datasheet plot's measurement says it is
 from ..text import shown
 from .stock import _ledger
 
@@ -610,8 +611,6 @@ def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False)
 # -- the compare page --------------------------------------------------------------------
 
 MAX_COMPARE = 8
-#: what a measurement's instrument says when its points were digitised from a datasheet plot
-DATASHEET_MARK = "datasheet plot"
 #: fewest converged sections a median nominal is taken from
 MIN_MEDIAN_SECTIONS = 3
 #: statuses of the tubes that are in stock (a median nominal is taken over them)

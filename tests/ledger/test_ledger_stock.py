@@ -269,3 +269,30 @@ def test_nominal_figures_come_from_a_datasheet_card(db, synth, tube_types, tmp_p
     g = svc.grade(db, "ann", "DT").data
     assert g["nominal_basis"] == "datasheet card sheet.json (koren)"
     assert g["nominal_ia_ma"] == pytest.approx(d["nominal_ia_ma"], rel=1e-12)
+
+
+def test_curves_from_a_datasheet_plot_are_a_reference_never_stock(db, stock_file):
+    # a datasheet's curves describe the type, not a tube on the shelf: they are kept (for the
+    # compare page's nominal) but never matched, graded, reserved or sold
+    _setup(db)
+    stocked, _ = stock_file("stock.csv", n_tubes=4, seed=3)
+    sheet, _ = stock_file("sheet.csv", n_tubes=1, seed=4, prefix="SHEET")
+    svc.import_files(db, "ann", [stocked], "DT", jobs=1)
+    svc.import_files(db, "ann", [sheet], "DT", instrument="datasheet plot (digitised)", jobs=1)
+    status = {t["label"]: t["status"] for t in svc.list_tubes(db).data["tubes"]}
+    assert status == {"T001": "in-stock", "T002": "in-stock", "T003": "in-stock", "T004": "in-stock",
+                      "SHEET001": "reference"}
+    m = svc.match(db, "dee", "DT", group="pairs", tolerance_pct=50)
+    offered = {u.split(":")[0] for g in m.data["groups"] for u in g["units"]}
+    assert offered and "SHEET001" not in offered
+    with pytest.raises(InputError, match="datasheet reference") as e:
+        svc.set_status(db, "eve", ["SHEET001"], "sold")
+    assert e.value.field == "labels"
+    # a measured re-test cannot land on the reference (nor a sheet on a stocked tube)
+    retest, _ = stock_file("retest.csv", n_tubes=1, seed=5, prefix="SHEET")
+    with pytest.raises(InputError, match="datasheet reference") as e:
+        svc.import_files(db, "ann", [retest], "DT", jobs=1)
+    assert e.value.field == "instrument"
+    other, _ = stock_file("other.csv", n_tubes=1, seed=6, prefix="T")
+    with pytest.raises(InputError, match="tube in the stock"):
+        svc.import_files(db, "ann", [other], "DT", instrument="datasheet plot", jobs=1)

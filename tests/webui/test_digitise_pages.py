@@ -139,7 +139,8 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
         inside = (p[:, 0] > min(o["px"])) & (p[:, 0] < max(o["px"]))
         assert np.median(np.abs(np.interp(p[inside, 0], o["px"], o["py"]) - p[inside, 1])) < 3.0
     # stored as a measurement marked as digitised, the tube in the stock
-    assert stock.list_tubes(db).data["tubes"][0]["label"] == "MC7-SHEET"
+    (sheet,) = stock.list_tubes(db).data["tubes"]
+    assert sheet["label"] == "MC7-SHEET" and sheet["status"] == "reference"  # the type's reference, not stock
     led = open_ledger(db)
     try:
         from fitter.ledger.schema import Measurement
