@@ -225,15 +225,22 @@ class DataEnvelope:
         ia_lim = self.ia_max * (1.0 + self.HEADROOM)
         pa_lim = self.pa_max * (1.0 + self.HEADROOM)
         if np.ndim(va) == 0 and np.ndim(vg) == 0:  # one point, plain floats: matching calls this per unit
+            # every reason, not only the first: a point far out is often out in several ways
             va, vg = float(va), float(vg)
+            why = []
             if not (self.vg[0] - gm <= vg <= self.vg[-1] + gm):
-                return (f"vg {vg:.4g} V is outside the traced grid voltages "
-                        f"{self.vg[0]:.4g}..{self.vg[-1]:.4g} V")
+                why.append(f"vg {vg:.4g} V is outside the traced grid voltages "
+                           f"{self.vg[0]:.4g}..{self.vg[-1]:.4g} V")
             lo, hi = self._va_range(vg)
             if not (lo - vm <= va <= hi + vm):
-                return f"va {va:.4g} V is outside the plate voltages traced near vg {vg:.4g} V ({lo:.4g}..{hi:.4g} V)"
-            i = float(ia(va, vg) if callable(ia) else ia)
-            return self._limits(i, va * i, ia_lim, pa_lim)
+                near = "near" if not why else "at the nearest traced grid voltage,"
+                why.append(f"va {va:.4g} V is outside the plate voltages traced {near} vg "
+                           f"{min(max(vg, self.vg[0]), self.vg[-1]):.4g} V ({lo:.4g}..{hi:.4g} V)")
+            with np.errstate(all="ignore"):
+                i = float(ia(va, vg) if callable(ia) else ia)
+            if np.isfinite(i):
+                why += self._limits(i, va * i, ia_lim, pa_lim, every=True)
+            return "; ".join(why) or None
         va, vg = np.broadcast_arrays(np.asarray(va, float), np.asarray(vg, float))
         va, vg = va.ravel(), vg.ravel()
         bad = (vg < self.vg[0] - gm) | (vg > self.vg[-1] + gm)
@@ -253,14 +260,17 @@ class DataEnvelope:
         return (self._limits(float(i[k]), float(va[k] * i[k]), ia_lim, pa_lim, current_only=True)
                 or self._limits(float(i[kp]), float(va[kp] * i[kp]), ia_lim, pa_lim))
 
-    def _limits(self, ia, pa, ia_lim, pa_lim, current_only=False):
+    def _limits(self, ia, pa, ia_lim, pa_lim, current_only=False, every=False):
+        """The first reason (or with ``every`` the list of all) the model's current ``ia`` and
+        dissipation ``pa`` lie beyond the highest measured."""
+        why = []
         if ia > ia_lim:
-            return (f"the model's {ia * 1e3:.3g} mA is above the highest measured current "
-                    f"{self.ia_max * 1e3:.3g} mA")
+            why.append(f"the model's {ia * 1e3:.3g} mA is above the highest measured current "
+                       f"{self.ia_max * 1e3:.3g} mA")
         if not current_only and pa > pa_lim:
-            return (f"the model's {pa:.3g} W dissipation is above the highest measured "
-                    f"{self.pa_max:.3g} W")
-        return None
+            why.append(f"the model's {pa:.3g} W dissipation is above the highest measured "
+                       f"{self.pa_max:.3g} W")
+        return why if every else (why[0] if why else None)
 
     def describe(self) -> str:
         """``measured vg lo..hi V, va lo..hi V, up to X mA and Y W``: a summary for messages."""
@@ -388,13 +398,15 @@ class FittedTriode:
             why = self.envelope.outside(va, vg, self.current if ia is None else ia, margin)
             if why is None:
                 return None
-            return f"{self.label}: {why}; {self.envelope.describe()}; the model is extrapolating"
+            return (f"{self.label}: {why}; {self.envelope.describe()}; the model is extrapolating "
+                    "(its error bars there cover the fit's uncertainty only, not the extrapolation)")
         if not self.outside_range(va, vg, margin):
             return None
         r = self.valid_range
         return (f"{self.label}: point(s) outside the fitted data "
                 f"(va {r['va'][0]:.4g}..{r['va'][1]:.4g} V, "
-                f"vg {r['vg'][0]:.4g}..{r['vg'][1]:.4g} V); the model is extrapolating")
+                f"vg {r['vg'][0]:.4g}..{r['vg'][1]:.4g} V); the model is extrapolating "
+                "(its error bars there cover the fit's uncertainty only, not the extrapolation)")
 
     def check_range(self, va, vg, margin: float = 0.1) -> None:
         """Warn (:class:`OutsideDataWarning`) when asked far outside the fitted data."""

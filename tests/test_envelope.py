@@ -78,6 +78,16 @@ def test_current_and_dissipation_above_the_measured_allow_ten_percent():
     assert "3.3 W dissipation is above the highest measured 2.75 W" in e.outside(300.0, -2.0, 11e-3)
 
 
+def test_a_point_out_in_several_ways_is_told_every_way():
+    # va 2 kV, vg -60 V, 160 mA on a unit traced to 400 V, -4..0 V, 25 mA, 2.75 W: four reasons
+    e = DataEnvelope((-4.0, 0.0), (10.0, 10.0), (400.0, 400.0), 25e-3, 2.75)
+    why = e.outside(2000.0, -60.0, 160e-3)
+    assert "outside the traced grid voltages -4..0 V" in why
+    assert "va 2000 V is outside the plate voltages" in why
+    assert "160 mA is above the highest measured current 25 mA" in why
+    assert "320 W dissipation is above the highest measured 2.75 W" in why
+
+
 def test_array_and_one_point_paths_agree():
     # the one-point path (used per unit by matching) and the vectorised path give the same answer
     t = FittedTriode("koren", AU7, envelope=DataEnvelope((-24.0, -12.0, 0.0), (10.0, 10.0, 10.0),
