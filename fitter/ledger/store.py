@@ -420,6 +420,9 @@ def tube_detail(ledger: Ledger, label: str) -> dict:
                 m, f = latest[sec.id]
                 now_ss = test_figures(f, t.label, sec.name, tt.test_va, tt.test_vg)
                 d.update(_fit_summary(f, now_ss))
+                # the test point beyond the measured data: its figures are the model's extrapolation
+                d["outside"] = (triode_of(f, t.label, sec.name).outside_reason(tt.test_va, tt.test_vg)
+                                if f.converged else None)
                 d["measured_at"] = m.measured_at
                 d["source_id"] = m.source_id
                 if sec.id in first and first[sec.id][0].id != m.id:

@@ -413,3 +413,19 @@ def test_a_curve_is_broken_where_the_model_is_not_finite():
     assert _polyline(np.array([1.0, 2, np.nan, 4, 5, 6]), np.array([1.0, 2, 3, 4, np.inf, 6])) == [
         "1.0,1.0 2.0,2.0", "4.0,4.0", "6.0,6.0"]
     assert _polyline(np.array([np.nan]), np.array([1.0])) == []
+
+
+def test_tube_page_says_when_the_test_point_lies_outside_the_measured_data(fresh_signed_in, fresh, synth,
+                                                                           tube_types, write_long, tmp_path):
+    # a type whose test point (vg -40 V) lies beyond the stock's traced grid voltages (0..-24 V):
+    # the Ia and gm shown there are the model's extrapolation, and the page says so
+    stock.add_type(fresh, "setup", "FAR", VA, -40.0)
+    f = make_stock(synth, tube_types, write_long, tmp_path / "far.csv", n_tubes=1, seed=12, prefix="FAR")
+    stock.import_files(fresh, "setup", [str(f)], "FAR")
+    html = fresh_signed_in("viewer").get("/tube/FAR01").get_data(as_text=True)
+    assert html.count("the test point lies outside its measured data") == 2  # both sections
+    assert "vg -40 V is outside the traced grid voltages" in html
+    # inside the data: no such note
+    g = make_stock(synth, tube_types, write_long, tmp_path / "near.csv", n_tubes=1, seed=13, prefix="NEAR")
+    stock.import_files(fresh, "setup", [str(g)], "DT")
+    assert "outside its measured data" not in fresh_signed_in("viewer").get("/tube/NEAR01").get_data(as_text=True)
