@@ -54,3 +54,8 @@ class InputError(ValueError):
     def to_dict(self) -> dict:
         return {"file": self.file, "line": self.line, "column": self.column, "field": self.field,
                 "message": self.message}
+
+
+class NotFound(InputError):
+    """What was asked for by its label or id (a tube, a type, a unit, a plot, a job) is not in
+    the ledger: a page answers 404, not 400."""

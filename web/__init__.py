@@ -86,7 +86,7 @@ def create_app(config: dict | None = None) -> Flask:
             return {"errors": [{"field": None, "message": text}]}, code
         return render_template("error.html", title=title, text=text), code
 
-    from fitter.errors import InputError
+    from fitter.errors import InputError, NotFound
     from fitter.service.web_support import UploadError
 
     @app.errorhandler(InputError)
@@ -95,6 +95,8 @@ def create_app(config: dict | None = None) -> Flask:
         if request.path.startswith("/api/"):
             errors = e.errors if isinstance(e, UploadError) else [e.to_dict()]
             return {"errors": errors}, 400
+        if isinstance(e, NotFound):  # a tube, unit, plot or job that is not there
+            return render_template("error.html", title="Not found", text=str(e)), 404
         return render_template("error.html", title="That did not work", text=str(e),
                                errors=getattr(e, "errors", None)), 400
 

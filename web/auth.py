@@ -96,7 +96,7 @@ def need(role: str = "viewer"):
                                         "sign in: send Authorization: Bearer <token>"}]}, 401
                 return redirect(url_for("auth.signin", next=request.full_path if request.method == "GET" else None))
             if ROLE_RANK[g.user["role"]] < ROLE_RANK[role]:
-                abort(403, f"This needs the {role} role; you are signed in as a {g.user['role']}.")
+                abort(403, f"This needs the {role} role; you are signed in with the {g.user['role']} role.")
             return view(*a, **kw)
 
         return inner

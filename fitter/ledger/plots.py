@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from sqlalchemy import func, select
 
-from ..errors import InputError
+from ..errors import NotFound
 from .db import Ledger
 from .schema import PlotImageRow, now
 
@@ -34,7 +34,7 @@ def _get(s, plot_id: int, lock: bool = False) -> PlotImageRow:
     # anyway), so two changes at once both land: each merges into the state the other left
     r = s.get(PlotImageRow, plot_id, with_for_update=lock)
     if r is None:
-        raise InputError(f"no plot {plot_id} in the ledger", field="id")
+        raise NotFound(f"no plot {plot_id} in the ledger", field="id")
     return r
 
 
@@ -69,7 +69,7 @@ def plot_content(ledger: Ledger, plot_id: int) -> tuple[bytes, str]:
     with ledger.read() as s:
         r = s.execute(select(PlotImageRow.content, PlotImageRow.format).where(PlotImageRow.id == plot_id)).first()
         if r is None:
-            raise InputError(f"no plot {plot_id} in the ledger", field="id")
+            raise NotFound(f"no plot {plot_id} in the ledger", field="id")
         return bytes(r[0]), r[1]
 
 

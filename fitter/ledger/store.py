@@ -21,7 +21,7 @@ from sqlalchemy import func, insert, select, text, update
 
 from .. import __version__
 from ..card import card_dict, unit_from_fields
-from ..errors import InputError
+from ..errors import InputError, NotFound
 from ..text import plain_text, shown
 from .db import Ledger
 from .schema import (DATASHEET_MARK, STATUSES, Event, Fit, Grade, Group, GroupMember, Measurement, Section, SourceFile, Tube,
@@ -111,7 +111,7 @@ def _type(s, designation) -> TubeType:
     t = s.scalar(select(TubeType).where(TubeType.designation == designation))
     if t is None:
         known = s.scalars(select(TubeType.designation).order_by(TubeType.designation)).all()
-        raise InputError(f"no tube type {shown(designation)!r} in the ledger"
+        raise NotFound(f"no tube type {shown(designation)!r} in the ledger"
                          + (f" (known: {', '.join(known)})" if known else " (add one with 'stock type')"),
                          field="type")
     return t
@@ -387,7 +387,7 @@ def _tube(s, label, lock=False) -> Tube:
     q = select(Tube).where(Tube.label == label)
     t = s.scalar(q.with_for_update() if lock else q)
     if t is None:
-        raise InputError(f"no tube labelled {shown(label)!r} in the ledger", field="label")
+        raise NotFound(f"no tube labelled {shown(label)!r} in the ledger", field="label")
     return t
 
 
@@ -783,7 +783,7 @@ def supersede(ledger: Ledger, measurement_id: int, who: str, reason: str = "") -
     def run(s):
         m = s.get(Measurement, measurement_id)
         if m is None:
-            raise InputError(f"no measurement {measurement_id}", field="measurement")
+            raise NotFound(f"no measurement {measurement_id}", field="measurement")
         if m.superseded:
             raise InputError(f"measurement {measurement_id} is already superseded", field="measurement")
         m.superseded = True
@@ -811,7 +811,7 @@ def group_labels(ledger: Ledger, group_id: int) -> dict:
     with ledger.read() as s:
         g = s.get(Group, group_id)
         if g is None:
-            raise InputError(f"no group {group_id}", field="group_id")
+            raise NotFound(f"no group {group_id}", field="group_id")
         rows = s.execute(select(Tube.label, Section.name).join(GroupMember, GroupMember.tube_id == Tube.id)
                          .outerjoin(Section, Section.id == GroupMember.section_id)
                          .where(GroupMember.group_id == g.id).order_by(GroupMember.id)).all()

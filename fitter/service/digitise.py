@@ -25,7 +25,7 @@ import math
 import threading
 from collections import OrderedDict
 
-from ..errors import InputError
+from ..errors import InputError, NotFound
 from ..text import plain_text, shown
 from .stock import _ledger, _user
 
@@ -94,7 +94,7 @@ def _plot_id(value) -> int:
     except (TypeError, ValueError, OverflowError):
         raise InputError(f"a plot id is a whole number, got {shown(str(value))[:40]!r}", field="id") from None
     if i < 1 or i > _MAX_ID:
-        raise InputError(f"no plot {i} in the ledger", field="id")
+        raise NotFound(f"no plot {i} in the ledger", field="id")
     return i
 
 

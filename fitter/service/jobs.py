@@ -18,7 +18,7 @@ import zipfile
 
 from sqlalchemy import select
 
-from ..errors import InputError
+from ..errors import InputError, NotFound
 from .stock import _ledger
 
 __all__ = ["submit", "job", "run_next", "recover", "Worker"]
@@ -80,7 +80,7 @@ def job(db, job_id) -> dict:
     with _ledger(db) as ledger, ledger.read() as s:
         j = s.get(UploadJob, job_id)
         if j is None:
-            raise InputError(f"no upload job {job_id}", field="job")
+            raise NotFound(f"no upload job {job_id}", field="job")
         return {"id": j.id, "account": j.account, "state": j.state, "type": j.tube_type, "model": j.model,
                 "files_total": j.files_total, "files_done": j.files_done, "message": j.message,
                 "result": j.result, "created_at": j.created_at, "updated_at": j.updated_at}

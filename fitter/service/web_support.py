@@ -18,7 +18,7 @@ from pathlib import Path
 
 from sqlalchemy import select
 
-from ..errors import InputError
+from ..errors import InputError, NotFound
 from ..ledger.schema import DATASHEET_MARK  # what a datasheet plot's measurement says it is
 from ..text import shown
 from .stock import _ledger
@@ -52,7 +52,7 @@ def _unit_id(value) -> int:
     if i < 1:
         raise InputError(f"a unit id is a positive number, got {i}", field="id")
     if i > _MAX_ID:
-        raise InputError(f"no unit {i} in the ledger (ids go up to {_MAX_ID})", field="id")
+        raise NotFound(f"no unit {i} in the ledger (ids go up to {_MAX_ID})", field="id")
     return i
 
 
@@ -66,7 +66,7 @@ def _load(s, fit_id):
                     .join(SourceFile, SourceFile.id == Measurement.source_id)
                     .where(Fit.id == fit_id)).first()
     if row is None:
-        raise InputError(f"no unit {fit_id} in the ledger", field="id")
+        raise NotFound(f"no unit {fit_id} in the ledger", field="id")
     return row
 
 

@@ -77,7 +77,7 @@ def test_a_bad_point_is_named_beside_the_form(signed_in, stocked):
 
 def test_an_unknown_tube_is_a_clear_error_page(signed_in):
     r = signed_in("viewer").get("/tube/NOPE")
-    assert r.status_code == 400 and "no tube labelled" in r.get_data(as_text=True)
+    assert r.status_code == 404 and "no tube labelled" in r.get_data(as_text=True)
     assert CAUTION in r.get_data(as_text=True)
 
 

@@ -164,10 +164,10 @@ def test_tube_page_and_its_plots_by_role(app, signed_in, stocked):
 def test_tube_page_bad_input_is_named(signed_in):
     c = signed_in("viewer")
     r = c.get("/tube/NO-SUCH")
-    assert r.status_code == 400 and "label" in r.get_data(as_text=True)
+    assert r.status_code == 404 and "label" in r.get_data(as_text=True)
     assert "no tube labelled" in r.get_data(as_text=True)
     r = c.get("/unit/99999/plot.svg")
-    assert r.status_code == 400 and "no unit 99999" in r.get_data(as_text=True)
+    assert r.status_code == 404 and "no unit 99999" in r.get_data(as_text=True)
     r = c.get("/unit/1/plot.gif")
     assert r.status_code == 400 and "format" in r.get_data(as_text=True)
     html = c.get("/tube/W01?unit=1&va=lots&vg=-2").get_data(as_text=True)
