@@ -79,6 +79,9 @@ demo: install
 	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo type PT --va 300 --vg -61 --single --pa-max 40
 	$(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo import curves/stock_power.csv --type PT \
 	  >/dev/null; status=$$?; [ $$status -le 2 ] || exit $$status
+	@echo "Grading the demo stock against each type's nominal (the median of its sections: no datasheet card given)"
+	@for t in MM HM PT; do $(BIN)/platebook stock --db $(DEMO)/ledger.sqlite --user demo grade --type $$t \
+	  >/dev/null || exit $$?; done
 	@pw=$$($(BIN)/python -c "import secrets; print(secrets.token_urlsafe(12))"); \
 	  echo "$$pw" | $(BIN)/platebook users --db $(DEMO)/ledger.sqlite add demo --role editor --password-stdin >/dev/null && \
 	  echo "Demo ledger ready. Sign in at http://127.0.0.1:$(DEMO_PORT)/ as 'demo' with password $$pw" && \
