@@ -246,3 +246,4 @@ def point_command(card, va, vg, as_json):
     rp = d["rp_ohm"]
     click.echo(f"  plate resistance rp = {pm(rp / 1e3 if rp else None, (d['rp_ohm_err'] or 0) / 1e3 if d['rp_ohm_err'] is not None else None, 'kΩ')}")
     click.echo(f"  amplification factor mu = {pm(d['mu'], d['mu_err'], '')}")
+    click.echo(CAUTION)
