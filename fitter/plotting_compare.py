@@ -50,8 +50,8 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
     reference units (a type's nominal), drawn dashed in dark grey while the others are solid;
     ``title``: the plot's title (default: how many units, at which grid voltages)."""
     if ax is None:
-        fig, ax = plt.subplots(figsize=(9, 6))
-        fig.subplots_adjust(left=0.08, right=0.94, top=0.9, bottom=0.13)
+        fig, ax = plt.subplots(figsize=(10.5, 6))
+        fig.subplots_adjust(left=0.07, right=0.76, top=0.9, bottom=0.13)
     va, grids = compare_grid(triodes)
     colours = plt.get_cmap("tab10")
     labels = list(labels) if labels is not None else [t.label for t in triodes]
@@ -59,6 +59,7 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
     top = 0.0
     first = []
     k_colour = 0
+    extrapolated = False
     for k, t in enumerate(triodes):
         if k in dashed:
             c, ls, lw = "0.15", (0, (6, 3)), 1.6
@@ -71,7 +72,17 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
             with np.errstate(all="ignore"):
                 ia = 1e3 * np.asarray(t.current(va, np.full_like(va, g)), float)
             ia = np.where(np.isfinite(ia), ia, np.nan)
-            ax.plot(va, ia, color=c, ls=ls, lw=lw, label=labels[k] if j == 0 else None)
+            if t.envelope is None:
+                ax.plot(va, ia, color=c, ls=ls, lw=lw, label=labels[k] if j == 0 else None)
+            else:
+                # solid (or the unit's style) where the unit was measured; beyond, a faint dotted
+                # line: there the model extrapolates
+                ok = t.envelope.covers(va, g, ia / 1e3)
+                near = ok | np.r_[ok[1:], False] | np.r_[False, ok[:-1]]  # joined at the ends
+                ax.plot(va, np.where(near, ia, np.nan), color=c, ls=ls, lw=lw, label=labels[k] if j == 0 else None)
+                if not ok.all():
+                    extrapolated = True
+                    ax.plot(va, np.where(ok, np.nan, ia), color=c, ls=":", lw=0.9, alpha=0.6)
             if k == 0:
                 first.append((g, ia))
         if t.envelope is not None:
@@ -88,7 +99,11 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
     ax.set_ylabel("plate current Ia [mA]", fontsize=11)
     ax.tick_params(labelsize=10)
     ax.grid(True, alpha=0.3)
-    ax.legend(loc="upper left", fontsize=10, title="unit (model curves)", title_fontsize=10)
+    # beside the axes: inside, it covered the steep curves near 0 V and their labels
+    if extrapolated:
+        ax.plot([], [], color="0.4", ls=":", lw=0.9, label="beyond the unit's\nmeasured data\n(extrapolated)")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, title="unit (model curves)",
+              title_fontsize=9, frameon=False)
     grid_text = "grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V"
     if title is None:
         title = f"{len(triodes)} units compared at {grid_text}"

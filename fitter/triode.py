@@ -260,6 +260,20 @@ class DataEnvelope:
         return (self._limits(float(i[k]), float(va[k] * i[k]), ia_lim, pa_lim, current_only=True)
                 or self._limits(float(i[kp]), float(va[kp] * i[kp]), ia_lim, pa_lim))
 
+    def covers(self, va, vg, ia, margin: float = 0.1) -> np.ndarray:
+        """Per point: True where (va, vg) and the model's current ``ia`` [A] there lie within
+        the measured data, by the rules of :meth:`outside` (plots draw the rest as
+        extrapolation)."""
+        va, vg, ia = np.broadcast_arrays(np.asarray(va, float), np.asarray(vg, float), np.asarray(ia, float))
+        gm, vm = margin * self._vg_span, margin * self._va_span
+        ok = (vg >= self.vg[0] - gm) & (vg <= self.vg[-1] + gm)
+        lo = np.interp(vg, self.vg, self.va_lo)
+        hi = np.interp(vg, self.vg, self.va_hi)
+        ok &= (va >= lo - vm) & (va <= hi + vm)
+        with np.errstate(invalid="ignore"):
+            ok &= ~(ia > self.ia_max * (1.0 + self.HEADROOM)) & ~(va * ia > self.pa_max * (1.0 + self.HEADROOM))
+        return ok
+
     def _limits(self, ia, pa, ia_lim, pa_lim, current_only=False, every=False):
         """The first reason (or with ``every`` the list of all) the model's current ``ia`` and
         dissipation ``pa`` lie beyond the highest measured."""

@@ -88,6 +88,19 @@ def test_a_point_out_in_several_ways_is_told_every_way():
     assert "320 W dissipation is above the highest measured 2.75 W" in why
 
 
+def test_covers_marks_each_point_as_outside_does():
+    # the per-point mask the compare plot draws by says what outside() says of each point alone
+    t = FittedTriode("koren", AU7, envelope=DataEnvelope((-24.0, -12.0, 0.0), (10.0, 10.0, 10.0),
+                                                          (400.0, 300.0, 120.0), 25e-3, 2.75))
+    rng = np.random.default_rng(8)
+    va, vg = rng.uniform(0.0, 480.0, 300), rng.uniform(-28.0, 3.0, 300)
+    ia = t.current(va, vg)
+    mask = t.envelope.covers(va, vg, ia)
+    alone = np.array([t.envelope.outside(a, g, i) is None for a, g, i in zip(va, vg, ia)])
+    assert mask.any() and not mask.all()
+    np.testing.assert_array_equal(mask, alone)
+
+
 def test_array_and_one_point_paths_agree():
     # the one-point path (used per unit by matching) and the vectorised path give the same answer
     t = FittedTriode("koren", AU7, envelope=DataEnvelope((-24.0, -12.0, 0.0), (10.0, 10.0, 10.0),
