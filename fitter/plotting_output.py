@@ -16,6 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
+from .plotting_design import log_ticks  # noqa: E402
 from .plotting_stage import _save  # noqa: E402
 from .stage.output import composite_characteristic, waveforms  # noqa: E402
 
@@ -184,17 +185,39 @@ def plot_output(run, axes=None):
         ax.set_title("reflected-load sweep", fontsize=10)
         ax.grid(alpha=0.3)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    if not own:
-        fig.tight_layout(rect=(0, 0.02, 1, 1))
-    return axes
+    if own:
+        log_ticks(axes[1], "x")
+        log_ticks(axes[1], "y")
+    return axes  # given axes: their figures' layout is the caller's (plotting_web.output_panels)
+
+
+#: the legend's top under the axes [inch]: below the tick labels and the x label
+LEGEND_GAP = 0.5
+
+
+def legend_height(ax) -> float:
+    """The height [inch] of the legend :func:`_legend_below` put under ``ax``, from its
+    entries' lines (two columns, filled column by column), without drawing it."""
+    leg = ax.get_legend()
+    if leg is None:
+        return 0.0
+    lines = [t.get_text().count("\n") + 1 for t in leg.get_texts()]
+    rows = (len(lines) + 1) // 2
+    tall = [max(lines[r], lines[r + rows] if r + rows < len(lines) else 1) for r in range(rows)]
+    return 0.165 * rows + 0.135 * (sum(tall) - rows) + 0.1
 
 
 def _legend_below(ax, handles=None, labels=None):
     """The legend under the axes (outside them): it covers no curve, label or grid value."""
     if handles is None:
         handles, labels = ax.get_legend_handles_labels()
-    ax.legend(handles, labels, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2,
-              frameon=False)
+    from matplotlib.transforms import ScaledTranslation
+
+    # anchored a fixed distance under the axes (not a fraction of their height), so a
+    # fixed bottom margin of LEGEND_GAP + legend_height() holds it
+    below = ax.transAxes + ScaledTranslation(0, -LEGEND_GAP, ax.figure.dpi_scale_trans)
+    ax.legend(handles, labels, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, 0.0),
+              bbox_transform=below, ncol=2, frameon=False, borderaxespad=0.0)
 
 
 def save_output_plot(run, path) -> Path:
