@@ -71,7 +71,8 @@ def log_ticks(ax, which: str = "x", eng: bool = False, max_labels: int | None = 
 
 def margins(fig, left, right, top, bottom, wspace=None, hspace=None) -> None:
     """Fixed margins in inches (instead of a layout engine, which draws the figure once
-    more to measure it): ``left``, ``right``, ``top``, ``bottom`` from the figure's edges and
+    more to measure it; the plots' titles have ``y=1.0`` too: at the default height
+    matplotlib measures every tick label on each draw to lift a title over any on top): ``left``, ``right``, ``top``, ``bottom`` from the figure's edges and
     the gaps ``wspace``, ``hspace`` between panels, in inches too."""
     w, h = fig.get_size_inches()
     kw = dict(left=left / w, right=1 - right / w, top=1 - top / h, bottom=bottom / h)
@@ -119,7 +120,7 @@ def plot_response(fr, axes=None):
     ap.set_xlabel("frequency [Hz]")
     tubes = " / ".join(fr.labels)
     ag.set_title(f"{fr.title} with {tubes}: frequency response\n"
-                 "(linearised at the operating point; source 1 V behind Rs)", fontsize=10)
+                 "(linearised at the operating point; source 1 V behind Rs)", fontsize=10, y=1.0)
     for ax in axes:
         ax.grid(True, which="both", alpha=0.3)
     # beside the gain panel, outside it: inside, some response would always run under it
@@ -166,7 +167,7 @@ def plot_sweep(sw, figures=None):
             ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
         if sw.n_units > 1:
             ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
-        ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9)
+        ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9, y=1.0)
         ax.grid(True, which="both", alpha=0.3)
         if not np.any(np.isfinite(np.asarray(med, float))):
             # nothing to draw: say so rather than leave an empty frame (e.g. the slew limit

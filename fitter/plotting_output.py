@@ -113,7 +113,7 @@ def plot_output(run, axes=None):
     ax.set_xlabel("plate-cathode voltage Va [V]")
     ax.set_ylabel("plate current Ia [mA]")
     ax.set_title(f"{st.kind} output stage: B+ {st.b_plus:g} V, {res.tubes[0]}"
-                 + ("" if se else f" / {res.tubes[1]}"), fontsize=10)
+                 + ("" if se else f" / {res.tubes[1]}"), fontsize=10, y=1.0)
     _legend_below(ax)
     ax.grid(alpha=0.3)
 
@@ -137,7 +137,7 @@ def plot_output(run, axes=None):
     ax.set_ylim(lo, max(3.0 * float(np.max(100 * s.thd)), 2 * 100 * f["thd_target"]))
     ax.set_xlabel("output power [W]")
     ax.set_ylabel("distortion [% of fundamental]")
-    ax.set_title("harmonics against output power (quasi-static, mid-band)", fontsize=10)
+    ax.set_title("harmonics against output power (quasi-static, mid-band)", fontsize=10, y=1.0)
     _legend_below(ax)
     ax.grid(alpha=0.3, which="both")
 
@@ -161,7 +161,7 @@ def plot_output(run, axes=None):
                 label=f"swing at {f['p_max']:.3g} W")
         ax.set_xlabel("half-primary voltage v [V] (plate A at B+ - v)")
         ax.set_ylabel("composite current IA - IB [mA]")
-        ax.set_title("composite characteristic (grid drive per curve)", fontsize=10)
+        ax.set_title("composite characteristic (grid drive per curve)", fontsize=10, y=1.0)
         _legend_below(ax)
         ax.grid(alpha=0.3)
     if sweep is not None:
@@ -182,7 +182,7 @@ def plot_output(run, axes=None):
         lines = ax.get_legend_handles_labels()
         l2 = ax2.get_legend_handles_labels()
         _legend_below(ax, lines[0] + l2[0], lines[1] + l2[1])
-        ax.set_title("reflected-load sweep", fontsize=10)
+        ax.set_title("reflected-load sweep", fontsize=10, y=1.0)
         ax.grid(alpha=0.3)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     if own:

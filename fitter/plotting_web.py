@@ -33,7 +33,7 @@ def _panel(ax, values, labels, title, unit, colour):
     v = np.asarray(values, float)
     ok = np.isfinite(v)
     v, names = v[ok], [n for n, k in zip(labels, ok) if k]
-    ax.set_title(title + (f" [{unit}]" if unit else ""), fontsize=10)
+    ax.set_title(title + (f" [{unit}]" if unit else ""), fontsize=10, y=1.0)
     if not v.size:
         ax.text(0.5, 0.5, "no unit has a value", ha="center", va="center", transform=ax.transAxes, color="0.4")
         ax.set_yticks([])
