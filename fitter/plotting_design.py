@@ -30,8 +30,8 @@ def _tick_text(v: float, eng: bool) -> str:
 def log_ticks(ax, which: str = "x", eng: bool = False, max_labels: int | None = None) -> None:
     """Ticks of a log axis as plain numbers ("0.1", "1", "10", or with ``eng`` "1k",
     "10k", "1M"), no mathtext: over several decades the decades labelled and 2 and 5 of
-    each as unlabelled minor ticks; over a decade or two 1, 2, 5 of each labelled (and 1..9
-    as minor ticks), so a narrow range still has three labels or more, short enough not to
+    each as unlabelled minor ticks; over a decade or two 1, 2, 5 of each labelled (and over
+    a decade or less the other digits as minor ticks), so a narrow range still has three labels or more, short enough not to
     collide.  ``max_labels`` (default: one per 0.55 inch of the axes) caps the labels.
     Call it after the data are drawn: the ticks are fixed for the axis' current limits."""
     from matplotlib.ticker import FixedFormatter, FixedLocator, NullFormatter
@@ -62,7 +62,9 @@ def log_ticks(ax, which: str = "x", eng: bool = False, max_labels: int | None = 
     if len(major) > max_labels:  # many decades: every second (or third...) one
         step = int(np.ceil(len(major) / max_labels))
         major = major[::step]
-    minor = [x for x in at(range(1, 10) if len(major) < 5 else (1, 2, 5)) if x not in major]
+    # minor ticks (each a tick object to make and draw): 2 and 5 of each decade, and over
+    # a decade or less every digit
+    minor = [x for x in at(range(1, 10) if hi / lo <= 12 else (1, 2, 5)) if x not in major]
     axis.set_major_locator(FixedLocator(major))
     axis.set_major_formatter(FixedFormatter([_tick_text(x, eng) for x in major]))
     axis.set_minor_locator(FixedLocator(minor))
