@@ -109,6 +109,8 @@ def pages(db, repeat):
         "/sweep ra, the MM stock (log)": ("/sweep", dict(SMALL, kind="common-cathode", vary="ra", start="47k",
                                                          stop="470k", points="8", log="1", type="MM")),
         "/stage spread over MM": ("/stage", dict(SMALL, kind="common-cathode", ra="100k", type="MM")),
+        "/stage one tube, with THD": ("/stage", dict(SMALL, kind="common-cathode", ra="100k", tube="MM-02:A",
+                                                     thd="1")),
     }
     for name, (path, args) in urls.items():
         t = []

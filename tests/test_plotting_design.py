@@ -68,7 +68,9 @@ def _overlaps(a, b, pad=0.5):
     return a.x0 < b.x1 - pad and b.x0 < a.x1 - pad and a.y0 < b.y1 - pad and b.y0 < a.y1 - pad
 
 
-def assert_no_overlap(fig, what):
+def assert_no_overlap(fig, what, legend_inside=False):
+    """Nothing overlaps; with ``legend_inside`` the legends sit inside their panels and
+    no point of a drawn line falls under them."""
     boxes = _boxes(fig)
     fb = fig.bbox
     for name, b in boxes:
@@ -81,6 +83,20 @@ def assert_no_overlap(fig, what):
     # every one of them lies outside every panel: a legend covers no curve, a title or a
     # tick label runs into no neighbouring panel
     frames = [ax.get_window_extent(r) for ax in fig.axes if ax.get_visible()]
+    if legend_inside:
+        for ax in fig.axes:
+            leg = ax.get_legend()
+            if leg is None:
+                continue
+            lb = leg.get_window_extent(r)
+            for line in ax.get_lines():
+                if line.get_transform() != ax.transData:  # axhline, axvline: across the panel
+                    continue
+                xy = ax.transData.transform(np.column_stack(line.get_data()).astype(float))
+                xy = xy[np.isfinite(xy).all(axis=1)]
+                under = (xy[:, 0] > lb.x0) & (xy[:, 0] < lb.x1) & (xy[:, 1] > lb.y0) & (xy[:, 1] < lb.y1)
+                assert not under.any(), f"{what}: the legend covers {line.get_label()}"
+        boxes = [(n, b) for n, b in boxes if not n.endswith("legend")]
     for name, b in boxes:
         assert not any(_overlaps(b, f) for f in frames), f"{what}: {name} runs into a panel"
 
@@ -203,3 +219,24 @@ def test_plots_with_their_own_figures_keep_fixed_margins(ledger):
         assert_no_overlap(axes[0, 0].figure, "sweep of three figures")
     finally:
         plt.close(axes[0, 0].figure)
+
+
+@pytest.mark.parametrize("kind, circuit, tubes", [
+    ("common-cathode", dict(SMALL, ra="100k"), {"tube": "MM-02:A"}),
+    ("stack", {"b_plus": "300", "r_top": "1.5k", "rk": "1.5k"}, {"bottom": "MM-03:A", "top": "MM-03:B"}),
+])
+def test_stage_page_plots_overlap_nothing(ledger, monkeypatch, kind, circuit, tubes):
+    """The stage page's load lines (one panel a tube, legends under them) and THD sweep."""
+    import fitter.plotting_stage as PS
+    from fitter.service import web_support
+
+    real, seen = PS._save, []
+
+    def save(fig, path):
+        seen.append(fig)
+        assert_no_overlap(fig, f"stage figure {len(seen)}", legend_inside=len(seen) == 2)  # THD: inside
+        return real(fig, path)
+
+    monkeypatch.setattr(PS, "_save", save)
+    out = web_support.stage_report(ledger, kind, circuit, thd=True, **tubes)
+    assert len(seen) == 2 and out["plot_svg"] and out["thd_svg"]
