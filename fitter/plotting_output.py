@@ -16,7 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
-from .plotting_design import log_ticks  # noqa: E402
+from .plotting_design import log_ticks, margins  # noqa: E402
 from .plotting_stage import _save  # noqa: E402
 from .stage.output import composite_characteristic, waveforms  # noqa: E402
 
@@ -64,9 +64,8 @@ def plot_output(run, axes=None):
         # four panels in two rows (each stays wide enough to read); legends sit under their
         # panel, where they cover no curve and no label
         rows, cols = (2, 2) if n == 4 else (1, n)
-        fig, axes = plt.subplots(rows, cols, figsize=(6.6 * cols, 6.0 * rows), layout="constrained", squeeze=False)
+        fig, axes = plt.subplots(rows, cols, figsize=(6.6 * cols, 6.0 * rows), squeeze=False)
         axes = list(axes.ravel())
-        fig.get_layout_engine().set(rect=(0, 0.025, 1, 0.975))
     fig = axes[0].figure
     ax = axes[0]
     se = st.kind == "single-ended"
@@ -186,6 +185,12 @@ def plot_output(run, axes=None):
         ax.grid(alpha=0.3)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     if own:
+        # fixed margins (a layout engine would draw the figure once more): under each row
+        # its tallest legend; between the columns the twin THD axis, the drive labels
+        legends = [legend_height(a) for a in axes]
+        per_row = [max(legends[r * cols:(r + 1) * cols]) for r in range(rows)]
+        margins(fig, left=0.8, right=0.8, top=0.4, bottom=LEGEND_GAP + per_row[-1] + 0.25, wspace=1.6,
+                hspace=LEGEND_GAP + per_row[0] + 0.45)
         log_ticks(axes[1], "x")
         log_ticks(axes[1], "y")
     return axes  # given axes: their figures' layout is the caller's (plotting_web.output_panels)

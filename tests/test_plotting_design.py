@@ -213,6 +213,18 @@ def test_plots_with_their_own_figures_keep_fixed_margins(ledger):
         assert_no_overlap(axes[0].figure, "response")
     finally:
         plt.close(axes[0].figure)
+    from fitter.plotting_output import plot_output
+
+    for kind, circuit, tubes in (("single-ended", {"b_plus": "300", "load": "3k", "grid_bias": "-61"}, {"tube": "PT-03"}),
+                                 ("push-pull", {"b_plus": "300", "load": "5k", "grid_bias": "-61"},
+                                  {"tube_a": "PT-02", "tube_b": "PT-03"})):
+        run = web_design.output_run(ledger, kind, circuit, tubes, loads="3k,5k,8k")
+        axes = plot_output(run)
+        try:
+            assert len(axes) == 3 + (kind == "push-pull")
+            assert_no_overlap(axes[0].figure, f"{kind} output stage")
+        finally:
+            plt.close(axes[0].figure)
     sw = web_design.sweep_run(ledger, "common-cathode", "ra", "47k", "470k", 5, True, SMALL, {"tube": "MM-03:B"})
     axes = plot_sweep(sw, ["gain", "ia", "zout"])
     try:
