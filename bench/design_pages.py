@@ -14,7 +14,10 @@ PT: made by curves/make_demo.py, not measurements of real tubes), fitted on impo
 The process draws one figure first (matplotlib's import and font cache are not counted).
 The machine may be shared: the load average is printed at the start and at the end.
 
-Run:  python bench/design_pages.py [--repeat 3] [--keep DIR] [--plots-only | --pages-only]   (DIR: the SVGs, to look at)
+Run:  python bench/design_pages.py [--repeat 3] [--keep DIR] [--plots-only | --pages-only] [--tree DIR]
+
+``--tree DIR`` times another revision's code on the same data (``mkdir DIR; git archive REV |
+tar -x -C DIR``); run the two one after the other, more than once, on a shared machine.   (DIR: the SVGs, to look at)
 """
 
 from __future__ import annotations
@@ -29,7 +32,10 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
+if "--tree" in sys.argv:  # another tree's code (e.g. ``git archive REV | tar -x -C DIR``), this tree's data
+    sys.path.insert(0, str(Path(sys.argv[sys.argv.index("--tree") + 1]).resolve()))
+else:
+    sys.path.insert(0, str(ROOT))
 
 PASSWORD = "bench-password-1"
 PP = {"b_plus": "300", "load": "5k", "grid_bias": "-61", "pa_max": "40"}
@@ -69,8 +75,32 @@ def _plot(name, make, repeat, path):
     _row(name, t, f"{len(svg) / 1024:.0f} KiB")
 
 
+def _through_files():
+    from fitter.plotting_design import save_response_plot, save_sweep_plot
+    from fitter.plotting_web import save_spread_plot
+
+    def via(save):
+        def make(*args):
+            with tempfile.TemporaryDirectory() as tmp:
+                return save(*args[:1], Path(tmp, "plot.svg"), *args[1:]).read_bytes()
+        return make
+
+    def spread(res, title_type):
+        with tempfile.TemporaryDirectory() as tmp:
+            return save_spread_plot(res, Path(tmp, "plot.svg"), title_type=title_type).read_bytes()
+
+    return via(save_response_plot), spread, via(save_sweep_plot)
+
+
 def plots(db, repeat, keep):
-    from fitter.plotting_web import output_panels, response_svg, spread_svg, sweep_svg
+    import fitter.plotting_web as W
+    from fitter.plotting_web import output_panels
+
+    if hasattr(W, "response_svg"):
+        response_svg, spread_svg, sweep_svg = W.response_svg, W.spread_svg, W.sweep_svg
+    else:  # a tree from before them: the files the pages wrote then
+        response_svg, spread_svg, sweep_svg = _through_files()
+    print(f"   (fitter from {Path(W.__file__).parents[1]})")
     from fitter.service import web_design
     from fitter.service.stages import SpreadSpec, spread_stage
     from fitter.service.web_design import parse_circuit
@@ -137,6 +167,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--keep", type=Path, help="write the plots' SVGs to this folder")
+    ap.add_argument("--tree", type=Path, help="time the fitter and web of this folder (an exported revision)")
     ap.add_argument("--plots-only", action="store_true", help="only the plots (1.)")
     ap.add_argument("--pages-only", action="store_true", help="only the pages (2.)")
     a = ap.parse_args(argv)
