@@ -16,6 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
+from .plotting_design import log_ticks, margins  # noqa: E402
 from .plotting_stage import _save  # noqa: E402
 from .stage.output import composite_characteristic, waveforms  # noqa: E402
 
@@ -63,9 +64,8 @@ def plot_output(run, axes=None):
         # four panels in two rows (each stays wide enough to read); legends sit under their
         # panel, where they cover no curve and no label
         rows, cols = (2, 2) if n == 4 else (1, n)
-        fig, axes = plt.subplots(rows, cols, figsize=(6.6 * cols, 6.0 * rows), layout="constrained", squeeze=False)
+        fig, axes = plt.subplots(rows, cols, figsize=(6.6 * cols, 6.0 * rows), squeeze=False)
         axes = list(axes.ravel())
-        fig.get_layout_engine().set(rect=(0, 0.025, 1, 0.975))
     fig = axes[0].figure
     ax = axes[0]
     se = st.kind == "single-ended"
@@ -112,7 +112,7 @@ def plot_output(run, axes=None):
     ax.set_xlabel("plate-cathode voltage Va [V]")
     ax.set_ylabel("plate current Ia [mA]")
     ax.set_title(f"{st.kind} output stage: B+ {st.b_plus:g} V, {res.tubes[0]}"
-                 + ("" if se else f" / {res.tubes[1]}"), fontsize=10)
+                 + ("" if se else f" / {res.tubes[1]}"), fontsize=10, y=1.0)
     _legend_below(ax)
     ax.grid(alpha=0.3)
 
@@ -136,7 +136,7 @@ def plot_output(run, axes=None):
     ax.set_ylim(lo, max(3.0 * float(np.max(100 * s.thd)), 2 * 100 * f["thd_target"]))
     ax.set_xlabel("output power [W]")
     ax.set_ylabel("distortion [% of fundamental]")
-    ax.set_title("harmonics against output power (quasi-static, mid-band)", fontsize=10)
+    ax.set_title("harmonics against output power (quasi-static, mid-band)", fontsize=10, y=1.0)
     _legend_below(ax)
     ax.grid(alpha=0.3, which="both")
 
@@ -160,7 +160,7 @@ def plot_output(run, axes=None):
                 label=f"swing at {f['p_max']:.3g} W")
         ax.set_xlabel("half-primary voltage v [V] (plate A at B+ - v)")
         ax.set_ylabel("composite current IA - IB [mA]")
-        ax.set_title("composite characteristic (grid drive per curve)", fontsize=10)
+        ax.set_title("composite characteristic (grid drive per curve)", fontsize=10, y=1.0)
         _legend_below(ax)
         ax.grid(alpha=0.3)
     if sweep is not None:
@@ -181,20 +181,48 @@ def plot_output(run, axes=None):
         lines = ax.get_legend_handles_labels()
         l2 = ax2.get_legend_handles_labels()
         _legend_below(ax, lines[0] + l2[0], lines[1] + l2[1])
-        ax.set_title("reflected-load sweep", fontsize=10)
+        ax.set_title("reflected-load sweep", fontsize=10, y=1.0)
         ax.grid(alpha=0.3)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    if not own:
-        fig.tight_layout(rect=(0, 0.02, 1, 1))
-    return axes
+    if own:
+        # fixed margins (a layout engine would draw the figure once more): under each row
+        # its tallest legend; between the columns the twin THD axis, the drive labels
+        legends = [legend_height(a) for a in axes]
+        per_row = [max(legends[r * cols:(r + 1) * cols]) for r in range(rows)]
+        margins(fig, left=0.8, right=0.8, top=0.4, bottom=LEGEND_GAP + per_row[-1] + 0.25, wspace=1.6,
+                hspace=LEGEND_GAP + per_row[0] + 0.45)
+        log_ticks(axes[1], "x")
+        log_ticks(axes[1], "y")
+    return axes  # given axes: their figures' layout is the caller's (plotting_web.output_panels)
+
+
+#: the legend's top under the axes [inch]: below the tick labels and the x label
+LEGEND_GAP = 0.5
+
+
+def legend_height(ax) -> float:
+    """The height [inch] of the legend :func:`_legend_below` put under ``ax``, from its
+    entries' lines (two columns, filled column by column), without drawing it."""
+    leg = ax.get_legend()
+    if leg is None:
+        return 0.0
+    lines = [t.get_text().count("\n") + 1 for t in leg.get_texts()]
+    rows = (len(lines) + 1) // 2
+    tall = [max(lines[r], lines[r + rows] if r + rows < len(lines) else 1) for r in range(rows)]
+    return 0.165 * rows + 0.135 * (sum(tall) - rows) + 0.1
 
 
 def _legend_below(ax, handles=None, labels=None):
     """The legend under the axes (outside them): it covers no curve, label or grid value."""
     if handles is None:
         handles, labels = ax.get_legend_handles_labels()
-    ax.legend(handles, labels, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2,
-              frameon=False)
+    from matplotlib.transforms import ScaledTranslation
+
+    # anchored a fixed distance under the axes (not a fraction of their height), so a
+    # fixed bottom margin of LEGEND_GAP + legend_height() holds it
+    below = ax.transAxes + ScaledTranslation(0, -LEGEND_GAP, ax.figure.dpi_scale_trans)
+    ax.legend(handles, labels, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, 0.0),
+              bbox_transform=below, ncol=2, frameon=False, borderaxespad=0.0)
 
 
 def save_output_plot(run, path) -> Path:

@@ -18,6 +18,7 @@ from .stage.loadlines import load_lines  # noqa: E402
 from .stage.results import _eng as _eng_unit  # noqa: E402
 from .outfiles import plot_path, write_atomic  # noqa: E402
 from .units import format_value  # noqa: E402
+from matplotlib.transforms import ScaledTranslation  # noqa: E402
 
 __all__ = ["plot_load_lines", "save_load_line_plot", "plot_thd_sweep", "save_thd_plot",
            "plot_waveform", "save_waveform_plot"]
@@ -107,11 +108,15 @@ def plot_load_lines(result: StageResult, axes=None):
     -------
     list of Axes
     """
+    from .plotting_design import margins
+    from .plotting_output import LEGEND_GAP, legend_height
+
     st = result.stage
     triodes = result.triodes
     positions = tube_positions(st)
     f = result.figures
-    if axes is None:
+    own = axes is None
+    if own:
         fig, axes = plt.subplots(1, len(positions), figsize=(7.5 * len(positions), 7.0), squeeze=False)
         axes = list(axes[0])
     fig = axes[0].figure
@@ -145,18 +150,26 @@ def plot_load_lines(result: StageResult, axes=None):
         ax.set_xlabel("plate-cathode voltage Va [V]")
         ax.set_ylabel("plate current Ia [mA]")
         who = "" if pos == "tube" else f"{pos} tube "
-        ax.set_title(f"{who}{t.label} ({t.model.name}); curves every {step:g} V of Vgk", fontsize=10)
+        ax.set_title(f"{who}{t.label} ({t.model.name}); curves every {step:g} V of Vgk", fontsize=10, y=1.0)
         ax.grid(True, alpha=0.3)
         handles, labels = ax.get_legend_handles_labels()
         # load lines and the operating point first, the curve notes last
         order = sorted(range(len(labels)), key=lambda k: (labels[k].startswith("Q:") + 2 * labels[k].startswith("Vgk =")
                                                      + 3 * labels[k].startswith("dashed")))
+        # under the axes, a fixed distance below them (see plotting_output._legend_below)
         ax.legend([handles[k] for k in order], [labels[k] for k in order], fontsize=7.5,
-                  loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2, frameon=False)
+                  loc="upper center", bbox_to_anchor=(0.5, 0.0), ncol=2, frameon=False, borderaxespad=0.0,
+                  bbox_transform=ax.transAxes + ScaledTranslation(0, -LEGEND_GAP, fig.dpi_scale_trans))
     fig.suptitle(f"{stage_title(st)}: gain {f['gain']:.4g} at {_node_text(st)}, "
                  f"zout {_eng_unit(f['zout'], 'ohm')}", fontsize=11)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.96))
+    if own:
+        # fixed margins (a layout engine would draw the figure once more): the legends'
+        # height counted from their entries, the curve labels at the right edge beside it
+        legend = max(legend_height(ax) for ax in axes)
+        margins(fig, left=0.8, right=0.5, top=0.75, bottom=LEGEND_GAP + legend + 0.2, wspace=1.0)
+    else:
+        fig.tight_layout(rect=(0, 0.03, 1, 0.96))
     return axes
 
 
@@ -188,8 +201,13 @@ def save_load_line_plot(result: StageResult, path) -> Path:
 def plot_thd_sweep(sw: DistortionSweep, ax=None):
     """THD and the low harmonics [%] against output level [V peak], log-log, with the
     THD threshold, the headroom and the end of the sweep marked."""
-    if ax is None:
+    from .plotting_design import log_ticks, margins
+
+    own = ax is None
+    if own:
         _, ax = plt.subplots(figsize=(8.0, 5.6))
+        # fixed margins (a layout engine would draw the figure once more): a two-line title
+        margins(ax.figure, left=0.85, right=0.3, top=0.65, bottom=0.7)
     vo = sw.vout_peak
     lo = max(1e-4, 0.3 * float(np.min(100 * sw.thd)))
     # THD wide and translucent underneath, so a harmonic that carries nearly all of it
@@ -211,11 +229,15 @@ def plot_thd_sweep(sw: DistortionSweep, ax=None):
     ax.set_xlabel("output fundamental [V peak]")
     ax.set_ylabel("distortion [% of fundamental]")
     ax.set_title(f"{stage_title(sw.stage)} with {_tubes_text(sw.stage, sw.triodes)}, output at {_node_text(sw.stage)}:\n"
-                 "THD against output level (quasi-static, mid-band)", fontsize=10)
+                 "THD against output level (quasi-static, mid-band)", fontsize=10, y=1.0)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=8, loc="upper left")
     ax.figure.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
-    ax.figure.tight_layout(rect=(0, 0.03, 1, 1))
+    if own:
+        log_ticks(ax, "x")
+        log_ticks(ax, "y")
+    else:
+        ax.figure.tight_layout(rect=(0, 0.03, 1, 1))
     return ax
 
 

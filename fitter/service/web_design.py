@@ -214,15 +214,14 @@ def spread_report(db, kind, circuit, tube_type) -> dict:
     (:func:`fitter.service.stages.spread_stage`; a stack pairs each tube's two sections):
     ``{"result": to_dict(), "report", "rows": [{"figure", "unit", "min", "median", "max",
     "count"}], "skipped", "plot_svg"}``."""
-    from ..plotting_web import save_spread_plot
+    from ..plotting_web import spread_svg
     from .stages import SpreadSpec, spread_stage
 
     _kind_class(kind, SMALL_KINDS)
     c = parse_circuit(circuit)
     with stock_cards(db, tube_type) as (folder, labels, skipped):
         res = spread_stage(SpreadSpec(kind=kind, circuit=c, cards=folder))
-    with tempfile.TemporaryDirectory(prefix="platebook-spread-") as tmp:
-        svg = save_spread_plot(res, Path(tmp, "spread.svg"), title_type=tube_type).read_bytes()
+    svg = spread_svg(res, title_type=tube_type)
     return {"result": res.to_dict(), "report": res.report(), "rows": _spread_rows(res), "skipped": skipped,
             "plot_svg": svg, "n_units": len(res.labels), "pairing": res.pairing}
 
@@ -287,13 +286,11 @@ def output_report(db, kind, circuit, tubes: dict, thd=None, loads=None, level=No
     x = _output_inputs(db, kind, circuit, tubes, thd, loads, level)
 
     def make():
-        from ..plotting_design import save_response_plot
-        from ..plotting_web import output_panels
+        from ..plotting_web import output_panels, response_svg
 
         run = _run_output(db, x, response=True)
         panels = output_panels(run, "svg")
-        with tempfile.TemporaryDirectory(prefix="platebook-output-") as tmp:
-            resp = save_response_plot(run.frequency, Path(tmp, "response.svg")).read_bytes()
+        resp = response_svg(run.frequency)
         return {"result": run.to_dict(), "report": run.report(), "panels_svg": panels, "response_svg": resp}
 
     out = cache.get(_key("output", x), make) if cache is not None else make()
@@ -387,11 +384,10 @@ def sweep_report(db, kind, vary, start, stop, points=None, log=False, circuit=No
                       slew_vpeak)
 
     def make():
-        from ..plotting_design import save_sweep_plot
+        from ..plotting_web import sweep_svg
 
         sw = _run_sweep(db, x)
-        with tempfile.TemporaryDirectory(prefix="platebook-sweep-") as tmp:
-            svg = save_sweep_plot(sw, Path(tmp, "sweep.svg")).read_bytes()
+        svg = sweep_svg(sw)
         return {"result": sw.to_dict(), "report": sw.report(name), "table": _sweep_table(sw), "plot_svg": svg,
                 "n_units": sw.n_units}
 
