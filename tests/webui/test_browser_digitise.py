@@ -8,62 +8,23 @@ The page is a synthetic sheet from tests/digitise_pages.py (an INVENTED tube dra
 Koren's published equations); its tick pixels and one pixel per curve come from matplotlib's
 own data -> pixel transform and the page's rotation.  Screenshots go to
 $PLATEBOOK_SCREENSHOTS when set, else to a temporary folder the test prints (as in
-tests/webui/test_browser.py, whose server and browser fixtures this file copies).
+tests/webui/test_browser.py, whose server and browser fixtures this file uses).
 """
 
 from __future__ import annotations
 
-import os
 import sys
-import threading
 from pathlib import Path
 
 import pytest
 
+from .test_browser import ARGS, CHROMIUM, _need_browser, server, shots  # noqa: F401 (fixtures)
 from .webtools import PASSWORD
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from digitise_pages import make_page  # noqa: E402
 
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-        "--disable-component-update", "--disable-sync", "--no-first-run"]
 SIZES = {"laptop": (1366, 768), "tablet": (820, 1180)}
-
-
-def _need_browser():
-    missing = None
-    try:
-        import playwright.sync_api  # noqa: F401
-    except ImportError:
-        missing = "the playwright package (pip install -e '.[test]')"
-    if not Path(CHROMIUM).exists():
-        missing = f"{CHROMIUM} (make test installs Debian's chromium)"
-    if missing:
-        if os.environ.get("CI", "").lower() == "true":
-            pytest.fail(f"{missing} is missing (CI must run the browser test)")
-        pytest.skip(f"{missing} is missing")
-
-
-@pytest.fixture
-def server(fresh_app):
-    """The app on a real waitress server on 127.0.0.1 (a free port), stopped after the test."""
-    import waitress.server
-
-    srv = waitress.server.create_server(fresh_app, host="127.0.0.1", port=0, threads=4)
-    t = threading.Thread(target=srv.run, daemon=True)
-    t.start()
-    yield f"http://127.0.0.1:{srv.effective_port}"
-    srv.close()
-    t.join(timeout=10)
-
-
-@pytest.fixture
-def shots(tmp_path_factory):
-    folder = Path(os.environ.get("PLATEBOOK_SCREENSHOTS") or tmp_path_factory.mktemp("screenshots"))
-    folder.mkdir(parents=True, exist_ok=True)
-    print(f"screenshots in {folder}")
-    return folder
 
 
 def _view(page):
@@ -96,14 +57,14 @@ def _click_image(page, px, py, zoom=True):
     page.mouse.click(x, y)
 
 
-def _plot(page, server, pid):
+def _plot(page, server, pid):  # noqa: F811 (the fixture's value)
     r = page.request.get(f"{server}/api/v1/plots/{pid}")
     assert r.ok, r.text()
     return r.json()
 
 
 @pytest.mark.browser
-def test_digitise_a_datasheet_plot_in_the_browser(server, fresh, shots, tmp_path):
+def test_digitise_a_datasheet_plot_in_the_browser(server, fresh, shots, tmp_path):  # noqa: F811
     _need_browser()
     from playwright.sync_api import sync_playwright
 
