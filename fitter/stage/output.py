@@ -1415,8 +1415,16 @@ def _many_group(stage, cases, thd, level, levels):
     n0 = len(cases)
     if _shifts(stage):
         # the cathode follows each level's mean current: no single transfer to sample, so
-        # each case is solved by solve_output
-        return ({k: np.full(n0, np.nan) for k in _many_keys(stage)}, np.zeros(n0, bool), np.ones(n0, bool))
+        # solve_output's own steps, run for many units at once
+        figs = {k: np.full(n0, np.nan) for k in _many_keys(stage)}
+        failed = np.zeros(n0, bool)
+        for at in range(0, n0, _SHIFT_BLOCK):
+            ix = slice(at, min(n0, at + _SHIFT_BLOCK))
+            got, bad = _many_shifting(stage, cases[ix], thd, level, levels)
+            for k, v in got.items():
+                figs[k][ix] = v
+            failed[ix] = bad
+        return figs, failed, np.zeros(n0, bool)
     se = stage.kind == "single-ended"
     npos = len(stage.positions)
     banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
@@ -1545,6 +1553,118 @@ def _many_group(stage, cases, thd, level, levels):
     for key in figs:
         figs[key][keep[~smooth]] = np.nan
     return figs, failed, alone
+
+
+#: units solved at once by :func:`_many_shifting` (its arrays are levels x samples a unit:
+#: a block of this size keeps them in cache)
+_SHIFT_BLOCK = 16
+
+
+def _rows_bank(bank, k):
+    """``bank`` (n units) as a column of n k rows (each unit repeated ``k`` times), to
+    broadcast against (rows, samples) states."""
+    return _Bank(bank.model, {n: (np.repeat(v, k)[:, None] if isinstance(v, np.ndarray) else v)
+                              for n, v in bank.params.items()})
+
+
+def _many_shifting(stage, cases, thd, level, levels):
+    """:func:`_many_group` for a push-pull on a shared bypassed cathode resistor: the steps of
+    :func:`solve_output` (grid-current limit, power sweep, level at the THD target) for every
+    unit at once, each level's cathode voltage by :func:`_cathode_rows` over (unit, level)
+    rows.  Returns (figures (n,), failed (n,))."""
+    n0 = len(cases)
+    npos = len(stage.positions)
+    figs = {k: np.full(n0, np.nan) for k in _many_keys(stage)}
+    banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
+    op = _idle_many(stage, banks, n0)
+    failed = np.min([op[f"{p}.ia"] for p in stage.positions], axis=0) <= 1e-7
+    keep = np.nonzero(~failed)[0]
+    if keep.size == 0:
+        return figs, failed
+    banks = [_Bank.of([cases[i][j] for i in keep]) for j in range(npos)]
+    op = {k: np.asarray(v, float)[keep] for k, v in op.items()}
+    n = keep.size
+    sines, weight, distinct, where = _period_samples()
+
+    def rows(k):
+        return [_rows_bank(b, k) for b in banks], {key: np.repeat(v, k)[:, None] for key, v in op.items()}
+
+    def solve(amps, vk0):
+        """(vk, waveforms over a period (rows, N_SAMPLES)) for amplitudes (n, k)."""
+        bk, ok = rows(amps.shape[1])
+        vk, w = _cathode_rows(stage, bk, ok, amps.reshape(-1, 1) * sines[None, :], weight, vk0=vk0.ravel())
+        return vk, {key: np.broadcast_to(val, (vk.size, distinct.size))[:, where] for key, val in w.items()}
+
+    # the grid-current limit (as _grid_limit_shifting)
+    bk, ok = rows(1)
+    c = stage.grid_onset - stage._vg
+    vk_g, _ = _cathode_rows(stage, bk, ok, np.broadcast_to(sines, (n, sines.size)), weight,
+                            follow=np.full(n, c))
+    vin_max = c + vk_g
+    good = vin_max > 1e-9 * stage.b_plus
+    # the power sweep, each level started from the cathode's square-law growth to the limit
+    r_l = np.linspace(1.0 / levels, 1.0, levels)
+    vk0 = op["vk"][:, None] + (vk_g - op["vk"])[:, None] * r_l[None, :] ** 2
+    amps = vin_max[:, None] * r_l[None, :]
+    vk, w = solve(amps, vk0)
+    RL = stage.reflected_load
+    v_load = w["v_load"].reshape(n, levels, N_SAMPLES)
+    power, t = _thd_of(v_load, RL)
+    vk = vk.reshape(n, levels)
+    # the drive at the THD target: interpolated, one secant step from a solve there (as
+    # _level_at_thd), and the power at that drive
+    over = t >= thd
+    has = over.any(axis=1) & good
+    p_thd = np.full(n, np.nan)
+    if has.any():
+        hx = np.nonzero(has)[0]
+        k = np.argmax(over[hx], axis=1)
+        av = amps[hx]
+        lo = np.where(k == 0, 0.0, av[np.arange(hx.size), np.maximum(k - 1, 0)])
+        tlo = np.where(k == 0, 0.0, t[hx, np.maximum(k - 1, 0)])
+        up, tup = av[np.arange(hx.size), k], t[hx, k]
+        vk_at = np.where(k == 0, op["vk"][hx], vk[hx, np.maximum(k - 1, 0)])
+        sub = [_Bank(b.model, {m: (v[hx] if isinstance(v, np.ndarray) else v) for m, v in b.params.items()})
+               for b in banks]
+        opx = {key: v[hx] for key, v in op.items()}
+
+        def at(x, vk0):
+            bk_, ok_ = [_rows_bank(b, 1) for b in sub], {key: v[:, None] for key, v in opx.items()}
+            vkx, wx = _cathode_rows(stage, bk_, ok_, x[:, None] * sines[None, :], weight, vk0=vk0)
+            return vkx, _thd_of(np.broadcast_to(wx["v_load"], (x.size, distinct.size))[:, where], RL)
+
+        x = lo + (up - lo) * (thd - tlo) / (tup - tlo)
+        vkx, (_, tx) = at(x, vk_at)
+        below = tx < thd
+        lo, tlo = np.where(below, x, lo), np.where(below, tx, tlo)
+        up, tup = np.where(below, up, x), np.where(below, tup, tx)
+        xt = lo + (up - lo) * (thd - tlo) / (tup - tlo)
+        _, (pt, _) = at(xt, vkx)
+        p_thd[hx] = pt
+    res = {}
+    for p in stage.positions:
+        for q in ("ia", "va", "pa"):
+            res[f"{p}.{q}"] = op[f"{p}.{q}"]
+    res["p_max"] = power[:, -1]
+    res["p_thd"] = p_thd
+    thd_at = np.full(n, np.nan)
+    if level is not None:
+        for u in range(n):
+            if power[u, 0] <= level <= power[u, -1]:
+                thd_at[u] = np.interp(level, power[u], t[u])
+    res["thd"] = thd_at
+    res["zout"] = _z_out_many(stage, banks, op)
+    res["damping"] = stage.speaker / res["zout"]
+    if stage.pa_max is not None:
+        full = [np.mean((w[f"{p}.va"] * w[f"{p}.ia"]).reshape(n, levels, N_SAMPLES)[:, -1], axis=1)
+                for p in stage.positions]
+        res["pa_ratio"] = np.max([np.maximum(op[f"{p}.pa"], f) for p, f in zip(stage.positions, full)],
+                                 axis=0) / stage.pa_max
+    res["imbalance"] = op["A.ia"] - op["B.ia"]
+    for key, v in res.items():
+        figs[key][keep[good]] = np.asarray(v)[good]
+    failed[keep[~good]] = True
+    return figs, failed
 
 
 def _z_out_many(stage, banks, op):
