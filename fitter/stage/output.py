@@ -453,9 +453,13 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) 
             a0, a1, b0, b1 = stage.b_plus + RL * i0 - vk0, stage.r_primary + RL, vg + vin - vk0, 0.0
         else:
             a0, a1, b0, b1 = stage.b_plus + RL * i0, stage.r_primary + RL + rk, vg + vin, rk
-        # start from the linear response (a few iterations fewer than from the idle current)
-        ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
-        x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
+        if guide is not None:
+            # start from the transfer already solved on a grid of drives: a step or two
+            x0 = np.interp(vin, guide[0], guide[1]["tube.ia"])
+        else:
+            # start from the linear response (a few iterations fewer than from the idle current)
+            ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
+            x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
         i, *_ = _solve_tube(banks[0], a0, a1, b0, b1, x0=x0)
         vk = vk0 if (stage.bypassed or rk == 0.0) else rk * i
         plate = stage.b_plus + RL * i0 - (stage.r_primary + RL) * i
@@ -639,7 +643,7 @@ def _margins(stage, banks, op, amps, keep=None):
     """(grid margin, cut-off margin) at each amplitude: positive while inside.  The extremes
     of a quasi-static swing are at the sine's peaks (the transfer is monotone).
 
-    ``keep`` (push-pull): a dict; its ``"guide"`` (the transfer at the crests of the first
+    ``keep``: a dict; its ``"guide"`` (the transfer at the crests of the first
     call, as drives and waveforms) starts every later call, and is left there for the
     caller's solves."""
     amps = np.asarray(amps, float)
@@ -652,7 +656,7 @@ def _margins(stage, banks, op, amps, keep=None):
             known.append((amps.ravel(), vk))
         vk = vk.reshape(amps.shape)[..., None]
     w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide, vk=vk)
-    if keep is not None and guide is None and stage.kind == "push-pull" and amps.ndim == 1:
+    if keep is not None and guide is None and amps.ndim == 1:
         order = np.argsort(amps)
         keep["guide"] = (np.concatenate([-amps[order][::-1], amps[order]]),
                          {k: np.concatenate([np.broadcast_to(v, amps.shape + (2,))[order][::-1, 1],
@@ -1060,7 +1064,8 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
                               "grid current (bias the grid below it)")
     amps = vin_max * np.linspace(1.0 / levels, 1.0, levels)
     class_ab = not se and lim["cutoff"] is not None and lim["cutoff"] < vin_max
-    guide = None
+    # single-ended: the transfer at the crests of the limit's scan starts every later solve
+    guide = keep.get("guide") if _FAST else None
     if not se:
         # the transfer over the whole drive range: the composite transconductance, and the
         # start of every later solve (each then needs a step or two instead of six or seven)
