@@ -453,7 +453,9 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) 
             a0, a1, b0, b1 = stage.b_plus + RL * i0 - vk0, stage.r_primary + RL, vg + vin - vk0, 0.0
         else:
             a0, a1, b0, b1 = stage.b_plus + RL * i0, stage.r_primary + RL + rk, vg + vin, rk
-        if guide is not None:
+        if x0 is not None:
+            pass  # (the current of a solve nearby)
+        elif guide is not None:
             # start from the transfer already solved on a grid of drives: a step or two
             x0 = np.interp(vin, guide[0], guide[1]["tube.ia"])
         else:
@@ -1251,13 +1253,16 @@ _CHEB = (32, 64, 128, 192)
 _CHEB_TAIL = 1e-9
 
 
-def _flat_waveforms(stage, banks, op, vin):
+def _flat_waveforms(stage, banks, op, vin, x0=None):
     """:func:`_waveforms` for n units with k inputs each: ``banks`` of n units, ``op`` of
-    (n,) arrays, ``vin`` (n, k); returns (n, k) arrays."""
+    (n,) arrays, ``vin`` (n, k), ``x0`` a start as :func:`_waveforms` takes it ((n, k)
+    arrays); returns (n, k) arrays."""
     n, k = vin.shape
     bk = [b.repeat(k) for b in banks]
     opk = {key: np.repeat(np.asarray(v, float), k) for key, v in op.items()}
-    w = _waveforms(stage, bk, opk, vin.ravel())
+    if x0 is not None:
+        x0 = np.ravel(x0) if isinstance(x0, np.ndarray) else tuple(np.ravel(v) for v in x0)
+    w = _waveforms(stage, bk, opk, vin.ravel(), x0=x0)
     return {key: np.broadcast_to(v, (n * k,)).reshape(n, k) for key, v in w.items()}
 
 
@@ -1489,11 +1494,24 @@ def _many_group(stage, cases, thd, level, levels):
     coef = {}
     top = 0
     todo = np.arange(keep.size)
+    # the unknowns of a solve (a finer series' solve starts from the coarser one's series
+    # at its nodes: a step or two instead of seven)
+    unknowns = ["tube.ia"] if se else ["A.ia", "B.ia", "v_load", "A.vgk"]
+    start = None
     for K in _CHEB[0 if se else 1:]:  # a push-pull's transfer is never that smooth
         C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
         x = np.cos(np.pi * (np.arange(K) + 0.5) / K)
         bk, ok_ = sub(keep[todo])
-        w = _flat_waveforms(stage, bk, ok_, vin_max[todo, None] * x[None, :])
+        x0 = None
+        if start is not None and _FAST:
+            E = np.cos(np.arccos(x)[:, None] * np.arange(start[next(iter(start))].shape[1])[None, :])
+            got = {k: np.einsum("nk,jk->nj", v, E) for k, v in start.items()}
+            if se:
+                x0 = got["tube.ia"]
+            else:
+                vin = vin_max[todo, None] * x[None, :]
+                x0 = (got["A.ia"], got["B.ia"], got["v_load"] / 2.0, stage._vg + vin - got["A.vgk"])
+        w = _flat_waveforms(stage, bk, ok_, vin_max[todo, None] * x[None, :], x0)
         # einsum, not BLAS: these products are small, and BLAS threads on a busy machine
         # cost many times the arithmetic (measured: 80 ms against 4 ms)
         cf = {k: np.einsum("nj,kj->nk", w[k], C) for k in names}
@@ -1504,6 +1522,8 @@ def _many_group(stage, cases, thd, level, levels):
             top = K
         for k in names:
             coef.setdefault(k, np.zeros((keep.size, _CHEB[-1])))[todo[done], :K] = cf[k][done]
+        if (~done).any():
+            start = {k: (cf[k] if k in cf else np.einsum("nj,kj->nk", w[k], C))[~done] for k in unknowns}
         todo = todo[~done]
         if todo.size == 0:
             break
