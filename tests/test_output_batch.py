@@ -104,3 +104,36 @@ def test_mixed_models_are_solved_in_their_own_groups():
         for k in ("p_max", "p_thd", "thd", "tube.ia", "zout", "pa_ratio"):
             assert got[k][u] == pytest.approx(r[k], rel=1e-6, nan_ok=True), (k, u)
     assert got["tube.ia"][1] != got["tube.ia"][0]
+
+
+@pytest.mark.parametrize("thd", [0.004, 0.05])
+def test_shared_bypassed_cathode_is_batched_and_equals_one_solve_per_case(thd, monkeypatch):
+    # the bias shift makes each level's cathode its own solve: the batched path runs
+    # solve_output's steps for many units at once (in blocks; 4 here, so a block boundary
+    # falls inside the stock), and never falls back to solve_output
+    st = PushPullOutput(b_plus=450.0, load=5000.0, rk=650.0, pa_max=40.0)
+    cases = _cases(st)
+    ref = []
+    for c in cases:
+        try:
+            ref.append(_from_result(st, solve_output(st, *c, thd=thd), 1.0))
+        except StageSolveError:
+            ref.append(None)
+
+    def no_single_solve(*a, **k):
+        raise AssertionError("the batched path fell back to solve_output")
+
+    monkeypatch.setattr(O, "solve_output", no_single_solve)
+    monkeypatch.setattr(O, "_SHIFT_BLOCK", 4)
+    got, failed = _solve_many(st, cases, thd=thd, level=1.0)
+    assert failed == sum(r is None for r in ref)
+    reached = sum(r is not None and not math.isnan(r["p_thd"]) for r in ref)
+    # both branches of the THD search: the target reached (most units at 0.4 %) and not
+    assert reached >= (len(cases) - 1 if thd < 0.01 else 0) and len(cases) - reached >= (0 if thd < 0.01 else 4)
+    for u, r in enumerate(ref):
+        for k, v in got.items():
+            want = math.nan if r is None else r[k]
+            if math.isnan(want):
+                assert math.isnan(v[u]), (k, u)
+            else:
+                assert v[u] == pytest.approx(want, rel=1e-6, abs=1e-12), (k, u)

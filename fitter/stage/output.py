@@ -280,10 +280,12 @@ def _pair_bank(banks, m):
     return _Bank(a.model, params)
 
 
-def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
+def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
     """Joint Newton iteration on (IA, IB, v, vk) for every sample at once; the tube
     equations are eliminated per sample, leaving a 2 x 2 (or 1 x 1) system in (v, vk).
-    Returns None when any sample has not converged (the bracketed solve then takes over)."""
+    Returns None when any sample has not converged (the bracketed solve then takes over).
+    ``grads`` (a list): receives (gaa, gga, gab, ggb), the tubes' voltage gradients at the
+    last step's start (within the tolerance of the solution), for a caller's Newton slope."""
     B = stage.b_plus
     r = stage.r_primary / 2.0
     q = stage.reflected_load / 4.0
@@ -355,13 +357,15 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
             return None
         if (np.max(np.abs(dv), initial=0.0) <= tol and np.max(np.abs(dk), initial=0.0) <= tol
                 and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
+            if grads is not None:
+                grads[:] = [gaa, gga, gab, ggb]
             return v, ia, ib, k
     return None
 
 
-def _pp_solve(stage, banks, vga, vgb, vk=None, d0=None, x0=None):
+def _pp_solve(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
     """Push-pull solve: the joint Newton iteration, else the bracketed one."""
-    got = _pp_joint(stage, banks, vga, vgb, vk, d0, x0)
+    got = _pp_joint(stage, banks, vga, vgb, vk, d0, x0, grads)
     if got is not None:
         return got
     return _pp_bracketed(stage, banks, vga, vgb, vk, d0)
@@ -436,7 +440,7 @@ def _idle(stage, banks) -> dict:
     return op
 
 
-def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None) -> dict:
+def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) -> dict:
     """Quasi-static response to the grid signal ``vin`` (any shape; push-pull: +vin on grid A,
     -vin on grid B).  Returns arrays: ``v_load`` (voltage across the reflected load [V],
     positive when the plate (A) swings down), per tube ``.ia``, ``.va``, ``.vgk``."""
@@ -449,9 +453,15 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None) -> dict:
             a0, a1, b0, b1 = stage.b_plus + RL * i0 - vk0, stage.r_primary + RL, vg + vin - vk0, 0.0
         else:
             a0, a1, b0, b1 = stage.b_plus + RL * i0, stage.r_primary + RL + rk, vg + vin, rk
-        # start from the linear response (a few iterations fewer than from the idle current)
-        ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
-        x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
+        if x0 is not None:
+            pass  # (the current of a solve nearby)
+        elif guide is not None:
+            # start from the transfer already solved on a grid of drives: a step or two
+            x0 = np.interp(vin, guide[0], guide[1]["tube.ia"])
+        else:
+            # start from the linear response (a few iterations fewer than from the idle current)
+            ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
+            x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
         i, *_ = _solve_tube(banks[0], a0, a1, b0, b1, x0=x0)
         vk = vk0 if (stage.bypassed or rk == 0.0) else rk * i
         plate = stage.b_plus + RL * i0 - (stage.r_primary + RL) * i
@@ -469,7 +479,8 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None) -> dict:
               np.interp(vin, xg, vg + xg - wg["A.vgk"]))
     if hold and vk is None:
         vk = op["vk"]
-    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=vk if hold else None, d0=d0, x0=x0)
+    v, ia, ib, vk = _pp_solve(stage, banks, vg + vin, vg - vin, vk=vk if hold else None, d0=d0, x0=x0,
+                              grads=grads)
     r = stage.r_primary / 2.0
     return {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
             "A.va": stage.b_plus - r * ia - v - vk, "B.va": stage.b_plus - r * ib + v - vk,
@@ -485,50 +496,105 @@ def _shifts(stage) -> bool:
 def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=None):
     """Cathode voltage of a :func:`_shifts` stage at each drive amplitude (a sine of
     ``n_samples`` a period, each distinct value solved once): see :func:`_cathode_rows`.
-    Returns (vk (len(amps),), waveforms of the distinct samples, (distinct, where) of
-    :func:`_half_period`)."""
+    ``vk0``: a start for each amplitude (None: the idle voltage).  Returns (vk (len(amps),),
+    waveforms of the distinct samples, (distinct, where) of :func:`_half_period`)."""
     amps = np.atleast_1d(np.asarray(amps, float))
-    theta = 2 * np.pi * np.arange(n_samples) / n_samples
-    distinct, where = _half_period(n_samples)
-    weight = np.bincount(where, minlength=distinct.size) / n_samples
-    vin = amps[:, None] * np.sin(theta[distinct])[None, :]
-    vk, w = _cathode_rows(stage, banks, op, vin, weight, guide, vk0)
+    sines, weight, distinct, where = _period_samples(n_samples)
+    vk, w = _cathode_rows(stage, banks, op, amps[:, None] * sines[None, :], weight, guide, vk0)
     return vk, w, (distinct, where)
 
 
-def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None):
+def _period_samples(n_samples=N_SAMPLES):
+    """(sin of the distinct samples, each one's share of the period, distinct, where)."""
+    theta = 2 * np.pi * np.arange(n_samples) / n_samples
+    distinct, where = _half_period(n_samples)
+    weight = np.bincount(where, minlength=distinct.size) / n_samples
+    return np.sin(theta[distinct]), weight, distinct, where
+
+
+def _vk_start(op, known, amps):
+    """A start for the shared bypassed cathode's voltage at ``amps`` from the (amplitude,
+    voltage) pairs already solved (``known``, a list of array pairs; the idle point is one),
+    interpolated in the square of the amplitude (the bias shift of a class-A pair grows as
+    its square); None without any."""
+    if not known:
+        return None
+    a = np.concatenate([[0.0]] + [np.ravel(k[0]) for k in known])
+    v = np.concatenate([[float(op["vk"])]] + [np.ravel(k[1]) for k in known])
+    o = np.argsort(a)
+    return np.interp(np.square(np.ravel(amps)), np.square(a[o]), v[o])
+
+
+def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None):
     """The shared bypassed cathode's voltage for each row of ``vin`` (a period's samples,
     ``weight`` each sample's share of the period): the root of G(vk) = vk - Rk mean(IA + IB)
     with the cathode held at vk.  G rises with slope 1 + Rk mean(-d(IA + IB)/dvk) > 1 (the
-    currents fall as the cathode rises), taken at each solve for a Newton step: three or four
-    solves.  Returns (vk (rows,), the waveforms there)."""
+    currents fall as the cathode rises), taken from the solved circuit's linearisation for a
+    Newton step, which also predicts the next solve's start: three or four solves of a step
+    or two each.
+
+    ``follow`` (rows,): the drive follows the cathode, amplitude follow + vk, ``vin`` the
+    unit sine's samples (the grid's crest at a fixed distance from the cathode: the
+    grid-current limit, :func:`_grid_limit_shifting`).  ``op``'s values may be (rows, 1)
+    arrays and ``banks`` one unit a row (many units at once).  Returns (vk (rows,), the
+    waveforms there)."""
     rk = stage._rk
+    rows = vin.shape[0]
     slope = 1.0
+    g0 = []
     for b, p in zip(banks, stage.positions):
-        gva, gvg = b.gradient(np.array(op[f"{p}.va"]), np.array(op[f"{p}.vgk"]))
-        slope += rk * float(gva + gvg)
-    vk = np.full(vin.shape[0], float(op["vk"] if vk0 is None else vk0))
+        gva, gvg = b.gradient(np.asarray(op[f"{p}.va"], float), np.asarray(op[f"{p}.vgk"], float))
+        slope = slope + rk * (gva + gvg)
+        g0 += [gva, gvg]
+    slope = np.broadcast_to(np.ravel(slope), (rows,))
+    vk = np.array(np.broadcast_to(np.ravel(np.asarray(op["vk"] if vk0 is None else vk0, float)), (rows,)))
     r, q = stage.r_primary / 2.0, stage.reflected_load / 4.0
     tol = 1e-10 * stage.b_plus
     x0 = None
-    for _ in range(40):
-        w = _waveforms(stage, banks, op, vin, guide, vk=vk[:, None], x0=x0)
-        # the next solve starts here (vk moves little): two or three Newton steps
-        x0 = (w["A.ia"], w["B.ia"], w["v_load"] / 2.0, w["vk"])
+    sines = vin
+    for it in range(40):
+        if follow is not None:
+            vin = (follow + vk)[:, None] * sines
+        if it == 0 and guide is None and _FAST:
+            # start from the circuit linearised at idle (a step or two fewer than from idle)
+            gaa, gga, gab, ggb = g0
+            ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+            sa, sb = gaa + gga, gab + ggb
+            dk = (vk - np.ravel(op["vk"]))[:, None]
+            dv = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
+            x0 = (op["A.ia"] + (-gaa * dv - sa * dk + gga * vin) / ca,
+                  op["B.ia"] + (gab * dv - sb * dk - ggb * vin) / cb, dv, vk[:, None])
+        grads = [] if _FAST else None
+        w = _waveforms(stage, banks, op, vin, guide, vk=vk[:, None], x0=x0, grads=grads)
         G = vk - rk * ((w["A.ia"] + w["B.ia"]) @ weight)
         if np.all(np.abs(G) <= tol):
             return vk, w
         # Newton: dG/dvk from the solved circuit's linearisation at each sample (the tube
         # equations and the transformer's ampere-turn balance with the cathode held)
-        _, gaa, gga = banks[0].current_and_gradient(w["A.va"], w["A.vgk"])
-        _, gab, ggb = banks[1].current_and_gradient(w["B.va"], w["B.vgk"])
+        if grads:
+            gaa, gga, gab, ggb = grads
+        else:
+            _, gaa, gga = banks[0].current_and_gradient(w["A.va"], w["A.vgk"])
+            _, gab, ggb = banks[1].current_and_gradient(w["B.va"], w["B.vgk"])
         ca, cb = 1.0 + r * gaa, 1.0 + r * gab
         sa, sb = gaa + gga, gab + ggb
-        dv = q * (sb / cb - sa / ca) / (1.0 + q * (gaa / ca + gab / cb))
-        di = (-gaa * dv - sa) / ca + (gab * dv - sb) / cb
-        s_ = 1.0 - rk * (di @ weight)
-        s_ = np.where(np.isfinite(s_) & (s_ >= 1.0), s_, slope)
-        vk = vk - G / s_
+        if follow is None:
+            ea = eb = 0.0
+        else:  # the drive (grid A up, grid B down) moves with the cathode
+            ea, eb = gga * sines, ggb * sines
+        dv = q * (sb / cb - sa / ca + ea / ca + eb / cb) / (1.0 + q * (gaa / ca + gab / cb))
+        dia = (-gaa * dv - sa + ea) / ca
+        dib = (gab * dv - sb - eb) / cb
+        s_ = 1.0 - rk * ((dia + dib) @ weight)
+        s_ = np.where(np.isfinite(s_) & (s_ >= (1.0 if follow is None else 0.05)), s_, slope)
+        dk = -G / s_
+        vk = vk + dk
+        if _FAST:
+            # the next solve starts from the linear prediction there: a step or two
+            x0 = (w["A.ia"] + dia * dk[:, None], w["B.ia"] + dib * dk[:, None],
+                  w["v_load"] / 2.0 + dv * dk[:, None], vk[:, None])
+        else:
+            x0 = (w["A.ia"], w["B.ia"], w["v_load"] / 2.0, w["vk"])
     raise StageSolveError("the shared cathode resistor's voltage under drive did not converge")
 
 
@@ -579,16 +645,20 @@ def _margins(stage, banks, op, amps, keep=None):
     """(grid margin, cut-off margin) at each amplitude: positive while inside.  The extremes
     of a quasi-static swing are at the sine's peaks (the transfer is monotone).
 
-    ``keep`` (push-pull): a dict; its ``"guide"`` (the transfer at the crests of the first
+    ``keep``: a dict; its ``"guide"`` (the transfer at the crests of the first
     call, as drives and waveforms) starts every later call, and is left there for the
     caller's solves."""
     amps = np.asarray(amps, float)
     guide = None if keep is None else keep.get("guide")
     vk = None
     if _shifts(stage):
-        vk = _cathode_at(stage, banks, op, amps.ravel(), guide)[0].reshape(amps.shape)[..., None]
+        known = None if keep is None else keep.setdefault("vk", [])
+        vk = _cathode_at(stage, banks, op, amps.ravel(), guide, vk0=_vk_start(op, known, amps))[0]
+        if known is not None:
+            known.append((amps.ravel(), vk))
+        vk = vk.reshape(amps.shape)[..., None]
     w = _waveforms(stage, banks, op, np.stack([amps, -amps], axis=-1), guide, vk=vk)
-    if keep is not None and guide is None and stage.kind == "push-pull" and amps.ndim == 1:
+    if keep is not None and guide is None and amps.ndim == 1:
         order = np.argsort(amps)
         keep["guide"] = (np.concatenate([-amps[order][::-1], amps[order]]),
                          {k: np.concatenate([np.broadcast_to(v, amps.shape + (2,))[order][::-1, 1],
@@ -678,7 +748,7 @@ def _drive_limits(stage, banks, op, keep=None):
         # with its mean over a period, each amplitude's found by _cathode_at, so fewer points)
         hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
         if _shifts(stage):
-            grid = _grid_limit_shifting(stage, banks, op, head)
+            grid = _grid_limit_shifting(stage, banks, op, head, None if keep is None else keep.setdefault("vk", []))
             cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid, n=16, passes=3)
             return {"grid": grid, "cutoff": cut}
         grid, cut = _two_crossings(lambda a: _margins(stage, banks, op, a, keep), hi)
@@ -689,25 +759,19 @@ def _drive_limits(stage, banks, op, keep=None):
     return {"grid": grid, "cutoff": cut}
 
 
-def _grid_limit_shifting(stage, banks, op, head):
+def _grid_limit_shifting(stage, banks, op, head, known=None):
     """The drive where a grid reaches the onset when the shared bypassed cathode follows the
     mean current: the crest reaches it at a = onset - bias + vk(a), a fixed point (vk grows
-    slowly with a), found by secant steps from the held-cathode answer ``head``."""
-    last = [None]
-
-    def h(a):
-        vk = float(_cathode_at(stage, banks, op, [a], vk0=last[0])[0][0])
-        last[0] = vk
-        return a - (stage.grid_onset - stage._vg + vk)
-
-    a0, h0 = head, h(head)
-    a1 = head - h0
-    for _ in range(30):
-        h1 = h(a1)
-        if abs(h1) <= 1e-10 * stage.b_plus:
-            return float(a1)
-        a0, h0, a1 = a1, h1, a1 - h1 * (a1 - a0) / (h1 - h0) if h1 != h0 else a1 - h1
-    raise StageSolveError("the grid-current limit with the shared cathode's bias shift did not converge")
+    slowly with a), found with the cathode's own Newton iteration by moving the drive with
+    the cathode (:func:`_cathode_rows` ``follow``).  ``known``: a list that receives the
+    (amplitude, cathode voltage) pair."""
+    sines, weight, _, _ = _period_samples()
+    c = np.array([stage.grid_onset - stage._vg])
+    vk, _ = _cathode_rows(stage, banks, op, sines[None, :], weight, follow=c)
+    a = float(c[0] + vk[0])
+    if known is not None:
+        known.append((np.array([a]), vk.copy()))
+    return a
 
 
 # ---------------------------------------------------------------------------
@@ -752,14 +816,19 @@ def _half_period(n):
     return distinct, np.searchsorted(distinct, canon)
 
 
-def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES, guide=None):
+def _spectra(stage, banks, op, amps, n_samples=N_SAMPLES, guide=None, known=None):
     """Waveforms of one period at each amplitude (rows) and their harmonics H1..H10.  The
     quasi-static response has no memory, so the samples where the sine repeats a value are
     solved once (about half of them) and copied.  ``guide`` (drives, waveforms): the
-    push-pull's transfer on a grid of drives covering ``amps``, to start the solve from."""
+    push-pull's transfer on a grid of drives covering ``amps``, to start the solve from;
+    ``known``: the shared bypassed cathode's (amplitude, voltage) pairs solved so far (for
+    a start; this solve's are added)."""
     amps = np.atleast_1d(np.asarray(amps, float))
     if _shifts(stage):
-        _, w, (distinct, where) = _cathode_at(stage, banks, op, amps, guide, n_samples)
+        vk, w, (distinct, where) = _cathode_at(stage, banks, op, amps, guide, n_samples,
+                                               _vk_start(op, known, amps))
+        if known is not None:
+            known.append((amps, vk))
         shape = (amps.size, distinct.size)
     else:
         theta = 2 * np.pi * np.arange(n_samples) / n_samples
@@ -782,7 +851,7 @@ def _sweep_from(stage, amps, h):
     return PowerSweep(np.asarray(amps, float), power, h2, h3, thd, h)
 
 
-def _level_at_thd(stage, banks, op, sweep, target, guide=None):
+def _level_at_thd(stage, banks, op, sweep, target, guide=None, known=None):
     """Drive where THD first reaches ``target`` (interpolated in the sweep, then refined by
     bisection); None when it stays below up to the sweep's end."""
     over = np.nonzero(sweep.thd >= target)[0]
@@ -799,7 +868,7 @@ def _level_at_thd(stage, banks, op, sweep, target, guide=None):
     # THD grows smoothly with the drive: interpolate between the bracketing levels, then
     # one secant step from a solve at the estimate
     x = lo + (up - lo) * (target - tlo) / (tup - tlo)
-    _, h = _spectra(stage, banks, op, [x], guide=guide)
+    _, h = _spectra(stage, banks, op, [x], guide=guide, known=known)
     tx = _sweep_from(stage, [x], h).thd[0]
     if tx < target:
         lo, tlo = x, tx
@@ -997,7 +1066,8 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
                               "grid current (bias the grid below it)")
     amps = vin_max * np.linspace(1.0 / levels, 1.0, levels)
     class_ab = not se and lim["cutoff"] is not None and lim["cutoff"] < vin_max
-    guide = None
+    # single-ended: the transfer at the crests of the limit's scan starts every later solve
+    guide = keep.get("guide") if _FAST else None
     if not se:
         # the transfer over the whole drive range: the composite transconductance, and the
         # start of every later solve (each then needs a step or two instead of six or seven)
@@ -1005,15 +1075,17 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         w_x = _waveforms(stage, banks, op, x, keep.get("guide") if _FAST else None)
         guide = (x, w_x) if _FAST else None
     # one solve for the power sweep and the end of class A
-    w, h = _spectra(stage, banks, op, np.append(amps, lim["cutoff"]) if class_ab else amps, guide=guide)
+    known = keep.get("vk") if _FAST else None
+    w, h = _spectra(stage, banks, op, np.append(amps, lim["cutoff"]) if class_ab else amps, guide=guide,
+                    known=known)
     if class_ab:
         h_cut = h[-1:]
         w = {key: val[:-1] for key, val in w.items()}
         h = h[:-1]
     sweep = _sweep_from(stage, amps, h)
-    vin_thd = _level_at_thd(stage, banks, op, sweep, thd, guide)
+    vin_thd = _level_at_thd(stage, banks, op, sweep, thd, guide, known)
     if vin_thd is not None:
-        _, h_t = _spectra(stage, banks, op, [vin_thd], guide=guide)
+        _, h_t = _spectra(stage, banks, op, [vin_thd], guide=guide, known=known)
         p_thd = float(_sweep_from(stage, [vin_thd], h_t).power[0])
     else:
         p_thd = None
@@ -1181,13 +1253,16 @@ _CHEB = (32, 64, 128, 192)
 _CHEB_TAIL = 1e-9
 
 
-def _flat_waveforms(stage, banks, op, vin):
+def _flat_waveforms(stage, banks, op, vin, x0=None):
     """:func:`_waveforms` for n units with k inputs each: ``banks`` of n units, ``op`` of
-    (n,) arrays, ``vin`` (n, k); returns (n, k) arrays."""
+    (n,) arrays, ``vin`` (n, k), ``x0`` a start as :func:`_waveforms` takes it ((n, k)
+    arrays); returns (n, k) arrays."""
     n, k = vin.shape
     bk = [b.repeat(k) for b in banks]
     opk = {key: np.repeat(np.asarray(v, float), k) for key, v in op.items()}
-    w = _waveforms(stage, bk, opk, vin.ravel())
+    if x0 is not None:
+        x0 = np.ravel(x0) if isinstance(x0, np.ndarray) else tuple(np.ravel(v) for v in x0)
+    w = _waveforms(stage, bk, opk, vin.ravel(), x0=x0)
     return {key: np.broadcast_to(v, (n * k,)).reshape(n, k) for key, v in w.items()}
 
 
@@ -1361,8 +1436,16 @@ def _many_group(stage, cases, thd, level, levels):
     n0 = len(cases)
     if _shifts(stage):
         # the cathode follows each level's mean current: no single transfer to sample, so
-        # each case is solved by solve_output
-        return ({k: np.full(n0, np.nan) for k in _many_keys(stage)}, np.zeros(n0, bool), np.ones(n0, bool))
+        # solve_output's own steps, run for many units at once
+        figs = {k: np.full(n0, np.nan) for k in _many_keys(stage)}
+        failed = np.zeros(n0, bool)
+        for at in range(0, n0, _SHIFT_BLOCK):
+            ix = slice(at, min(n0, at + _SHIFT_BLOCK))
+            got, bad = _many_shifting(stage, cases[ix], thd, level, levels)
+            for k, v in got.items():
+                figs[k][ix] = v
+            failed[ix] = bad
+        return figs, failed, np.zeros(n0, bool)
     se = stage.kind == "single-ended"
     npos = len(stage.positions)
     banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
@@ -1411,11 +1494,24 @@ def _many_group(stage, cases, thd, level, levels):
     coef = {}
     top = 0
     todo = np.arange(keep.size)
+    # the unknowns of a solve (a finer series' solve starts from the coarser one's series
+    # at its nodes: a step or two instead of seven)
+    unknowns = ["tube.ia"] if se else ["A.ia", "B.ia", "v_load", "A.vgk"]
+    start = None
     for K in _CHEB[0 if se else 1:]:  # a push-pull's transfer is never that smooth
         C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
         x = np.cos(np.pi * (np.arange(K) + 0.5) / K)
         bk, ok_ = sub(keep[todo])
-        w = _flat_waveforms(stage, bk, ok_, vin_max[todo, None] * x[None, :])
+        x0 = None
+        if start is not None and _FAST:
+            E = np.cos(np.arccos(x)[:, None] * np.arange(start[next(iter(start))].shape[1])[None, :])
+            got = {k: np.einsum("nk,jk->nj", v, E) for k, v in start.items()}
+            if se:
+                x0 = got["tube.ia"]
+            else:
+                vin = vin_max[todo, None] * x[None, :]
+                x0 = (got["A.ia"], got["B.ia"], got["v_load"] / 2.0, stage._vg + vin - got["A.vgk"])
+        w = _flat_waveforms(stage, bk, ok_, vin_max[todo, None] * x[None, :], x0)
         # einsum, not BLAS: these products are small, and BLAS threads on a busy machine
         # cost many times the arithmetic (measured: 80 ms against 4 ms)
         cf = {k: np.einsum("nj,kj->nk", w[k], C) for k in names}
@@ -1426,6 +1522,8 @@ def _many_group(stage, cases, thd, level, levels):
             top = K
         for k in names:
             coef.setdefault(k, np.zeros((keep.size, _CHEB[-1])))[todo[done], :K] = cf[k][done]
+        if (~done).any():
+            start = {k: (cf[k] if k in cf else np.einsum("nj,kj->nk", w[k], C))[~done] for k in unknowns}
         todo = todo[~done]
         if todo.size == 0:
             break
@@ -1491,6 +1589,118 @@ def _many_group(stage, cases, thd, level, levels):
     for key in figs:
         figs[key][keep[~smooth]] = np.nan
     return figs, failed, alone
+
+
+#: units solved at once by :func:`_many_shifting` (its arrays are levels x samples a unit:
+#: a block of this size keeps them in cache)
+_SHIFT_BLOCK = 16
+
+
+def _rows_bank(bank, k):
+    """``bank`` (n units) as a column of n k rows (each unit repeated ``k`` times), to
+    broadcast against (rows, samples) states."""
+    return _Bank(bank.model, {n: (np.repeat(v, k)[:, None] if isinstance(v, np.ndarray) else v)
+                              for n, v in bank.params.items()})
+
+
+def _many_shifting(stage, cases, thd, level, levels):
+    """:func:`_many_group` for a push-pull on a shared bypassed cathode resistor: the steps of
+    :func:`solve_output` (grid-current limit, power sweep, level at the THD target) for every
+    unit at once, each level's cathode voltage by :func:`_cathode_rows` over (unit, level)
+    rows.  Returns (figures (n,), failed (n,))."""
+    n0 = len(cases)
+    npos = len(stage.positions)
+    figs = {k: np.full(n0, np.nan) for k in _many_keys(stage)}
+    banks = [_Bank.of([c[j] for c in cases]) for j in range(npos)]
+    op = _idle_many(stage, banks, n0)
+    failed = np.min([op[f"{p}.ia"] for p in stage.positions], axis=0) <= 1e-7
+    keep = np.nonzero(~failed)[0]
+    if keep.size == 0:
+        return figs, failed
+    banks = [_Bank.of([cases[i][j] for i in keep]) for j in range(npos)]
+    op = {k: np.asarray(v, float)[keep] for k, v in op.items()}
+    n = keep.size
+    sines, weight, distinct, where = _period_samples()
+
+    def rows(k):
+        return [_rows_bank(b, k) for b in banks], {key: np.repeat(v, k)[:, None] for key, v in op.items()}
+
+    def solve(amps, vk0):
+        """(vk, waveforms over a period (rows, N_SAMPLES)) for amplitudes (n, k)."""
+        bk, ok = rows(amps.shape[1])
+        vk, w = _cathode_rows(stage, bk, ok, amps.reshape(-1, 1) * sines[None, :], weight, vk0=vk0.ravel())
+        return vk, {key: np.broadcast_to(val, (vk.size, distinct.size))[:, where] for key, val in w.items()}
+
+    # the grid-current limit (as _grid_limit_shifting)
+    bk, ok = rows(1)
+    c = stage.grid_onset - stage._vg
+    vk_g, _ = _cathode_rows(stage, bk, ok, np.broadcast_to(sines, (n, sines.size)), weight,
+                            follow=np.full(n, c))
+    vin_max = c + vk_g
+    good = vin_max > 1e-9 * stage.b_plus
+    # the power sweep, each level started from the cathode's square-law growth to the limit
+    r_l = np.linspace(1.0 / levels, 1.0, levels)
+    vk0 = op["vk"][:, None] + (vk_g - op["vk"])[:, None] * r_l[None, :] ** 2
+    amps = vin_max[:, None] * r_l[None, :]
+    vk, w = solve(amps, vk0)
+    RL = stage.reflected_load
+    v_load = w["v_load"].reshape(n, levels, N_SAMPLES)
+    power, t = _thd_of(v_load, RL)
+    vk = vk.reshape(n, levels)
+    # the drive at the THD target: interpolated, one secant step from a solve there (as
+    # _level_at_thd), and the power at that drive
+    over = t >= thd
+    has = over.any(axis=1) & good
+    p_thd = np.full(n, np.nan)
+    if has.any():
+        hx = np.nonzero(has)[0]
+        k = np.argmax(over[hx], axis=1)
+        av = amps[hx]
+        lo = np.where(k == 0, 0.0, av[np.arange(hx.size), np.maximum(k - 1, 0)])
+        tlo = np.where(k == 0, 0.0, t[hx, np.maximum(k - 1, 0)])
+        up, tup = av[np.arange(hx.size), k], t[hx, k]
+        vk_at = np.where(k == 0, op["vk"][hx], vk[hx, np.maximum(k - 1, 0)])
+        sub = [_Bank(b.model, {m: (v[hx] if isinstance(v, np.ndarray) else v) for m, v in b.params.items()})
+               for b in banks]
+        opx = {key: v[hx] for key, v in op.items()}
+
+        def at(x, vk0):
+            bk_, ok_ = [_rows_bank(b, 1) for b in sub], {key: v[:, None] for key, v in opx.items()}
+            vkx, wx = _cathode_rows(stage, bk_, ok_, x[:, None] * sines[None, :], weight, vk0=vk0)
+            return vkx, _thd_of(np.broadcast_to(wx["v_load"], (x.size, distinct.size))[:, where], RL)
+
+        x = lo + (up - lo) * (thd - tlo) / (tup - tlo)
+        vkx, (_, tx) = at(x, vk_at)
+        below = tx < thd
+        lo, tlo = np.where(below, x, lo), np.where(below, tx, tlo)
+        up, tup = np.where(below, up, x), np.where(below, tup, tx)
+        xt = lo + (up - lo) * (thd - tlo) / (tup - tlo)
+        _, (pt, _) = at(xt, vkx)
+        p_thd[hx] = pt
+    res = {}
+    for p in stage.positions:
+        for q in ("ia", "va", "pa"):
+            res[f"{p}.{q}"] = op[f"{p}.{q}"]
+    res["p_max"] = power[:, -1]
+    res["p_thd"] = p_thd
+    thd_at = np.full(n, np.nan)
+    if level is not None:
+        for u in range(n):
+            if power[u, 0] <= level <= power[u, -1]:
+                thd_at[u] = np.interp(level, power[u], t[u])
+    res["thd"] = thd_at
+    res["zout"] = _z_out_many(stage, banks, op)
+    res["damping"] = stage.speaker / res["zout"]
+    if stage.pa_max is not None:
+        full = [np.mean((w[f"{p}.va"] * w[f"{p}.ia"]).reshape(n, levels, N_SAMPLES)[:, -1], axis=1)
+                for p in stage.positions]
+        res["pa_ratio"] = np.max([np.maximum(op[f"{p}.pa"], f) for p, f in zip(stage.positions, full)],
+                                 axis=0) / stage.pa_max
+    res["imbalance"] = op["A.ia"] - op["B.ia"]
+    for key, v in res.items():
+        figs[key][keep[good]] = np.asarray(v)[good]
+    failed[keep[~good]] = True
+    return figs, failed
 
 
 def _z_out_many(stage, banks, op):

@@ -249,11 +249,12 @@ def _cf_mid(st: CathodeFollower, banks, op, vin, inj, gl):
     return _single_tube_nodes(vg, k, p, I)
 
 
-def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, n=1):
+def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, n=1, joint_first=True):
     """Solve the stack for bottom grid voltage ``vg1``.
 
     ``mid_op`` None: DC (capacitors open).  Otherwise mid-band with the capacitors
-    holding the charge of the DC solution ``mid_op``.
+    holding the charge of the DC solution ``mid_op``.  ``joint_first`` False: the nested
+    bracketed iteration only (for the samples the joint one left unconverged).
     """
     bottom, top = banks
     inj = inj or {}
@@ -346,13 +347,17 @@ def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, 
             dp = np.minimum(np.maximum(dp, -0.2 * B), 0.2 * B)
             di1 = (-r1 + f1va * dp) / D1
             di2 = (-r2 + c2 * dp) / D2
-            if not np.isfinite(dp + di1 + di2).all():
-                return None
+            finite = np.isfinite(dp + di1 + di2)
             # currents to 1e-11 relative (node voltages then agree with ngspice to about
             # 1e-11, far below any figure a report shows); the plate voltage to 1e-12 B+
-            if ((np.abs(dp) <= tol_p) & (np.abs(di1) <= _I_ABS + 1e-11 * np.abs(i1))
-                    & (np.abs(di2) <= _I_ABS + 1e-11 * np.abs(i2))).all():
+            ok = (finite & (np.abs(dp) <= tol_p) & (np.abs(di1) <= _I_ABS + 1e-11 * np.abs(i1))
+                  & (np.abs(di2) <= _I_ABS + 1e-11 * np.abs(i2)))
+            if ok.all():
                 return p1, i1, i2
+            if not finite.all() or it == _JOINT_MAXIT - 1:
+                # the samples converged here keep this answer; the rest are solved by the
+                # bracketed iteration (all of them where the arrays do not allow that)
+                return (p1, i1, i2, ok) if np.ndim(ok) == 1 and ok.any() else None
             p1 = p1 + dp
             # currents stay non-negative where the model cannot give a negative one
             i1 = np.where(i1 + di1 < 0, 0.5 * i1, i1 + di1) if bottom.nonnegative else i1 + di1
@@ -360,7 +365,9 @@ def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, 
         return None
 
     got = None
-    if _JOINT and not dc:
+    if not joint_first:
+        pass
+    elif _JOINT and not dc:
         got = joint(np.broadcast_to(mid_op["plate_bottom"], shape).astype(float),
                     np.broadcast_to(x0[0], shape).astype(float), np.broadcast_to(x0[1], shape).astype(float))
     elif _JOINT:
@@ -372,7 +379,28 @@ def _stack_solve(st: Stack, banks, vg1, mid_op=None, inj=None, gl=0.0, x0=None, 
         f0, g0a, g0g = bottom.current_and_gradient(va_s, vg_s)
         istart = np.broadcast_to(f0 / (1.0 + ru * (g0a + g0g)), shape).astype(float)
         got = joint(pstart, istart, istart.copy())
-    if got is not None:
+    if got is not None and len(got) == 4:
+        p1, i1, i2, ok = (np.array(np.broadcast_to(v, shape)) for v in got)
+        ok = ok.astype(bool)
+        bad = ~ok
+        N = shape[0]
+
+        def take(v):
+            return v[bad] if isinstance(v, np.ndarray) and v.shape == (N,) else v
+
+        sub = _stack_solve(st, tuple(_Bank(b.model, {k: take(v) for k, v in b.params.items()}) for b in banks),
+                           take(np.broadcast_to(vg1, shape)),
+                           None if dc else {k: take(np.broadcast_to(np.asarray(v, float), shape))
+                                            for k, v in mid_op.items()},
+                           {k: take(np.broadcast_to(np.asarray(v, float), shape)) for k, v in inj.items()},
+                           take(np.broadcast_to(np.asarray(gl, float), shape)) if np.ndim(gl) else gl,
+                           None if x0 is None else tuple(take(np.broadcast_to(np.asarray(v, float), shape))
+                                                         for v in x0),
+                           n=int(bad.sum()), joint_first=False)
+        p1[bad] = sub["plate_bottom"]
+        i1[bad] = sub["bottom.ia"]
+        i2[bad] = sub["top.ia"]
+    elif got is not None:
         p1, i1, i2 = got
     else:
         p0 = (0.5 * B) if dc else mid_op["plate_bottom"]
