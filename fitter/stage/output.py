@@ -1562,19 +1562,8 @@ def _many_group(stage, cases, thd, level, levels):
         rt = np.where(has, lo + (up - lo) * (thd - tlo) / (tup - tlo), 1.0)
         p_thd, _ = _thd_of(_cheb_at(c, rt, s), RL)
     res = {}
-    for p in stage.positions:
-        for q in ("ia", "va", "pa"):
-            res[f"{p}.{q}"] = opk[f"{p}.{q}"]
-    res["p_max"] = power[:, -1]
     res["p_thd"] = np.where(has, p_thd, np.nan)
-    thd_at = np.full(n, np.nan)
-    if level is not None:
-        for u in range(n):
-            if power[u, 0] <= level <= power[u, -1]:
-                thd_at[u] = np.interp(level, power[u], t[u])
-    res["thd"] = thd_at
-    res["zout"] = _z_out_many(stage, banks, opk)
-    res["damping"] = stage.speaker / res["zout"]
+    _batch_common(stage, banks, opk, power, t, level, res)
     if stage.pa_max is not None:
         pa = []
         for p in stage.positions:
@@ -1678,19 +1667,8 @@ def _many_shifting(stage, cases, thd, level, levels):
         _, (pt, _) = at(xt, vkx)
         p_thd[hx] = pt
     res = {}
-    for p in stage.positions:
-        for q in ("ia", "va", "pa"):
-            res[f"{p}.{q}"] = op[f"{p}.{q}"]
-    res["p_max"] = power[:, -1]
     res["p_thd"] = p_thd
-    thd_at = np.full(n, np.nan)
-    if level is not None:
-        for u in range(n):
-            if power[u, 0] <= level <= power[u, -1]:
-                thd_at[u] = np.interp(level, power[u], t[u])
-    res["thd"] = thd_at
-    res["zout"] = _z_out_many(stage, banks, op)
-    res["damping"] = stage.speaker / res["zout"]
+    _batch_common(stage, banks, op, power, t, level, res)
     if stage.pa_max is not None:
         full = [np.mean((w[f"{p}.va"] * w[f"{p}.ia"]).reshape(n, levels, N_SAMPLES)[:, -1], axis=1)
                 for p in stage.positions]
@@ -1701,6 +1679,24 @@ def _many_shifting(stage, cases, thd, level, levels):
         figs[key][keep[good]] = np.asarray(v)[good]
     failed[keep[~good]] = True
     return figs, failed
+
+
+def _batch_common(stage, banks, op, power, t, level, res):
+    """The figures both batched solves fill alike: each tube's idle point, the largest output,
+    THD at ``level`` [W] (interpolated in each unit's power sweep), output impedance, damping."""
+    n = power.shape[0]
+    for p in stage.positions:
+        for q in ("ia", "va", "pa"):
+            res[f"{p}.{q}"] = op[f"{p}.{q}"]
+    res["p_max"] = power[:, -1]
+    thd_at = np.full(n, np.nan)
+    if level is not None:
+        for u in range(n):
+            if power[u, 0] <= level <= power[u, -1]:
+                thd_at[u] = np.interp(level, power[u], t[u])
+    res["thd"] = thd_at
+    res["zout"] = _z_out_many(stage, banks, op)
+    res["damping"] = stage.speaker / res["zout"]
 
 
 def _z_out_many(stage, banks, op):
