@@ -513,15 +513,38 @@ def _numbers(d, path=""):
 @pytest.mark.parametrize("key", sorted(NG_CASES))
 def test_fast_solve_paths_give_the_plain_results(key, monkeypatch):
     # The speed-ups (one model call for both tubes, each sine value solved once, solves
-    # started from the transfer already solved) change nothing beyond the iteration's
-    # tolerance: every number of the result within 1e-9 relative of the plain path's
-    # (the same engine, the reference being its straightforward form).
+    # started from the transfer already solved, the shared cathode's voltage solved with
+    # the samples) change nothing beyond the iteration's tolerance: every number of the
+    # result within 1e-9 relative of the plain path's (the same engine, the reference
+    # being its straightforward form).  The transfer's series is off here (next test).
     import fitter.stage.output as out
 
     st, tubes, _ = NG_CASES[key]
+    monkeypatch.setattr(out, "_SERIES", False)
     fast = dict(_numbers(solve_output(st, *tubes).to_dict()))
     monkeypatch.setattr(out, "_FAST", False)
     plain = dict(_numbers(solve_output(st, *tubes).to_dict()))
     assert fast.keys() == plain.keys()
     for k, v in plain.items():
         assert fast[k] == pytest.approx(v, rel=1e-9, abs=1e-300), k
+
+
+@pytest.mark.parametrize("key", sorted(NG_CASES))
+def test_series_figures_agree_with_sampling_every_level(key, monkeypatch):
+    # The default path takes every level's harmonics (and the cut-off search of a stage
+    # whose cathode holds still) from the transfer's Chebyshev series, truncated where its
+    # last coefficients fall below 1e-9 of its largest.  Against solving every sample of
+    # every level (the plain path): each figure within 1e-6 relative, each harmonic within
+    # 0.001 dB (a harmonic 90 dB down is where the truncation shows most: about 1e-4 dB).
+    import fitter.stage.output as out
+
+    st, tubes, _ = NG_CASES[key]
+    series = dict(_numbers(solve_output(st, *tubes).to_dict()))
+    monkeypatch.setattr(out, "_FAST", False)
+    plain = dict(_numbers(solve_output(st, *tubes).to_dict()))
+    assert series.keys() == plain.keys()
+    for k, v in plain.items():
+        if k.endswith("_db") or "_db[" in k:
+            assert series[k] == pytest.approx(v, abs=1e-3), k
+        else:
+            assert series[k] == pytest.approx(v, rel=1e-6, abs=1e-12), k

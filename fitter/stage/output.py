@@ -263,6 +263,10 @@ _JOINT_MAXIT = 40
 #: model call, each sine value solved once, later solves started from the transfer already
 #: solved (False: the plain path, which a test compares with)
 _FAST = True
+#: the transfer of a stage whose cathode does not shift solved at Chebyshev nodes, and every
+#: level's harmonics taken from its series (within 1e-9 of the largest coefficient, so the
+#: figures agree with sampling every level to about 1e-6; a test compares them)
+_SERIES = True
 
 
 def _pair_bank(banks, m):
@@ -275,9 +279,16 @@ def _pair_bank(banks, m):
         return None
     if a.arrays() or b.arrays():
         return None
+    # kept on the first bank (a solve makes the pair for the same sizes again and again)
+    cache = a.__dict__.setdefault("_pairs", {})
+    got = cache.get((id(b), m))
+    if got is not None and got[0] is b:
+        return got[1]
     params = {n: (a.params[n] if a.params[n] == b.params[n] else np.repeat([a.params[n], b.params[n]], m))
               for n in a.model.param_names}
-    return _Bank(a.model, params)
+    pair = _Bank(a.model, params)
+    cache[(id(b), m)] = (b, pair)
+    return pair
 
 
 def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
@@ -290,23 +301,27 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
     r = stage.r_primary / 2.0
     q = stage.reflected_load / 4.0
     rk = stage._rk
-    shape = np.broadcast(np.asarray(vga), np.asarray(vgb)).shape
+    vga = np.asarray(vga, float)
+    vgb = np.asarray(vgb, float)
+    shape = vga.shape if vga.shape == vgb.shape else np.broadcast_shapes(vga.shape, vgb.shape)
     solve_v = d0 is not None
     solve_k = vk is None
+
+    def state(x):
+        # the iteration makes new arrays (never writes into these): a view does
+        x = np.asarray(x, float)
+        return x if x.shape == shape else np.broadcast_to(x, shape)
     if x0 is None:
-        ia = np.zeros(shape)
-        ib = np.zeros(shape)
-        v = np.zeros(shape)
-        k = np.zeros(shape)
+        ia = ib = v = k = np.zeros(shape)
     else:
-        ia, ib, v, k = (np.array(np.broadcast_to(x, shape), float) for x in x0)
+        ia, ib, v, k = (state(x) for x in x0)
     if not solve_k:
-        k = np.array(np.broadcast_to(np.asarray(vk, float), shape))
+        k = state(vk)
     tol = 1e-11 * B
-    m = int(np.prod(shape))
-    pair = _pair_bank(banks, m) if m > 1 and _FAST else None
-    vga_ = np.broadcast_to(np.asarray(vga, float), shape)
-    vgb_ = np.broadcast_to(np.asarray(vgb, float), shape)
+    m = math.prod(shape)
+    pair = _pair_bank(banks, m) if _FAST else None
+    vga_ = state(vga)
+    vgb_ = state(vgb)
     for _ in range(_JOINT_MAXIT):
         if pair is not None:
             f, gv, gg = pair.current_and_gradient(
@@ -353,10 +368,11 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
         ib = ib + dib
         v = v + dv
         k = k + dk
-        if not np.all(np.isfinite(ia) & np.isfinite(ib)):
+        # (a NaN or infinity anywhere makes the sum so)
+        if not math.isfinite(np.add.reduce(ia, None) + np.add.reduce(ib, None)):
             return None
-        if (np.max(np.abs(dv), initial=0.0) <= tol and np.max(np.abs(dk), initial=0.0) <= tol
-                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
+        if (np.abs(dv).max(initial=0.0) <= tol and np.abs(dk).max(initial=0.0) <= tol
+                and (np.abs(dia) + np.abs(dib)).max() <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max()):
             if grads is not None:
                 grads[:] = [gaa, gga, gab, ggb]
             return v, ia, ib, k
@@ -461,7 +477,8 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) 
         else:
             # start from the linear response (a few iterations fewer than from the idle current)
             ga, gg = banks[0].gradient(np.array(op["tube.va"]), np.array(op["tube.vgk"]))
-            x0 = i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg))
+            # (not below zero: past cut-off the current is nearly nil, not negative)
+            x0 = np.maximum(i0 + vin * (gg / (1.0 + a1 * ga + b1 * gg)), 0.0)
         i, *_ = _solve_tube(banks[0], a0, a1, b0, b1, x0=x0)
         vk = vk0 if (stage.bypassed or rk == 0.0) else rk * i
         plate = stage.b_plus + RL * i0 - (stage.r_primary + RL) * i
@@ -470,6 +487,16 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) 
     hold = stage.rk is None or stage.bypassed
     if x0 is not None:
         pass  # (push-pull: IA, IB, v, vk of a solve nearby)
+    elif guide is None and hold and _FAST:
+        # the circuit linearised at idle, the cathode held (a step or two fewer than from
+        # idle); no current below zero (past cut-off a tube carries nearly none)
+        gaa, gga = banks[0].gradient(np.asarray(op["A.va"], float), np.asarray(op["A.vgk"], float))
+        gab, ggb = banks[1].gradient(np.asarray(op["B.va"], float), np.asarray(op["B.vgk"], float))
+        ca, cb = 1.0 + stage.r_primary / 2.0 * gaa, 1.0 + stage.r_primary / 2.0 * gab
+        q = stage.reflected_load / 4.0
+        dv = q * (gga / ca + ggb / cb) * vin / (1.0 + q * (gaa / ca + gab / cb))
+        x0 = (np.maximum(op["A.ia"] + (-gaa * dv + gga * vin) / ca, 0.0),
+              np.maximum(op["B.ia"] + (gab * dv - ggb * vin) / cb, 0.0), dv, op["vk"])
     elif guide is None:
         x0 = (op["A.ia"], op["B.ia"], 0.0, op["vk"])
     else:
@@ -525,6 +552,94 @@ def _vk_start(op, known, amps):
     return np.interp(np.square(np.ravel(amps)), np.square(a[o]), v[o])
 
 
+def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None):
+    """:func:`_cathode_rows` as one Newton iteration on every sample's (IA, IB, v) and each
+    row's cathode voltage together (a bordered system): per sample the tube equations and the
+    transformer's ampere-turn balance are eliminated, leaving dIA + dIB affine in the row's
+    dvk, so the row's equation vk = Rk mean(IA + IB) gives dvk in closed form.  Three or
+    four model calls in all, where the nested iteration (a joint solve at each cathode
+    voltage) takes ten or more.  Returns None when it does not converge (the nested
+    iteration then takes over)."""
+    rk, vg = stage._rk, stage._vg
+    B, r, q = stage.b_plus, stage.r_primary / 2.0, stage.reflected_load / 4.0
+    rows, S = vin.shape
+    d0 = op["A.ia"] - op["B.ia"]
+    vk = np.array(np.broadcast_to(np.ravel(np.asarray(op["vk"] if vk0 is None else vk0, float)), (rows,)))
+    sines = vin
+    if follow is not None:
+        vin = (follow + vk)[:, None] * sines
+    if guide is not None:
+        xg, wg = guide
+        ia, ib, v = (np.interp(vin, xg, wg["A.ia"]), np.interp(vin, xg, wg["B.ia"]),
+                     np.interp(vin, xg, wg["v_load"]) / 2.0)
+    else:
+        # the circuit linearised at idle, with the cathode moved to the start
+        gaa, gga = banks[0].gradient(np.asarray(op["A.va"], float), np.asarray(op["A.vgk"], float))
+        gab, ggb = banks[1].gradient(np.asarray(op["B.va"], float), np.asarray(op["B.vgk"], float))
+        ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+        sa, sb = gaa + gga, gab + ggb
+        dk = (vk - np.ravel(op["vk"]))[:, None]
+        v = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
+        ia = op["A.ia"] + (-gaa * v - sa * dk + gga * vin) / ca
+        ib = op["B.ia"] + (gab * v - sb * dk - ggb * vin) / cb
+    ia, ib, v = (np.array(np.broadcast_to(x, (rows, S)), float) for x in (ia, ib, v))
+    m = rows * S
+    pair = _pair_bank(banks, m)
+    tol_v = 1e-11 * B
+    tol_k = 1e-10 * B
+    for _ in range(_JOINT_MAXIT):
+        k = vk[:, None]
+        if follow is not None:
+            vin = (follow + vk)[:, None] * sines
+        va_a, vg_a = B - r * ia - v - k, vg + vin - k
+        va_b, vg_b = B - r * ib + v - k, vg - vin - k
+        if pair is not None:
+            f, gv, gg = pair.current_and_gradient(np.concatenate([va_a.ravel(), va_b.ravel()]),
+                                                  np.concatenate([vg_a.ravel(), vg_b.ravel()]))
+            fa, fb = f[:m].reshape(rows, S), f[m:].reshape(rows, S)
+            gaa, gab = gv[:m].reshape(rows, S), gv[m:].reshape(rows, S)
+            gga, ggb = gg[:m].reshape(rows, S), gg[m:].reshape(rows, S)
+        else:
+            fa, gaa, gga = banks[0].current_and_gradient(va_a, vg_a)
+            fb, gab, ggb = banks[1].current_and_gradient(va_b, vg_b)
+        R1, R2, R3 = ia - fa, ib - fb, v - q * (ia - ib - d0)
+        ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+        # d(vgk)/d(vk): -1, or (drive following the cathode) +-sine - 1
+        sa, sb = gaa + gga, gab + ggb
+        if follow is not None:
+            sa, sb = sa - gga * sines, sb + ggb * sines
+        a11 = 1.0 + q * (gaa / ca + gab / cb)
+        dv0 = (-R3 + q * (-R1 / ca + R2 / cb)) / a11
+        dv1 = -q * (sa / ca - sb / cb) / a11
+        al_a, be_a = (-R1 - gaa * dv0) / ca, (-gaa * dv1 - sa) / ca
+        al_b, be_b = (-R2 + gab * dv0) / cb, (gab * dv1 - sb) / cb
+        G = vk - rk * ((ia + ib) @ weight)
+        den = 1.0 - rk * ((be_a + be_b) @ weight)
+        if not np.all(np.isfinite(den) & (den >= (1.0 if follow is None else 0.05))):
+            return None
+        dk = (-G + rk * ((al_a + al_b) @ weight)) / den
+        dkc = dk[:, None]
+        dv = dv0 + dv1 * dkc
+        dia = al_a + be_a * dkc
+        dib = al_b + be_b * dkc
+        ia = ia + dia
+        ib = ib + dib
+        v = v + dv
+        vk = vk + dk
+        if not (np.all(np.isfinite(ia)) and np.all(np.isfinite(ib)) and np.all(np.isfinite(vk))):
+            return None
+        if (np.max(np.abs(dk)) <= tol_k and np.max(np.abs(dv)) <= tol_v
+                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
+            if follow is not None:
+                vin = (follow + vk)[:, None] * sines
+            k = vk[:, None]
+            w = {"v_load": 2.0 * v, "A.ia": ia, "B.ia": ib,
+                 "A.va": B - r * ia - v - k, "B.va": B - r * ib + v - k,
+                 "A.vgk": vg + vin - k, "B.vgk": vg - vin - k, "vk": np.broadcast_to(k, (rows, S))}
+            return vk, w
+    return None
+
+
 def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None):
     """The shared bypassed cathode's voltage for each row of ``vin`` (a period's samples,
     ``weight`` each sample's share of the period): the root of G(vk) = vk - Rk mean(IA + IB)
@@ -538,6 +653,10 @@ def _cathode_rows(stage, banks, op, vin, weight, guide=None, vk0=None, follow=No
     grid-current limit, :func:`_grid_limit_shifting`).  ``op``'s values may be (rows, 1)
     arrays and ``banks`` one unit a row (many units at once).  Returns (vk (rows,), the
     waveforms there)."""
+    if _FAST:
+        got = _rows_joint(stage, banks, op, vin, weight, guide, vk0, follow)
+        if got is not None:
+            return got
     rk = stage._rk
     rows = vin.shape[0]
     slope = 1.0
@@ -734,6 +853,20 @@ def drive_limits(stage, *triodes) -> dict:
     return _drive_limits(stage, banks, _idle(stage, banks))
 
 
+def _scan_range(stage, op, head):
+    """Drive up to which the limits of a stage with an unbypassed cathode resistor are
+    searched: four (single-ended) or two (push-pull) times the headroom."""
+    hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
+    if stage.kind == "single-ended":
+        # the plate cannot swing below its cathode, so the current stays below
+        # i_max = (B+ + RL I0) / (Rdc + RL + Rk), and the grid passes the onset once the
+        # drive exceeds onset - bias + Rk i_max: no need to search past that
+        i_max = (stage.b_plus + stage.reflected_load * op["tube.ia"]) / (
+            stage.r_primary + stage.reflected_load + stage._rk)
+        hi = min(hi, stage.grid_onset - stage._vg + stage._rk * i_max + 1.0)
+    return hi
+
+
 def _drive_limits(stage, banks, op, keep=None):
     vgk0 = max(op[f"{p}.vgk"] for p in stage.positions)
     head = stage.grid_onset - vgk0
@@ -746,7 +879,7 @@ def _drive_limits(stage, banks, op, keep=None):
         # the unbypassed resistor's feedback moves the cathode with the grid (single-ended);
         # push-pull's cathode moves only with the rectified sum of the currents (bypassed:
         # with its mean over a period, each amplitude's found by _cathode_at, so fewer points)
-        hi = (4.0 if stage.kind == "single-ended" else 2.0) * head + 1.0
+        hi = _scan_range(stage, op, head)
         if _shifts(stage):
             grid = _grid_limit_shifting(stage, banks, op, head, None if keep is None else keep.setdefault("vk", []))
             cut = _first_crossing(lambda a: _margins(stage, banks, op, a, keep)[1], grid, n=16, passes=3)
@@ -851,9 +984,10 @@ def _sweep_from(stage, amps, h):
     return PowerSweep(np.asarray(amps, float), power, h2, h3, thd, h)
 
 
-def _level_at_thd(stage, banks, op, sweep, target, guide=None, known=None):
+def _level_at_thd(stage, sweep, target, spectra):
     """Drive where THD first reaches ``target`` (interpolated in the sweep, then refined by
-    bisection); None when it stays below up to the sweep's end."""
+    one secant step from a solve there, ``spectra(amps) -> (waveforms, harmonics)``); None
+    when it stays below up to the sweep's end."""
     over = np.nonzero(sweep.thd >= target)[0]
     if over.size == 0:
         return None
@@ -868,7 +1002,7 @@ def _level_at_thd(stage, banks, op, sweep, target, guide=None, known=None):
     # THD grows smoothly with the drive: interpolate between the bracketing levels, then
     # one secant step from a solve at the estimate
     x = lo + (up - lo) * (target - tlo) / (tup - tlo)
-    _, h = _spectra(stage, banks, op, [x], guide=guide, known=known)
+    _, h = spectra([x])
     tx = _sweep_from(stage, [x], h).thd[0]
     if tx < target:
         lo, tlo = x, tx
@@ -1053,7 +1187,8 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
     banks = _banks(stage, triodes)
     op = _idle(stage, banks)
     keep = {} if _FAST else None
-    lim = _drive_limits(stage, banks, op, keep)
+    got = _series_limits(stage, banks, op, levels) if _FAST and _SERIES else None
+    lim, series = got if got is not None else (_drive_limits(stage, banks, op, keep), None)
     se = stage.kind == "single-ended"
     ends = [x for x in ((lim["grid"], "grid current"), (lim["cutoff"] if se else None, "cut-off"))
             if x[0] is not None]
@@ -1068,24 +1203,34 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
     class_ab = not se and lim["cutoff"] is not None and lim["cutoff"] < vin_max
     # single-ended: the transfer at the crests of the limit's scan starts every later solve
     guide = keep.get("guide") if _FAST else None
-    if not se:
-        # the transfer over the whole drive range: the composite transconductance, and the
-        # start of every later solve (each then needs a step or two instead of six or seven)
-        x = np.linspace(-vin_max, vin_max, 201)
-        w_x = _waveforms(stage, banks, op, x, keep.get("guide") if _FAST else None)
-        guide = (x, w_x) if _FAST else None
-    # one solve for the power sweep and the end of class A
-    known = keep.get("vk") if _FAST else None
-    w, h = _spectra(stage, banks, op, np.append(amps, lim["cutoff"]) if class_ab else amps, guide=guide,
-                    known=known)
-    if class_ab:
-        h_cut = h[-1:]
-        w = {key: val[:-1] for key, val in w.items()}
-        h = h[:-1]
+    x = np.linspace(-vin_max, vin_max, 201)
+    if series is None and _FAST and _SERIES and not _shifts(stage):
+        series = _transfer_series(stage, banks, op, vin_max, guide, levels)
+    if series is not None:
+        # every level's harmonics from the transfer's Chebyshev series (no solve per sample)
+        spectra = series.spectra
+        h = series.levels()
+        w = series.full()
+        if not se:
+            w_x = {"v_load": series.at(x)}
+    else:
+        if not se:
+            # the transfer over the whole drive range: the composite transconductance, and the
+            # start of every later solve (each then needs a step or two instead of six or seven)
+            w_x = _waveforms(stage, banks, op, x, guide)
+            guide = (x, w_x) if _FAST else None
+        known = keep.get("vk") if _FAST else None
+
+        def spectra(a):
+            return _spectra(stage, banks, op, a, guide=guide, known=known)
+        # one solve for the power sweep (the end of class A's own below)
+        w, h = spectra(amps)
+        w = {key: val[-1:] for key, val in w.items()}
+    h_cut = spectra([lim["cutoff"]])[1] if class_ab else None
     sweep = _sweep_from(stage, amps, h)
-    vin_thd = _level_at_thd(stage, banks, op, sweep, thd, guide, known)
+    vin_thd = _level_at_thd(stage, sweep, thd, spectra)
     if vin_thd is not None:
-        _, h_t = _spectra(stage, banks, op, [vin_thd], guide=guide, known=known)
+        _, h_t = spectra([vin_thd])
         p_thd = float(_sweep_from(stage, [vin_thd], h_t).power[0])
     else:
         p_thd = None
@@ -1343,6 +1488,100 @@ def _cheb_matrices(K, levels, n_samples):
     tab = np.einsum("kls,ms->lmk", Tk, np.cos(m[:, None] * theta[None, :]) * (2.0 / n_samples))
     E_full = np.cos(kk[None, :] * np.arccos(np.clip(np.sin(theta), -1.0, 1.0))[:, None])
     return C, tab, E_full
+
+
+class _Series:
+    """A stage's quasi-static transfer as Chebyshev series in the drive over [-vin_max, vin_max]
+    (``coef``: quantity -> (K,) coefficients, the quantities of :func:`_waveforms`)."""
+
+    def __init__(self, vin_max, coef, levels, guide):
+        self.vin_max, self.coef, self.n_levels = vin_max, coef, levels
+        self.K = next(iter(coef.values())).size
+        #: (drives ascending, waveforms there): the nodes' solution, to start other solves from
+        self.guide = guide
+
+    def cut_margin(self, amps, op, stage):
+        """:func:`_margins`' cut-off margin at the amplitudes ``amps`` (each tube's least
+        current over the swing, at a crest, less CUTOFF_FRACTION of its idle current)."""
+        return np.min([np.minimum(self.at(amps, f"{p}.ia"), self.at(-amps, f"{p}.ia"))
+                       - CUTOFF_FRACTION * op[f"{p}.ia"] for p in stage.positions], axis=0)
+
+    def levels(self):
+        """H1..H10 [V] of the load voltage at the power sweep's levels (``n_levels`` steps up to
+        ``vin_max``), exactly as :func:`harmonic_amplitudes` finds them from N_SAMPLES samples."""
+        _, tab, _ = _cheb_matrices(self.K, self.n_levels, N_SAMPLES)
+        return np.abs(np.einsum("lmk,k->lm", tab, self.coef["v_load"]))
+
+    def at(self, x, key="v_load"):
+        """One quantity at the drives ``x`` (any shape within the range)."""
+        u = np.clip(np.asarray(x, float) / self.vin_max, -1.0, 1.0)
+        return np.cos(np.arccos(u)[..., None] * np.arange(self.K)) @ self.coef[key]
+
+    def full(self):
+        """One period at the full drive: quantity -> (1, N_SAMPLES)."""
+        _, _, E_full = _cheb_matrices(self.K, self.n_levels, N_SAMPLES)
+        return {k: (E_full @ c)[None, :] for k, c in self.coef.items()}
+
+    def spectra(self, amps):
+        """As :func:`_spectra` (the load voltage only): (one period at each amplitude, rows;
+        their H1..H10)."""
+        amps = np.atleast_1d(np.asarray(amps, float))
+        s = np.sin(2 * np.pi * np.arange(N_SAMPLES) / N_SAMPLES)
+        w = {"v_load": self.at(amps[:, None] * s[None, :])}
+        return w, harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
+
+
+def _transfer_series(stage, banks, op, vin_max, guide, levels):
+    """The transfer of a stage whose cathode does not shift with the drive, solved at K
+    Chebyshev nodes over the drive range (K = 32, 64, ... until the series' last four
+    coefficients are below 1e-9 of its largest; the batched sweep's method), as a
+    :class:`_Series`; None when even 192 nodes do not resolve it (a tube's cut-off bends it
+    too sharply: the caller then solves every sample).  ``guide`` (drives, waveforms): a
+    transfer already solved, to start from."""
+    se = stage.kind == "single-ended"
+    for K in _CHEB[0 if se else 1:]:
+        C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
+        x = vin_max * np.cos(np.pi * (np.arange(K) + 0.5) / K)  # descending
+        w = _waveforms(stage, banks, op, x, guide)
+        w = {k: np.broadcast_to(v, x.shape) for k, v in w.items()}
+        coef = {k: C @ v for k, v in w.items()}
+        c = coef["v_load"]
+        guide = (x[::-1], {k: v[::-1] for k, v in w.items()})
+        if np.max(np.abs(c[-4:])) <= _CHEB_TAIL * np.max(np.abs(c)):
+            return _Series(vin_max, coef, levels, guide)
+    return None
+
+
+def _series_limits(stage, banks, op, levels):
+    """The drive limits and the transfer's series of a stage whose cathode holds its voltage
+    (fixed bias, or a bypassed cathode resistor; not the shared push-pull one): the grid
+    reaches the onset when the drive equals the headroom, exactly, so the transfer is solved
+    once over that range and the cut-off searched in its series (no scan of solves).  A
+    single-ended stage cut off sooner is solved again over its shorter range.  Returns
+    (limits as :func:`_drive_limits`, series over [-vin_max, vin_max]) or None (the caller
+    then scans)."""
+    if _shifts(stage) or not (stage.rk is None or stage.bypassed):
+        # (an unbypassed resistor moves the cathode with the drive: its limits are scanned;
+        # searching them in a series over the whole scan range was tried: no faster)
+        return None
+    head = stage.grid_onset - max(op[f"{p}.vgk"] for p in stage.positions)
+    if not head > 1e-9 * stage.b_plus:
+        return None
+    se = stage.kind == "single-ended"
+    series = _transfer_series(stage, banks, op, head, None, levels)
+    if series is None:
+        return None
+    cut = _first_crossing(lambda a: series.cut_margin(a, op, stage), head)
+    lim = {"grid": head, "cutoff": cut}
+    ends = [x for x in (lim["grid"], lim["cutoff"] if se else None) if x is not None]
+    if not ends:
+        return lim, None
+    vin_max = min(ends)
+    if vin_max != series.vin_max:
+        series = _transfer_series(stage, banks, op, vin_max, series.guide, levels) if vin_max > 0 else None
+        if series is None:
+            return None
+    return lim, series
 
 
 def _cheb_at(c, r, s):

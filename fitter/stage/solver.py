@@ -109,37 +109,44 @@ def _solve_tube(bank: _Bank, a0, a1, b0, b1, x0=None):
     if x0 is not None:
         shape = np.broadcast(np.zeros(shape), x0).shape
     x = np.zeros(shape) if x0 is None else np.broadcast_to(np.asarray(x0, float), shape).copy()
-    lo = np.full(shape, -np.inf)
-    hi = np.full(shape, np.inf)
-    for it in range(_MAXIT):
-        va = a0 - a1 * x
-        vg = b0 - b1 * x
-        f, gva, gvg = bank.current_and_gradient(va, vg)
-        F = x - f
-        D = 1.0 + a1 * gva + b1 * gvg
-        if it == 0:
-            # F' >= 1 (the models rise with va and vg), so the root is within |F| of x;
-            # the factor 4 leaves room where a model's slope is slightly negative.
-            lo = np.where(F > 0, x - 4.0 * F, x)
-            hi = np.where(F > 0, x, x - 4.0 * F)
+    lo = hi = None
+    errs = np.seterr(divide="ignore", invalid="ignore")
+    try:
+        for it in range(_MAXIT):
+            va = a0 - a1 * x
+            vg = b0 - b1 * x
+            f, gva, gvg = bank.current_and_gradient(va, vg)
+            F = x - f
+            D = 1.0 + a1 * gva + b1 * gvg
+            step = F / D
+            tol = _I_ABS + _REL * np.abs(x)
+            small = np.abs(step) <= tol
+            if small.all():
+                # every step below the tolerance (the usual end): converged at x
+                break
+            if it == 0:
+                # F' >= 1 (the models rise with va and vg), so the root is within |F| of x;
+                # the factor 4 leaves room where a model's slope is slightly negative.
+                lo = np.where(F > 0, x - 4.0 * F, x)
+                hi = np.where(F > 0, x, x - 4.0 * F)
+            else:
+                lo = np.where(F < 0, np.maximum(lo, x), lo)
+                hi = np.where(F > 0, np.minimum(hi, x), hi)
+            xn = x - step
+            # a step below the tolerance is taken even onto a bracket end (it is converged)
+            bad = ~((xn > lo) & (xn < hi)) & ~small
+            xn = np.where(bad, 0.5 * (lo + hi), xn)
+            xn = np.where(F == 0, x, xn)
+            if (np.abs(xn - x) <= tol).all():
+                break
+            x = xn
         else:
-            lo = np.where(F < 0, np.maximum(lo, x), lo)
-            hi = np.where(F > 0, np.minimum(hi, x), hi)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            xn = x - F / D
-        tol = _I_ABS + _REL * np.abs(x)
-        # a step below the tolerance is taken even onto a bracket end (it is converged)
-        bad = ~((xn > lo) & (xn < hi)) & ~(np.abs(xn - x) <= tol)
-        xn = np.where(bad, 0.5 * (lo + hi), xn)
-        xn = np.where(F == 0, x, xn)
-        if np.all(np.abs(xn - x) <= tol):
-            break
-        x = xn
-    else:
-        raise StageSolveError(
-            f"tube equation did not converge in {_MAXIT} iterations at "
-            f"{int(np.sum(np.abs(xn - x) > tol))} of {x.size} points"
-        )
+            raise StageSolveError(
+                f"tube equation did not converge in {_MAXIT} iterations at "
+                f"{int(np.sum(np.abs(xn - x) > tol))} of {x.size} points"
+            )
+    finally:
+        np.seterr(**errs)
     if np.any(np.abs(F) > 1e-9 * np.maximum(np.abs(x), 1e-6)):
         raise StageSolveError("tube equation: no consistent plate current found (model not monotone?)")
     return x, gva, gvg, D
