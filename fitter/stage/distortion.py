@@ -22,6 +22,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from functools import lru_cache
+
 import numpy as np
 
 from .. import CAUTION
@@ -44,6 +46,18 @@ __all__ = [
 N_HARMONICS = 10
 
 
+@lru_cache(maxsize=32)
+def _fourier_basis(N, n_harmonics):
+    """(2/N) cos(k theta), (2/N) sin(k theta) for k = 0..n at the N samples, (N, n + 1) each
+    (kept: the spectra of a solve use the same few sizes over and over)."""
+    theta = 2 * np.pi * np.arange(N) / N
+    k = np.arange(n_harmonics + 1)[:, None]
+    c, s = np.cos(k * theta).T * (2.0 / N), np.sin(k * theta).T * (2.0 / N)
+    c.flags.writeable = False
+    s.flags.writeable = False
+    return c, s
+
+
 def harmonic_amplitudes(y, n_harmonics: int = N_HARMONICS):
     """Peak amplitude of harmonics 0..n of periodic samples (one period per row).
 
@@ -64,10 +78,9 @@ def harmonic_amplitudes(y, n_harmonics: int = N_HARMONICS):
     N = y.shape[-1]
     if N <= 2 * n_harmonics:
         raise ValueError(f"harmonic_amplitudes: need more than {2 * n_harmonics} samples per period, got {N}")
-    theta = 2 * np.pi * np.arange(N) / N
-    k = np.arange(n_harmonics + 1)[:, None]
-    a = y @ np.cos(k * theta).T * (2.0 / N)
-    b = y @ np.sin(k * theta).T * (2.0 / N)
+    cos_t, sin_t = _fourier_basis(N, n_harmonics)
+    a = y @ cos_t
+    b = y @ sin_t
     amp = np.hypot(a, b)
     amp[..., 0] = a[..., 0] / 2.0
     return amp

@@ -488,8 +488,10 @@ def _waveforms(stage, banks, op, vin, guide=None, vk=None, x0=None, grads=None) 
     if x0 is not None:
         pass  # (push-pull: IA, IB, v, vk of a solve nearby)
     elif guide is None and hold and _FAST:
-        # the circuit linearised at idle, the cathode held (a step or two fewer than from
-        # idle); no current below zero (past cut-off a tube carries nearly none)
+        # the circuit linearised at idle, the cathode held (a step fewer than from idle); no
+        # current below zero (past cut-off a tube carries nearly none).  (With an unbypassed
+        # cathode resistor the same start was tried: no fewer steps, and some samples of the
+        # batched sweep then fell to the bracketed solve.)
         gaa, gga = banks[0].gradient(np.asarray(op["A.va"], float), np.asarray(op["A.vgk"], float))
         gab, ggb = banks[1].gradient(np.asarray(op["B.va"], float), np.asarray(op["B.vgk"], float))
         ca, cb = 1.0 + stage.r_primary / 2.0 * gaa, 1.0 + stage.r_primary / 2.0 * gab
@@ -532,11 +534,20 @@ def _cathode_at(stage, banks, op, amps, guide=None, n_samples=N_SAMPLES, vk0=Non
 
 
 def _period_samples(n_samples=N_SAMPLES):
-    """(sin of the distinct samples, each one's share of the period, distinct, where)."""
+    """(sin of the distinct samples, each one's share of the period, distinct, where); kept
+    (read-only) for each size and speed-up setting."""
+    return _period_samples_kept(n_samples, _FAST)
+
+
+@lru_cache(maxsize=8)
+def _period_samples_kept(n_samples, fast):
     theta = 2 * np.pi * np.arange(n_samples) / n_samples
     distinct, where = _half_period(n_samples)
     weight = np.bincount(where, minlength=distinct.size) / n_samples
-    return np.sin(theta[distinct]), weight, distinct, where
+    out = (np.sin(theta[distinct]), weight, distinct, where)
+    for a in out:
+        a.flags.writeable = False
+    return out
 
 
 def _vk_start(op, known, amps):
@@ -789,15 +800,16 @@ def _margins(stage, banks, op, amps, keep=None):
     return grid, cut
 
 
-def _first_crossing(fun, hi, lo=0.0, n=64, passes=2):
+def _first_crossing(fun, hi, lo=0.0, n=64, passes=2, scan=None):
     """Smallest a in (lo, hi] where fun(a) <= 0 (fun > 0 at lo): a scan of ``n`` points, an
     ``n``-section of the bracket (each pass one vectorised call), then linear interpolation
     of fun inside the last bracket (1/n^2 of the range: fun is smooth there, so the root is
-    found to far below 1e-6 of the range); None when fun stays positive up to hi."""
+    found to far below 1e-6 of the range); None when fun stays positive up to hi.  ``scan``:
+    fun at the scan's points, when the caller has it."""
     a = np.linspace(lo, hi, n + 1)
     m = np.empty_like(a)
     m[0] = np.inf
-    m[1:] = fun(a[1:])
+    m[1:] = fun(a[1:]) if scan is None else scan
     for p in range(passes):
         bad = np.nonzero(m <= 0)[0]
         if bad.size == 0:
@@ -1212,7 +1224,7 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         h = series.levels()
         w = series.full()
         if not se:
-            w_x = {"v_load": series.at(x)}
+            w_x = {"v_load": series.on_grid(x.size)}
     else:
         if not se:
             # the transfer over the whole drive range: the composite transconductance, and the
@@ -1469,6 +1481,21 @@ def _crossings_many(fun, hi, which, n=16, passes=3):
     return out
 
 
+@lru_cache(maxsize=16)
+def _cheb_nodes(K):
+    """(nodes cos(pi (j + 1/2) / K), descending; their barycentric weights)."""
+    j = np.arange(K)
+    theta = np.pi * (j + 0.5) / K
+    return np.cos(theta), (-1.0) ** j * np.sin(theta)
+
+
+@lru_cache(maxsize=16)
+def _cheb_grid(K, n):
+    """T_k(u) at u = linspace(-1, 1, n): (K, n)."""
+    u = np.linspace(-1.0, 1.0, n)
+    return np.cos(np.arange(K)[:, None] * np.arccos(u)[None, :])
+
+
 @lru_cache(maxsize=8)
 def _cheb_matrices(K, levels, n_samples):
     """(C, tab, E_full): C maps node values to the Chebyshev coefficients; tab[l, m, k] is
@@ -1494,17 +1521,41 @@ class _Series:
     """A stage's quasi-static transfer as Chebyshev series in the drive over [-vin_max, vin_max]
     (``coef``: quantity -> (K,) coefficients, the quantities of :func:`_waveforms`)."""
 
-    def __init__(self, vin_max, coef, levels, guide):
+    def __init__(self, vin_max, coef, levels, guide, values):
         self.vin_max, self.coef, self.n_levels = vin_max, coef, levels
         self.K = next(iter(coef.values())).size
+        #: each quantity at the nodes (in the order of :func:`_cheb_nodes`)
+        self.values = values
         #: (drives ascending, waveforms there): the nodes' solution, to start other solves from
         self.guide = guide
+
+    def on_grid(self, n, key="v_load"):
+        """:meth:`at` the drives vin_max * linspace(-1, 1, n) (the polynomials there kept)."""
+        T = _cheb_grid(self.K, n)
+        keys = (key,) if isinstance(key, str) else key
+        got = np.stack([self.coef[k] for k in keys]) @ T
+        return got[0] if isinstance(key, str) else got
+
+    def cut_scan(self, op, stage, n=64):
+        """:meth:`cut_margin` at vin_max * (1..n) / n (from :meth:`on_grid`)."""
+        ia = self.on_grid(2 * n + 1, tuple(f"{p}.ia" for p in stage.positions))
+        return np.min([np.minimum(ia[j, n + 1:], ia[j, n - 1::-1]) - CUTOFF_FRACTION * op[f"{p}.ia"]
+                       for j, p in enumerate(stage.positions)], axis=0)
+
+    def grid_margin(self, amps, stage):
+        """:func:`_margins`' grid margin at the amplitudes ``amps`` (the grid-current onset
+        less each tube's highest grid-cathode voltage over the swing, at a crest)."""
+        amps = np.asarray(amps, float)
+        vgk = self.at(np.stack([amps, -amps]), tuple(f"{p}.vgk" for p in stage.positions))
+        return np.min([stage.grid_onset - np.max(vgk[j], axis=0) for j in range(len(stage.positions))], axis=0)
 
     def cut_margin(self, amps, op, stage):
         """:func:`_margins`' cut-off margin at the amplitudes ``amps`` (each tube's least
         current over the swing, at a crest, less CUTOFF_FRACTION of its idle current)."""
-        return np.min([np.minimum(self.at(amps, f"{p}.ia"), self.at(-amps, f"{p}.ia"))
-                       - CUTOFF_FRACTION * op[f"{p}.ia"] for p in stage.positions], axis=0)
+        amps = np.asarray(amps, float)
+        ia = self.at(np.stack([amps, -amps]), tuple(f"{p}.ia" for p in stage.positions))
+        return np.min([np.min(ia[j], axis=0) - CUTOFF_FRACTION * op[f"{p}.ia"]
+                       for j, p in enumerate(stage.positions)], axis=0)
 
     def levels(self):
         """H1..H10 [V] of the load voltage at the power sweep's levels (``n_levels`` steps up to
@@ -1513,9 +1564,26 @@ class _Series:
         return np.abs(np.einsum("lmk,k->lm", tab, self.coef["v_load"]))
 
     def at(self, x, key="v_load"):
-        """One quantity at the drives ``x`` (any shape within the range)."""
+        """A quantity (or a tuple of them, stacked first) at the drives ``x`` (any shape within
+        the range): the same polynomial by the barycentric formula through the node values
+        (Chebyshev points of the first kind; no cosine per term, so a few operations a point
+        and node)."""
         u = np.clip(np.asarray(x, float) / self.vin_max, -1.0, 1.0)
-        return np.cos(np.arccos(u)[..., None] * np.arange(self.K)) @ self.coef[key]
+        flat = u.ravel()
+        nodes, weights = _cheb_nodes(self.K)
+        keys = (key,) if isinstance(key, str) else key
+        F = np.stack([self.values[k] for k in keys], axis=1)  # (K, keys)
+        d = flat[:, None] - nodes[None, :]
+        hit = d == 0.0
+        if hit.any():
+            d[hit] = 1.0
+        r = weights[None, :] / d
+        got = (r @ F) / r.sum(axis=1)[:, None]
+        if hit.any():
+            row, col = np.nonzero(hit)
+            got[row] = F[col]
+        got = got.T.reshape((len(keys),) + u.shape)
+        return got[0] if isinstance(key, str) else got
 
     def full(self):
         """One period at the full drive: quantity -> (1, N_SAMPLES)."""
@@ -1526,29 +1594,41 @@ class _Series:
         """As :func:`_spectra` (the load voltage only): (one period at each amplitude, rows;
         their H1..H10)."""
         amps = np.atleast_1d(np.asarray(amps, float))
-        s = np.sin(2 * np.pi * np.arange(N_SAMPLES) / N_SAMPLES)
-        w = {"v_load": self.at(amps[:, None] * s[None, :])}
+        sines, _, _, where = _period_samples()  # (the distinct values of the sine, each once)
+        w = {"v_load": self.at(amps[:, None] * sines[None, :])[:, where]}
         return w, harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
 
 
-def _transfer_series(stage, banks, op, vin_max, guide, levels):
+def _transfer_series(stage, banks, op, vin_max, guide, levels, start=None):
     """The transfer of a stage whose cathode does not shift with the drive, solved at K
     Chebyshev nodes over the drive range (K = 32, 64, ... until the series' last four
     coefficients are below 1e-9 of its largest; the batched sweep's method), as a
     :class:`_Series`; None when even 192 nodes do not resolve it (a tube's cut-off bends it
     too sharply: the caller then solves every sample).  ``guide`` (drives, waveforms): a
-    transfer already solved, to start from."""
-    se = stage.kind == "single-ended"
-    for K in _CHEB[0 if se else 1:]:
+    transfer already solved, to start from; ``start``: a :class:`_Series` covering the range,
+    to start from instead (its values at the new nodes: a step from the answer)."""
+    # a push-pull's transfer is never as smooth as a single-ended one's; with a shared
+    # unbypassed cathode resistor, a tube near cut-off bends it further (64 nodes have
+    # never been enough there: measured)
+    first = 0 if stage.kind == "single-ended" else 1 if stage.rk is None else 2
+    for K in _CHEB[first:]:
         C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
         x = vin_max * np.cos(np.pi * (np.arange(K) + 0.5) / K)  # descending
-        w = _waveforms(stage, banks, op, x, guide)
+        x0 = None
+        if start is not None:
+            if stage.kind == "single-ended":
+                x0 = start.at(x, "tube.ia")
+            else:
+                ia, ib, vl, vk = start.at(x, ("A.ia", "B.ia", "v_load", "vk"))
+                x0 = (ia, ib, vl / 2.0, vk)
+            start = None
+        w = _waveforms(stage, banks, op, x, guide, x0=x0)
         w = {k: np.broadcast_to(v, x.shape) for k, v in w.items()}
         coef = {k: C @ v for k, v in w.items()}
         c = coef["v_load"]
         guide = (x[::-1], {k: v[::-1] for k, v in w.items()})
         if np.max(np.abs(c[-4:])) <= _CHEB_TAIL * np.max(np.abs(c)):
-            return _Series(vin_max, coef, levels, guide)
+            return _Series(vin_max, coef, levels, guide, w)
     return None
 
 
@@ -1560,25 +1640,35 @@ def _series_limits(stage, banks, op, levels):
     single-ended stage cut off sooner is solved again over its shorter range.  Returns
     (limits as :func:`_drive_limits`, series over [-vin_max, vin_max]) or None (the caller
     then scans)."""
-    if _shifts(stage) or not (stage.rk is None or stage.bypassed):
-        # (an unbypassed resistor moves the cathode with the drive: its limits are scanned;
-        # searching them in a series over the whole scan range was tried: no faster)
-        return None
-    head = stage.grid_onset - max(op[f"{p}.vgk"] for p in stage.positions)
-    if not head > 1e-9 * stage.b_plus:
+    if _shifts(stage):
         return None
     se = stage.kind == "single-ended"
-    series = _transfer_series(stage, banks, op, head, None, levels)
-    if series is None:
+    head = stage.grid_onset - max(op[f"{p}.vgk"] for p in stage.positions)
+    if stage.rk is None or stage.bypassed:
+        if not head > 1e-9 * stage.b_plus:
+            return None
+        series = _transfer_series(stage, banks, op, head, None, levels)
+        if series is None:
+            return None
+        cut = _first_crossing(lambda a: series.cut_margin(a, op, stage), head, scan=series.cut_scan(op, stage))
+        lim = {"grid": head, "cutoff": cut}
+    elif se:
         return None
-    cut = _first_crossing(lambda a: series.cut_margin(a, op, stage), head)
-    lim = {"grid": head, "cutoff": cut}
+    else:
+        hi = _scan_range(stage, op, head)
+        series = _transfer_series(stage, banks, op, hi, None, levels)
+        if series is None:
+            return None
+        grid, cut = _two_crossings(lambda a: (series.grid_margin(a, stage), series.cut_margin(a, op, stage)), hi)
+        if cut is not None and grid is not None and cut >= grid:
+            cut = None
+        lim = {"grid": grid, "cutoff": cut}
     ends = [x for x in (lim["grid"], lim["cutoff"] if se else None) if x is not None]
     if not ends:
         return lim, None
     vin_max = min(ends)
     if vin_max != series.vin_max:
-        series = _transfer_series(stage, banks, op, vin_max, series.guide, levels) if vin_max > 0 else None
+        series = _transfer_series(stage, banks, op, vin_max, series.guide, levels, series) if vin_max > 0 else None
         if series is None:
             return None
     return lim, series
