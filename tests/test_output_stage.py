@@ -529,7 +529,15 @@ def test_fast_solve_paths_give_the_plain_results(key, monkeypatch):
         assert fast[k] == pytest.approx(v, rel=1e-9, abs=1e-300), k
 
 
-@pytest.mark.parametrize("key", sorted(NG_CASES))
+#: the series' own cases beside NG_CASES: a shared bypassed cathode driven into class AB (the
+#: end of class A searched in the two-dimensional series) with a bias shift of 32 V
+SERIES_CASES = dict(NG_CASES, **{
+    "pp-shared-cathode-class-ab": (PushPullOutput(b_plus=450.0, load=3000.0, r_primary=150.0, rk=1000.0),
+                                   (TA, TB), None),
+})
+
+
+@pytest.mark.parametrize("key", sorted(SERIES_CASES))
 def test_series_figures_agree_with_sampling_every_level(key, monkeypatch):
     # The default path takes every level's harmonics (and the cut-off search of a stage
     # whose cathode holds still) from the transfer's Chebyshev series, truncated where its
@@ -538,7 +546,7 @@ def test_series_figures_agree_with_sampling_every_level(key, monkeypatch):
     # 0.001 dB (a harmonic 90 dB down is where the truncation shows most: about 1e-4 dB).
     import fitter.stage.output as out
 
-    st, tubes, _ = NG_CASES[key]
+    st, tubes, _ = SERIES_CASES[key]
     series = dict(_numbers(solve_output(st, *tubes).to_dict()))
     monkeypatch.setattr(out, "_FAST", False)
     plain = dict(_numbers(solve_output(st, *tubes).to_dict()))

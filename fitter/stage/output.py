@@ -1632,6 +1632,219 @@ def _transfer_series(stage, banks, op, vin_max, guide, levels, start=None):
     return None
 
 
+def _cheb_values(t, J):
+    """T_m(t) and dT_m/dt for m < J at the points ``t`` (any shape, inside (-1, 1)): (..., J)
+    each, as cos(m phi) and m sin(m phi) / sin(phi) with t = cos(phi)."""
+    phi = np.arccos(np.clip(np.asarray(t, float), -1.0 + 1e-15, 1.0 - 1e-15))[..., None]
+    m = np.arange(J)
+    return np.cos(m * phi), m * np.sin(m * phi) / np.sin(phi)
+
+
+@lru_cache(maxsize=8)
+def _cheb_means(K, levels, n_samples):
+    """mean over a period (``n_samples`` samples) of T_k(r_l sin theta) at the power sweep's
+    levels r_l: (levels, K)."""
+    return _cheb_period_means(K, np.linspace(1.0 / levels, 1.0, levels), n_samples)
+
+
+def _cheb_period_means(K, r, n_samples=N_SAMPLES):
+    """mean over a period of T_k(r sin theta) for each r: (len(r), K) (the sine's distinct
+    samples, each by its share of the period)."""
+    sines, weight, _, _ = _period_samples(n_samples)
+    u = np.asarray(r, float)[:, None] * np.asarray(sines)[None, :]
+    return np.cos(np.arccos(np.clip(u, -1.0, 1.0))[..., None] * np.arange(K)).transpose(0, 2, 1) @ weight
+
+
+class _ShiftSeries:
+    """A push-pull on a shared bypassed cathode resistor: its transfer with the cathode held
+    at vk (over a period the capacitor holds it), as a two-dimensional Chebyshev series in
+    the drive over [-vin_max, vin_max] and in vk over [lo, hi]; at each level the cathode
+    sits where vk = Rk mean(IA + IB), solved in the series (a few operations, no solve of the
+    circuit).  The interface of :class:`_Series` that :func:`solve_output` uses."""
+
+    def __init__(self, stage, op, vin_max, lo, hi, coef, levels, vk_top):
+        self.stage, self.op, self.vin_max, self.lo, self.hi = stage, op, vin_max, lo, hi
+        self.coef, self.n_levels = coef, levels
+        self.vk_top = vk_top  # the cathode at the largest drive (the grid-current limit)
+        self.J, self.K = coef["v_load"].shape
+        self.vk_levels = self.cathode(_cheb_means(self.K, levels, N_SAMPLES), self._start(
+            np.linspace(1.0 / levels, 1.0, levels)))
+
+    def _t(self, vk):
+        return (2.0 * np.asarray(vk, float) - (self.lo + self.hi)) / (self.hi - self.lo)
+
+    def _start(self, r):
+        # the bias shift of a class-A pair grows as the square of the drive
+        return self.op["vk"] + (self.vk_top - self.op["vk"]) * np.asarray(r) ** 2
+
+    def along(self, vk, key="v_load"):
+        """The series in the drive at cathode voltages ``vk`` ((n,) -> (n, K)); a tuple of keys
+        gives a tuple."""
+        T, _ = _cheb_values(self._t(np.atleast_1d(vk)), self.J)
+        if isinstance(key, str):
+            return T @ self.coef[key]
+        return tuple(T @ self.coef[k] for k in key)
+
+    def cathode(self, mu, vk):
+        """The cathode voltage at each amplitude whose period means of T_k are ``mu`` (n, K):
+        Newton on vk - Rk mean(IA + IB) from ``vk`` (n,); raises StageSolveError outside the
+        series' range (the caller then solves the circuit)."""
+        d = mu @ (self.coef["A.ia"] + self.coef["B.ia"]).T  # (n, J): the mean sum, a series in vk
+        rk = self.stage._rk
+        scale = 2.0 / (self.hi - self.lo)
+        vk = np.array(vk, float)
+        for _ in range(30):
+            T, D = _cheb_values(self._t(vk), self.J)
+            g = vk - rk * np.sum(d * T, axis=-1)
+            dg = 1.0 - rk * scale * np.sum(d * D, axis=-1)
+            step = g / dg
+            vk = vk - step
+            if not np.all(np.isfinite(vk)) or np.any(vk < self.lo) or np.any(vk > self.hi):
+                raise StageSolveError("the cathode voltage left the range of its series")
+            if np.max(np.abs(step)) <= 1e-12 * self.stage.b_plus:
+                return vk
+        raise StageSolveError("the cathode voltage did not converge in its series")
+
+    def levels(self):
+        _, tab, _ = _cheb_matrices(self.K, self.n_levels, N_SAMPLES)
+        c = self.along(self.vk_levels)  # (L, K)
+        return np.abs(np.einsum("lmk,lk->lm", tab, c))
+
+    def full(self):
+        _, _, E_full = _cheb_matrices(self.K, self.n_levels, N_SAMPLES)
+        keys = tuple(self.coef)
+        return {k: (E_full @ c[0])[None, :] for k, c in zip(keys, self.along(self.vk_levels[-1:], keys))}
+
+    def on_grid(self, n, key="v_load"):
+        """``key`` at the drives vin_max * linspace(-1, 1, n), the cathode at its idle voltage."""
+        return self.along(self.op["vk"], key)[0] @ _cheb_grid(self.K, n)
+
+    def at_amplitudes(self, amps, keys):
+        """The cathode voltage at each amplitude and the waveforms there (the sine's distinct
+        samples): (vk (n,), {key: (n, distinct)})."""
+        amps = np.atleast_1d(np.asarray(amps, float))
+        r = amps / self.vin_max
+        vk = self.cathode(_cheb_period_means(self.K, r), self._start(r))
+        sines, _, _, _ = _period_samples()
+        u = np.clip(r[:, None] * np.asarray(sines)[None, :], -1.0, 1.0)
+        Tk = np.cos(np.arccos(u)[..., None] * np.arange(self.K))  # (n, S, K)
+        return vk, {k: np.einsum("nsk,nk->ns", Tk, c) for k, c in zip(keys, self.along(vk, tuple(keys)))}
+
+    def spectra(self, amps):
+        _, _, _, where = _period_samples()
+        _, w = self.at_amplitudes(amps, ("v_load",))
+        w = {"v_load": w["v_load"][:, where]}
+        return w, harmonic_amplitudes(w["v_load"], N_HARMONICS)[:, 1:]
+
+    def cut_margin(self, amps, vk=None):
+        """:func:`_margins`' cut-off margin at the amplitudes (each tube's least current over
+        the swing, at a crest, less CUTOFF_FRACTION of its idle current), each with its
+        cathode voltage (``vk``, else solved)."""
+        r = np.atleast_1d(np.asarray(amps, float)) / self.vin_max
+        if vk is None:
+            vk = self.cathode(_cheb_period_means(self.K, r), self._start(r))
+        crest = np.cos(np.arccos(np.clip(np.stack([r, -r], axis=1), -1.0, 1.0))[..., None]
+                       * np.arange(self.K))  # (n, 2, K)
+        out = []
+        pos = self.stage.positions
+        for p, c in zip(pos, self.along(vk, tuple(f"{p}.ia" for p in pos))):
+            ia = np.einsum("nck,nk->nc", crest, c)
+            out.append(np.min(ia, axis=1) - CUTOFF_FRACTION * self.op[f"{p}.ia"])
+        return np.min(out, axis=0)
+
+
+def _shift_series(stage, banks, op, levels):
+    """(limits, :class:`_ShiftSeries`) of a push-pull on a shared bypassed cathode resistor, or
+    None when the series do not resolve it (the caller then solves level by level)."""
+    head = stage.grid_onset - max(op[f"{p}.vgk"] for p in stage.positions)
+    grid = _grid_limit_shifting(stage, banks, op, head)
+    if not grid > 1e-9 * stage.b_plus:
+        return None
+    vk0 = float(op["vk"])
+    vk_top = float(grid - (stage.grid_onset - stage._vg))  # the cathode at the grid limit
+    pad = 0.05 * abs(vk_top - vk0) + 1e-3 * max(abs(vk0), 1.0)
+    lo, hi = min(vk0, vk_top) - pad, max(vk0, vk_top) + pad
+    r, q = stage.r_primary / 2.0, stage.reflected_load / 4.0
+    gaa, gga = banks[0].gradient(np.asarray(op["A.va"], float), np.asarray(op["A.vgk"], float))
+    gab, ggb = banks[1].gradient(np.asarray(op["B.va"], float), np.asarray(op["B.vgk"], float))
+    ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+    sa, sb = gaa + gga, gab + ggb
+    # nodes in the cathode voltage: 12 resolve a bias shift of a few volts to 1e-11, a shift of
+    # 30 V in class AB takes about 30; the drive's nodes as the stage without the shift
+    J, Ks = 12, list(_CHEB[1:])
+    for _ in range(6):
+        K = Ks[0]
+        tj = np.cos(np.pi * (np.arange(J) + 0.5) / J)
+        vkn = 0.5 * (lo + hi) + 0.5 * (hi - lo) * tj
+        CJ, _, _ = _cheb_matrices(J, levels, N_SAMPLES)
+        CK, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
+        x = grid * np.cos(np.pi * (np.arange(K) + 0.5) / K)
+        vin = np.broadcast_to(x[None, :], (J, K))
+        dk = (vkn - vk0)[:, None]
+        # the circuit linearised at idle, the cathode moved to each node's voltage
+        dv = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
+        x0 = (np.maximum(op["A.ia"] + (-gaa * dv - sa * dk + gga * vin) / ca, 0.0),
+              np.maximum(op["B.ia"] + (gab * dv - sb * dk - ggb * vin) / cb, 0.0), dv, vkn[:, None])
+        w = _waveforms(stage, banks, op, vin, vk=vkn[:, None], x0=x0)
+        keys = list(w)
+        W = np.stack([np.broadcast_to(w[k], (J, K)) for k in keys])
+        # the two-dimensional transform, one axis at a time (tensordot: one product each)
+        got = np.tensordot(np.tensordot(W, CJ, axes=([1], [1])), CK, axes=([1], [1]))  # (keys, J, K)
+        coef = dict(zip(keys, got))
+        c = coef["v_load"]
+        s_ = coef["A.ia"] + coef["B.ia"]
+        big = np.max(np.abs(c))
+        vin_ok = np.max(np.abs(c[:, -4:])) <= _CHEB_TAIL * big
+        vk_ok = (np.max(np.abs(c[-2:, :])) <= _CHEB_TAIL * big
+                 and np.max(np.abs(s_[-2:, :])) <= _CHEB_TAIL * np.max(np.abs(s_)))
+        if not vin_ok:
+            Ks.pop(0)
+        if not vk_ok:
+            # the coefficients fall geometrically along vk: as many nodes as take them below
+            # 1e-10 of the largest at that rate (two more for the test)
+            rows = np.max(np.abs(c), axis=1) / big
+            rate = (rows[-1] / rows[-5]) ** 0.25 if rows[-5] > 0 else 0.5
+            if not 0.0 < rate < 1.0 or J >= 48:
+                return None
+            J = int(min(48, max(J + 4, math.ceil(math.log(1e-10) / math.log(rate)) + 2)))
+        if not (vin_ok and vk_ok):
+            if not Ks:
+                return None
+            continue
+        try:
+            ser = _ShiftSeries(stage, op, grid, lo, hi, coef, levels, vk_top)
+        except StageSolveError:
+            return None
+        # the end of class A: the first level where a tube's least current falls below
+        # CUTOFF_FRACTION of its idle current, then the root between the levels by the
+        # Illinois form of the false-position method, in the series
+        cut = None
+        m = ser.cut_margin(grid * np.linspace(1.0 / levels, 1.0, levels), ser.vk_levels)
+        below = np.nonzero(m <= 0)[0]
+        if below.size:
+            k = below[0]
+            a_lo, m_lo = (0.0, math.inf) if k == 0 else (grid * k / levels, float(m[k - 1]))
+            a_up, m_up = grid * (k + 1) / levels, float(m[k])
+            side = 0
+            tol = 1e-13 * max(op["A.ia"], op["B.ia"])
+            for _ in range(100):
+                a = 0.5 * (a_lo + a_up) if not math.isfinite(m_lo) else a_lo + (a_up - a_lo) * m_lo / (m_lo - m_up)
+                ma = float(ser.cut_margin([a])[0])
+                if abs(ma) <= tol or a_up - a_lo <= 1e-13 * grid:
+                    break
+                if ma > 0:
+                    a_lo, m_lo = a, ma
+                    m_up = 0.5 * m_up if side > 0 else m_up
+                    side = 1
+                else:
+                    a_up, m_up = a, ma
+                    m_lo = 0.5 * m_lo if side < 0 and math.isfinite(m_lo) else m_lo
+                    side = -1
+            cut = a
+        return {"grid": grid, "cutoff": cut}, ser
+    return None
+
+
 def _series_limits(stage, banks, op, levels):
     """The drive limits and the transfer's series of a stage whose cathode holds its voltage
     (fixed bias, or a bypassed cathode resistor; not the shared push-pull one): the grid
@@ -1641,7 +1854,7 @@ def _series_limits(stage, banks, op, levels):
     (limits as :func:`_drive_limits`, series over [-vin_max, vin_max]) or None (the caller
     then scans)."""
     if _shifts(stage):
-        return None
+        return _shift_series(stage, banks, op, levels)
     se = stage.kind == "single-ended"
     head = stage.grid_onset - max(op[f"{p}.vgk"] for p in stage.positions)
     if stage.rk is None or stage.bypassed:
