@@ -437,13 +437,25 @@ def koren_voltage_gradient(va, vg, mu, ex, kg1, kp, kvb):
 
 
 def koren_current_and_gradient(va, vg, mu, ex, kg1, kp, kvb):
-    """(Ia [A], dIa/dva [S], dIa/dvg [S]) with the shared terms computed once."""
-    va, vg, s, z, L, e1 = _koren_parts(va, vg, mu, kp, kvb)
-    sg = sigmoid(z)
-    e1x = _safe_pow(e1, ex)
-    ia = 2.0 * e1x / kg1
-    dia_de1 = np.where(e1 > 0, ex * ia / np.where(e1 > 0, e1, 1.0), 0.0)
-    return ia, dia_de1 * (L / kp - sg * vg * va * va / s**3), dia_de1 * (va * sg / s)
+    """(Ia [A], dIa/dva [S], dIa/dvg [S]) with the shared terms computed once.
+
+    The stage solvers call this on every step, so it is written out: one exponential serves
+    both the softplus and its derivative (the sigmoid), and E1^ex is exp(ex ln E1); the same
+    values as :func:`koren_current` and :func:`koren_voltage_gradient` to rounding (a test
+    compares them)."""
+    va = np.asarray(va, float)
+    vg = np.asarray(vg, float)
+    s = np.sqrt(np.maximum(kvb + va * va, 1e-24))
+    z = kp * (1.0 / mu + vg / s)
+    e = np.exp(-np.abs(z))
+    L = np.maximum(z, 0.0) + np.log1p(e)  # ln(1 + exp(z))
+    sg = np.where(z >= 0.0, 1.0, e) / (1.0 + e)  # 1 / (1 + exp(-z))
+    e1 = va * L / kp
+    pos = e1 > 0
+    e1_ = np.where(pos, e1, 1.0)
+    ia = np.where(pos, (2.0 / kg1) * np.exp(ex * np.log(e1_)), 0.0)
+    dia_de1 = np.where(pos, ex * ia / e1_, 0.0)
+    return ia, dia_de1 * (L / kp - sg * vg * va * va / (s * s * s)), dia_de1 * (va * sg / s)
 
 
 def koren_evaluate(va, vg, mu, ex, kg1, kp, kvb):

@@ -1888,13 +1888,16 @@ def _series_limits(stage, banks, op, levels):
 
 
 def _cheb_at(c, r, s):
-    """Series ``c`` (n, K) at r sin(theta): r (n,), s (S,) -> (n, S) (Clenshaw's recurrence)."""
-    u = r[:, None] * s[None, :]
+    """Series ``c`` (n, K) at r sin(theta): r (n,), ``s`` (S,) a sine sampled S times a period
+    -> (n, S) (Clenshaw's recurrence, over the distinct samples only: :func:`_half_period`)."""
+    distinct, where = _half_period(s.size)
+    u = r[:, None] * s[distinct][None, :]
+    u2 = 2.0 * u
     b1 = np.zeros_like(u)
     b2 = np.zeros_like(u)
     for k in range(c.shape[1] - 1, 0, -1):
-        b1, b2 = 2.0 * u * b1 - b2 + c[:, k:k + 1], b1
-    return u * b1 - b2 + c[:, :1]
+        b1, b2 = u2 * b1 - b2 + c[:, k:k + 1], b1
+    return (u * b1 - b2 + c[:, :1])[:, where]
 
 
 def _thd_of(v, RL):
@@ -2040,7 +2043,9 @@ def _many_group(stage, cases, thd, level, levels):
     # at its nodes: a step or two instead of seven)
     unknowns = ["tube.ia"] if se else ["A.ia", "B.ia", "v_load", "A.vgk"]
     start = None
-    for K in _CHEB[0 if se else 1:]:  # a push-pull's transfer is never that smooth
+    # a push-pull's transfer is never as smooth as a single-ended one's; a shared unbypassed
+    # cathode resistor bends it further (as :func:`_transfer_series`)
+    for K in _CHEB[0 if se else 1 if stage.rk is None else 2:]:
         C, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
         x = np.cos(np.pi * (np.arange(K) + 0.5) / K)
         bk, ok_ = sub(keep[todo])
