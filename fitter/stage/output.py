@@ -426,6 +426,37 @@ def _pp_bracketed(stage, banks, vga, vgb, vk=None, d0=None):
     return v, ia, ib, vk_
 
 
+def _pp_dc(stage, banks):
+    """The push-pull's DC point (IA, IB, vk) by the joint Newton iteration of :func:`_pp_joint`
+    in plain floats (one model call a step for both tubes; a scalar's numpy arithmetic
+    costs more than the step's model call); None where it does not converge."""
+    pair = _pair_bank(banks, 1)
+    if pair is None:
+        return None
+    B, r, rk, vg = stage.b_plus, stage.r_primary / 2.0, stage._rk, stage._vg
+    shared = stage.rk is not None
+    ia = ib = k = 0.0
+    for _ in range(_JOINT_MAXIT):
+        f, gv, gg = (x.tolist() for x in pair.current_and_gradient(
+            np.array([B - r * ia - k, B - r * ib - k]), np.array([vg - k, vg - k])))
+        (fa, fb), (gaa, gab), (gga, ggb) = f, gv, gg
+        R1, R2 = ia - fa, ib - fb
+        ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+        sa, sb = gaa + gga, gab + ggb
+        dk = 0.0
+        if shared:
+            # R4 + dk - rk (dIA + dIB) = 0, dIA = (-R1 - sa dk) / ca, dIB = (-R2 - sb dk) / cb
+            dk = (-(k - rk * (ia + ib)) + rk * (-R1 / ca - R2 / cb)) / (1.0 + rk * (sa / ca + sb / cb))
+        dia = (-R1 - sa * dk) / ca
+        dib = (-R2 - sb * dk) / cb
+        ia, ib, k = ia + dia, ib + dib, k + dk
+        if not (math.isfinite(ia) and math.isfinite(ib) and math.isfinite(k)):
+            return None
+        if abs(dk) <= 1e-11 * B and abs(dia) + abs(dib) <= 1e-13 + 1e-11 * (abs(ia) + abs(ib)):
+            return ia, ib, k
+    return None
+
+
 def idle(stage, *triodes) -> dict:
     """The DC operating point: per tube ``<pos>.va``, ``.vgk``, ``.ia``, ``.pa``; ``vk``."""
     banks = _banks(stage, triodes)
@@ -440,7 +471,10 @@ def _idle(stage, banks) -> dict:
         va = stage.b_plus - (stage.r_primary + rk) * i
         op = {"vk": rk * i, "tube.va": va, "tube.vgk": vg - rk * i, "tube.ia": i, "tube.pa": va * i}
     else:
-        if stage.rk is None:
+        got = _pp_dc(stage, banks) if _FAST else None
+        if got is not None:
+            ia, ib, vk = got
+        elif stage.rk is None:
             _, ia, ib, vk = _pp_solve(stage, banks, vg, vg, vk=0.0)
         else:
             _, ia, ib, vk = _pp_solve(stage, banks, vg, vg)
@@ -593,7 +627,7 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
         v = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
         ia = op["A.ia"] + (-gaa * v - sa * dk + gga * vin) / ca
         ib = op["B.ia"] + (gab * v - sb * dk - ggb * vin) / cb
-    ia, ib, v = (np.array(np.broadcast_to(x, (rows, S)), float) for x in (ia, ib, v))
+    ia, ib, v = (x if np.shape(x) == (rows, S) else np.broadcast_to(x, (rows, S)) for x in (ia, ib, v))
     m = rows * S
     pair = _pair_bank(banks, m)
     tol_v = 1e-11 * B
@@ -626,7 +660,7 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
         al_b, be_b = (-R2 + gab * dv0) / cb, (gab * dv1 - sb) / cb
         G = vk - rk * ((ia + ib) @ weight)
         den = 1.0 - rk * ((be_a + be_b) @ weight)
-        if not np.all(np.isfinite(den) & (den >= (1.0 if follow is None else 0.05))):
+        if not den.min() >= (1.0 if follow is None else 0.05):  # (False for a NaN as well)
             return None
         dk = (-G + rk * ((al_a + al_b) @ weight)) / den
         dkc = dk[:, None]
@@ -637,10 +671,11 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
         ib = ib + dib
         v = v + dv
         vk = vk + dk
-        if not (np.all(np.isfinite(ia)) and np.all(np.isfinite(ib)) and np.all(np.isfinite(vk))):
+        # (a NaN or infinity anywhere makes the sum so)
+        if not math.isfinite(np.add.reduce(ia, None) + np.add.reduce(ib, None) + np.add.reduce(vk, None)):
             return None
-        if (np.max(np.abs(dk)) <= tol_k and np.max(np.abs(dv)) <= tol_v
-                and np.max(np.abs(dia) + np.abs(dib)) <= 1e-13 + 1e-11 * np.max(np.abs(ia) + np.abs(ib))):
+        if (np.abs(dk).max() <= tol_k and np.abs(dv).max() <= tol_v
+                and (np.abs(dia) + np.abs(dib)).max() <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max()):
             if follow is not None:
                 vin = (follow + vk)[:, None] * sines
             k = vk[:, None]
