@@ -1577,12 +1577,18 @@ class _Series:
         return np.min([np.minimum(ia[j, n + 1:], ia[j, n - 1::-1]) - CUTOFF_FRACTION * op[f"{p}.ia"]
                        for j, p in enumerate(stage.positions)], axis=0)
 
-    def grid_margin(self, amps, stage):
-        """:func:`_margins`' grid margin at the amplitudes ``amps`` (the grid-current onset
-        less each tube's highest grid-cathode voltage over the swing, at a crest)."""
+    def margins(self, amps, op, stage):
+        """:func:`_margins` at the amplitudes ``amps``: (grid margin, the grid-current onset
+        less each tube's highest grid-cathode voltage over the swing; cut-off margin, as
+        :meth:`cut_margin`), both from the crests, in one evaluation."""
         amps = np.asarray(amps, float)
-        vgk = self.at(np.stack([amps, -amps]), tuple(f"{p}.vgk" for p in stage.positions))
-        return np.min([stage.grid_onset - np.max(vgk[j], axis=0) for j in range(len(stage.positions))], axis=0)
+        pos = stage.positions
+        got = self.at(np.stack([amps, -amps]), tuple(f"{p}.vgk" for p in pos) + tuple(f"{p}.ia" for p in pos))
+        n = len(pos)
+        grid = np.min([stage.grid_onset - np.max(got[j], axis=0) for j in range(n)], axis=0)
+        cut = np.min([np.min(got[n + j], axis=0) - CUTOFF_FRACTION * op[f"{p}.ia"] for j, p in enumerate(pos)],
+                     axis=0)
+        return grid, cut
 
     def cut_margin(self, amps, op, stage):
         """:func:`_margins`' cut-off margin at the amplitudes ``amps`` (each tube's least
@@ -1907,7 +1913,7 @@ def _series_limits(stage, banks, op, levels):
         series = _transfer_series(stage, banks, op, hi, None, levels)
         if series is None:
             return None
-        grid, cut = _two_crossings(lambda a: (series.grid_margin(a, stage), series.cut_margin(a, op, stage)), hi)
+        grid, cut = _two_crossings(lambda a: series.margins(a, op, stage), hi)
         if cut is not None and grid is not None and cut >= grid:
             cut = None
         lim = {"grid": grid, "cutoff": cut}
