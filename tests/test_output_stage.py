@@ -246,8 +246,10 @@ def test_turns_ratio_gives_the_reflected_load():
 def test_cut_off_at_idle_is_a_solve_error():
     from fitter.stage import StageSolveError
 
-    with pytest.raises(StageSolveError, match="cut off at idle"):
+    with pytest.raises(StageSolveError, match="^the tube is cut off at idle .*make the grid bias less negative$"):
         solve_output(SingleEndedOutput(b_plus=150.0, load=3000.0, grid_bias=-200.0), TA)
+    with pytest.raises(StageSolveError, match="^tubes A and B are cut off at idle"):
+        solve_output(PushPullOutput(b_plus=150.0, load=3000.0, grid_bias=-200.0), TA, TB)
 
 
 def test_report_and_dict_carry_the_caution_and_the_figures():

@@ -484,9 +484,11 @@ def _idle(stage, banks) -> dict:
             va = stage.b_plus - stage.r_primary / 2.0 * i - vk
             op.update({f"{p}.va": va, f"{p}.vgk": vg - vk, f"{p}.ia": i, f"{p}.pa": va * i})
     if min(op[f"{p}.ia"] for p in stage.positions) <= 1e-7:
-        who = ", ".join(p for p in stage.positions if op[f"{p}.ia"] <= 1e-7)
-        raise StageSolveError(f"tube {who} is cut off at idle (no plate current): raise the bias "
-                              f"voltage or lower the cathode resistor")
+        off = [p for p in stage.positions if op[f"{p}.ia"] <= 1e-7]
+        who = ("the tube is" if off == ["tube"] else f"tube {off[0]} is" if len(off) == 1 else "tubes A and B are")
+        cure = ("make the grid bias less negative" if stage.grid_bias is not None
+                else "lower the cathode resistor")
+        raise StageSolveError(f"{who} cut off at idle (no plate current): {cure}")
     return op
 
 
