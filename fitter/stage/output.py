@@ -269,21 +269,36 @@ _FAST = True
 _SERIES = True
 
 
-def _pair_bank(banks, m):
-    """Both tubes as one bank over 2 m states (A's then B's), so each step of the joint
-    iteration evaluates the model once (a call's fixed cost is most of a step's for the
-    waveforms' few hundred samples); None when the tubes differ in model or grid-current
-    parameters (those stay scalar in a bank)."""
+def _pair_bank(banks, m, shape=None):
+    """Both tubes as one bank over 2 m states (A's then B's, each flattened), so each step of
+    the joint iteration evaluates the model once (a call's fixed cost is most of a step's for
+    the waveforms' few hundred samples); None when the tubes differ in model or grid-current
+    parameters (those stay scalar in a bank).  Banks of many units (parameters (rows, 1), for
+    states of ``shape``) are spread over the states, so the model runs on flat arrays
+    (broadcasting a column over short rows costs several times as much a point)."""
     a, b = banks
-    if a.model is not b.model or any(a.params[n] != b.params[n] for n in a.model.grid_param_names):
+    if a.model is not b.model:
         return None
-    if a.arrays() or b.arrays():
+    if any(isinstance(a.params[n], np.ndarray) or isinstance(b.params[n], np.ndarray) or a.params[n] != b.params[n]
+           for n in a.model.grid_param_names):
+        return None
+    arrays = bool(a.arrays() or b.arrays())
+    if arrays and shape is None:
         return None
     # kept on the first bank (a solve makes the pair for the same sizes again and again)
     cache = a.__dict__.setdefault("_pairs", {})
-    got = cache.get((id(b), m))
+    got = cache.get((id(b), m, shape if arrays else None))
     if got is not None and got[0] is b:
         return got[1]
+    if arrays:
+        def spread(v):
+            return np.broadcast_to(v, shape).ravel() if isinstance(v, np.ndarray) else np.full(m, v)
+        params = {n: (a.params[n] if not isinstance(a.params[n], np.ndarray) and not isinstance(b.params[n], np.ndarray)
+                      and a.params[n] == b.params[n] else np.concatenate([spread(a.params[n]), spread(b.params[n])]))
+                  for n in a.model.param_names}
+        pair = _Bank(a.model, params)
+        cache[(id(b), m, shape)] = (b, pair)
+        return pair
     params = {n: (a.params[n] if a.params[n] == b.params[n] else np.repeat([a.params[n], b.params[n]], m))
               for n in a.model.param_names}
     pair = _Bank(a.model, params)
@@ -319,7 +334,7 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
         k = state(vk)
     tol = 1e-11 * B
     m = math.prod(shape)
-    pair = _pair_bank(banks, m) if _FAST else None
+    pair = _pair_bank(banks, m, shape) if _FAST else None
     vga_ = state(vga)
     vgb_ = state(vgb)
     for _ in range(_JOINT_MAXIT):
@@ -631,7 +646,7 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
         ib = op["B.ia"] + (gab * v - sb * dk - ggb * vin) / cb
     ia, ib, v = (x if np.shape(x) == (rows, S) else np.broadcast_to(x, (rows, S)) for x in (ia, ib, v))
     m = rows * S
-    pair = _pair_bank(banks, m)
+    pair = _pair_bank(banks, m, (rows, S))
     tol_v = 1e-11 * B
     tol_k = 1e-10 * B
     for _ in range(_JOINT_MAXIT):
@@ -1796,6 +1811,13 @@ class _ShiftSeries:
         return np.min(out, axis=0)
 
 
+def _vk_nodes(shift):
+    """A first count of Chebyshev nodes in the held cathode voltage for a bias shift of
+    ``shift`` [V] (measured on power triodes: 8 resolve 2 V to 1e-10, 10 resolve 5 V, about
+    17 resolve 14 V); the coefficients' decay corrects it."""
+    return int(min(48, max(8, round(8 + shift / 1.5))))
+
+
 def _shift_series(stage, banks, op, levels):
     """(limits, :class:`_ShiftSeries`) of a push-pull on a shared bypassed cathode resistor, or
     None when the series do not resolve it (the caller then solves level by level)."""
@@ -1812,9 +1834,9 @@ def _shift_series(stage, banks, op, levels):
     gab, ggb = banks[1].gradient(np.asarray(op["B.va"], float), np.asarray(op["B.vgk"], float))
     ca, cb = 1.0 + r * gaa, 1.0 + r * gab
     sa, sb = gaa + gga, gab + ggb
-    # nodes in the cathode voltage: 12 resolve a bias shift of a few volts to 1e-11, a shift of
-    # 30 V in class AB takes about 30; the drive's nodes as the stage without the shift
-    J, Ks = 12, list(_CHEB[1:])
+    # nodes in the cathode voltage as the bias shift needs (:func:`_vk_nodes`); in the drive
+    # from 32 up, as the series' tail asks
+    J, Ks = _vk_nodes(np.max(np.abs(vk_top - vk0))), list(_CHEB)
     for _ in range(6):
         K = Ks[0]
         tj = np.cos(np.pi * (np.arange(J) + 0.5) / J)
@@ -1831,8 +1853,8 @@ def _shift_series(stage, banks, op, levels):
         w = _waveforms(stage, banks, op, vin, vk=vkn[:, None], x0=x0)
         keys = list(w)
         W = np.stack([np.broadcast_to(w[k], (J, K)) for k in keys])
-        # the two-dimensional transform, one axis at a time (tensordot: one product each)
-        got = np.tensordot(np.tensordot(W, CJ, axes=([1], [1])), CK, axes=([1], [1]))  # (keys, J, K)
+        # the two-dimensional transform, one axis at a time
+        got = (CJ @ W) @ CK.T  # (keys, J, K)
         coef = dict(zip(keys, got))
         c = coef["v_load"]
         s_ = coef["A.ia"] + coef["B.ia"]
@@ -2217,6 +2239,12 @@ def _many_shifting(stage, cases, thd, level, levels):
                             follow=np.full(n, c))
     vin_max = c + vk_g
     good = vin_max > 1e-9 * stage.b_plus
+    res = _shift_series_many(stage, banks, op, vin_max, vk_g, thd, level, levels) if (
+        _FAST and _SERIES and good.all()) else None
+    if res is not None:
+        for key, v in res.items():
+            figs[key][keep] = np.asarray(v)
+        return figs, failed
     # the power sweep, each level started from the cathode's square-law growth to the limit
     r_l = np.linspace(1.0 / levels, 1.0, levels)
     vk0 = op["vk"][:, None] + (vk_g - op["vk"])[:, None] * r_l[None, :] ** 2
@@ -2269,6 +2297,151 @@ def _many_shifting(stage, cases, thd, level, levels):
         figs[key][keep[good]] = np.asarray(v)[good]
     failed[keep[~good]] = True
     return figs, failed
+
+
+def _shift_series_many(stage, banks, op, grid, vk_top, thd, level, levels):
+    """:func:`_many_shifting`'s figures from :class:`_ShiftSeries`' method run for n units at
+    once (the transfer with the cathode held, a series in the drive and the cathode voltage
+    per unit; each level's cathode voltage, the level at the THD target and the power there
+    in the series).  ``grid``, ``vk_top`` (n,): the grid-current limit and the cathode there.
+    Returns the figures (n,), or None when a unit's series does not resolve (the caller then
+    solves level by level)."""
+    n = grid.size
+    vk0 = np.asarray(op["vk"], float)
+    pad = 0.05 * np.abs(vk_top - vk0) + 1e-3 * np.maximum(np.abs(vk0), 1.0)
+    lo, hi = np.minimum(vk0, vk_top) - pad, np.maximum(vk0, vk_top) + pad
+    mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
+    r, q, rk, RL = stage.r_primary / 2.0, stage.reflected_load / 4.0, stage._rk, stage.reflected_load
+    gaa, gga = (g[:, None, None] for g in banks[0].gradient(op["A.va"], op["A.vgk"]))
+    gab, ggb = (g[:, None, None] for g in banks[1].gradient(op["B.va"], op["B.vgk"]))
+    ca, cb = 1.0 + r * gaa, 1.0 + r * gab
+    sa, sb = gaa + gga, gab + ggb
+    J, Ks = _vk_nodes(np.max(np.abs(vk_top - vk0))), list(_CHEB)
+    for _ in range(6):
+        K = Ks[0]
+        tj = np.cos(np.pi * (np.arange(J) + 0.5) / J)
+        vkn = mid[:, None] + half[:, None] * tj[None, :]  # (n, J)
+        vin = np.broadcast_to(grid[:, None, None] * np.cos(np.pi * (np.arange(K) + 0.5) / K)[None, None, :],
+                              (n, J, K))
+        dk = (vkn - vk0[:, None])[..., None]
+        dv = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
+        x0 = tuple(np.reshape(np.broadcast_to(x, (n, J, K)), (n * J, K)) for x in (
+            np.maximum(op["A.ia"][:, None, None] + (-gaa * dv - sa * dk + gga * vin) / ca, 0.0),
+            np.maximum(op["B.ia"][:, None, None] + (gab * dv - sb * dk - ggb * vin) / cb, 0.0),
+            dv, vkn[..., None]))
+        bk = [_rows_bank(b, J) for b in banks]
+        ok = {key: np.repeat(np.asarray(v, float), J)[:, None] for key, v in op.items()}
+        w = _waveforms(stage, bk, ok, vin.reshape(n * J, K), vk=vkn.reshape(n * J, 1), x0=x0)
+        keys = list(w)
+        W = np.stack([np.broadcast_to(w[k], (n * J, K)).reshape(n, J, K) for k in keys])
+        CJ, _, _ = _cheb_matrices(J, levels, N_SAMPLES)
+        CK, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
+        # (stacked small products: measured faster than one large product after moving axes)
+        got = (CJ @ W) @ CK.T  # (keys, n, J, K)
+        coef = dict(zip(keys, got))
+        c, s_ = coef["v_load"], coef["A.ia"] + coef["B.ia"]
+        big = np.max(np.abs(c), axis=(1, 2))
+        vin_ok = np.max(np.abs(c[:, :, -4:]), axis=(1, 2)) <= _CHEB_TAIL * big
+        vk_ok = ((np.max(np.abs(c[:, -2:, :]), axis=(1, 2)) <= _CHEB_TAIL * big)
+                 & (np.max(np.abs(s_[:, -2:, :]), axis=(1, 2)) <= _CHEB_TAIL * np.max(np.abs(s_), axis=(1, 2))))
+        if vin_ok.all() and vk_ok.all():
+            break
+        if not vin_ok.all():
+            Ks.pop(0)
+            if not Ks:
+                return None
+        if not vk_ok.all():
+            rows = np.max(np.abs(c[~vk_ok]), axis=2) / big[~vk_ok, None]  # (bad, J)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                rate = np.max((rows[:, -1] / rows[:, -5]) ** 0.25)
+            if not 0.0 < rate < 1.0 or J >= 48:
+                return None
+            J = int(min(48, max(J + 4, math.ceil(math.log(1e-10) / math.log(rate)) + 2)))
+    else:
+        return None
+    scale = (2.0 / (hi - lo))[:, None]
+
+    def cathode(mu, start):
+        """Each unit's cathode voltage at amplitudes whose period means of T_k are ``mu``
+        (n, a, K), from ``start`` (n, a); None outside a series' range."""
+        d = np.einsum("nak,nmk->nam", mu, s_)
+        v = start
+        for _ in range(30):
+            T, D = _cheb_values((2.0 * v - (lo + hi)[:, None]) / (hi - lo)[:, None], J)
+            step = (v - rk * np.sum(d * T, axis=-1)) / (1.0 - rk * scale * np.sum(d * D, axis=-1))
+            v = v - step
+            if not (np.all(v >= lo[:, None]) and np.all(v <= hi[:, None])):  # (False for a NaN)
+                return None
+            if np.max(np.abs(step)) <= 1e-12 * stage.b_plus:
+                return v
+        return None
+
+    def along(v, key):
+        """The series in the drive of ``key`` at cathode voltages v (n, a): (n, a, K)."""
+        T, _ = _cheb_values((2.0 * v - (lo + hi)[:, None]) / (hi - lo)[:, None], J)
+        return np.einsum("nam,nmk->nak", T, coef[key])
+
+    r_l = np.linspace(1.0 / levels, 1.0, levels)
+    vk_l = cathode(np.broadcast_to(_cheb_means(K, levels, N_SAMPLES), (n, levels, K)),
+                   vk0[:, None] + (vk_top - vk0)[:, None] * r_l[None, :] ** 2)
+    if vk_l is None:
+        return None
+    _, tab, E_full = _cheb_matrices(K, levels, N_SAMPLES)
+    h = np.abs(np.einsum("lhk,nlk->nlh", tab, along(vk_l, "v_load")))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.sqrt(np.sum(h[:, :, 1:] ** 2, axis=2)) / h[:, :, 0]
+    power = h[:, :, 0] ** 2 / (2.0 * RL)
+    sines, _, _, where = _period_samples()
+
+    def at(x):
+        """(power, THD) at the drive x (n,) (each unit's cathode solved there)."""
+        rr = x / grid
+        Tk = np.cos(np.arccos(np.clip(rr[:, None] * np.asarray(sines)[None, :], -1.0, 1.0))[..., None]
+                    * np.arange(K))  # (n, S, K)
+        _, weight, _, _ = _period_samples()
+        v = cathode(np.einsum("nsk,s->nk", Tk, weight)[:, None, :],
+                    (vk0 + (vk_top - vk0) * rr ** 2)[:, None])
+        if v is None:
+            return None
+        wave = np.einsum("nsk,nk->ns", Tk, along(v, "v_load")[:, 0])[:, where]
+        return _thd_of(wave, RL)
+
+    # the drive at the THD target: interpolated between levels, one secant step (as
+    # _level_at_thd); units that never reach it keep NaN
+    over = t >= thd
+    has = over.any(axis=1)
+    k = np.where(has, np.argmax(over, axis=1), 1)
+    rows_ = np.arange(n)
+    lo_a = np.where(k == 0, 0.0, grid * r_l[np.maximum(k - 1, 0)])
+    tlo = np.where(k == 0, 0.0, t[rows_, np.maximum(k - 1, 0)])
+    up_a, tup = grid * r_l[k], t[rows_, k]
+    p_thd = np.full(n, np.nan)
+    if has.any():
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = np.where(has, lo_a + (up_a - lo_a) * (thd - tlo) / (tup - tlo), grid)
+            got = at(x)
+            if got is None:
+                return None
+            tx = got[1]
+            below = tx < thd
+            lo_a, tlo = np.where(below, x, lo_a), np.where(below, tx, tlo)
+            up_a, tup = np.where(below, up_a, x), np.where(below, tup, tx)
+            xt = np.where(has, lo_a + (up_a - lo_a) * (thd - tlo) / (tup - tlo), grid)
+            got = at(xt)
+            if got is None:
+                return None
+        p_thd = np.where(has, got[0], np.nan)
+    res = {"p_thd": p_thd}
+    _batch_common(stage, banks, op, power, t, level, res)
+    if stage.pa_max is not None:
+        full = []
+        for p in stage.positions:
+            va = np.einsum("sk,nk->ns", E_full, along(vk_l[:, -1:], f"{p}.va")[:, 0])
+            ia = np.einsum("sk,nk->ns", E_full, along(vk_l[:, -1:], f"{p}.ia")[:, 0])
+            full.append(np.maximum(op[f"{p}.pa"], np.mean(va * ia, axis=1)))
+        res["pa_ratio"] = np.max(full, axis=0) / stage.pa_max
+    res["imbalance"] = op["A.ia"] - op["B.ia"]
+    return res
 
 
 def _batch_common(stage, banks, op, power, t, level, res):
