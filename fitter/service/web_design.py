@@ -150,6 +150,10 @@ def _resolve_tubes(db, kind, given: dict) -> dict:
         ids[name] = _unit_id(v) if isinstance(v, int) else resolve_unit(db, v, name)
     names = _tubes_of(kind)
     if len(names) == 2 and ids[names[0]] == ids[names[1]]:
+        if kind == "push-pull":
+            from .output import same_tube_message
+
+            raise InputError(same_tube_message(), field=names[1])
         raise InputError("the two tubes must be two different sections", field=names[1])
     extra = sorted(k for k, v in given.items() if k not in names and v not in (None, ""))
     if extra:

@@ -82,6 +82,32 @@ def _errors(html):
     return [htmllib.unescape(e) for e in re.findall(r'class="error">([^<]*)<', html)]
 
 
+def test_two_fits_of_one_tube_are_no_push_pull_pair(fresh, fresh_signed_in, fresh_app, synth, tube_types,
+                                                      write_long, tmp_path):
+    """Two unit ids of one section (its first fit and a re-fit) are one tube: the output service
+    refuses them for tube B on the page and in the API (common practice: a pair is two tubes)."""
+    from .webtools import make_stock
+
+    stock.import_files(fresh, "setup", [str(make_stock(synth, tube_types, write_long, tmp_path / "s.csv",
+                                                       n_tubes=1))], "DT")
+    first = stock.show_tube(fresh, "W01").data["sections"][0]["fit_id"]
+    r = stock.refit(fresh, "setup", "DT", jobs=1)
+    assert not r.data["failed"], r.data
+    again = web_support.resolve_unit(fresh, "W01:A")
+    assert again != first
+    page = fresh_signed_in("viewer").get(f"/output?kind=push-pull&tube_a={first}&tube_b={again}&b_plus=250"
+                                         "&load=20k&grid_bias=-8.5").get_data(as_text=True)
+    assert _errors(page) == ["tube B: the same tube as tube A (W01:A); a push-pull pair is two different tubes"]
+    r = fresh_app.test_client().post("/api/v1/output", headers=_auth(token_for(fresh, "viewer")), json={
+        "kind": "push-pull", "circuit": {"b_plus": 250, "load": "20k", "grid_bias": -8.5}, "tube_a": first,
+        "tube_b": again})
+    assert r.status_code == 400 and r.get_json()["errors"][0]["field"] == "tube_b"
+    # the other section of the same bottle is another tube: a pair
+    page = fresh_signed_in("viewer").get(f"/output?kind=push-pull&tube_a={first}&tube_b=W01:B&b_plus=250"
+                                         "&load=20k&grid_bias=-8.5").get_data(as_text=True)
+    assert _errors(page) == [] and "DC imbalance" in page
+
+
 # -- the stage page's spread ---------------------------------------------------------------
 
 
@@ -197,7 +223,8 @@ def test_push_pull_page_with_two_tubes_and_its_api_match_the_command_line(signed
 def test_output_errors_name_the_field(signed_in, stocked, app):
     c = signed_in("viewer")
     page = c.get("/output?kind=push-pull&tube_a=W01:A&tube_b=W01:A&b_plus=250&load=20k&grid_bias=-8.5")
-    assert _errors(page.get_data(as_text=True)) == ["tube B: the two tubes must be two different sections"]
+    assert _errors(page.get_data(as_text=True)) == [
+        "tube B: the same tube as tube A; a push-pull pair is two different tubes"]
     page = c.get("/output?kind=single-ended&tube=W01:A&b_plus=250&load=lots&grid_bias=-8.5").get_data(as_text=True)
     assert _errors(page)[0].startswith("reflected load [Ω]: cannot read 'lots'")
     page = c.get("/output?kind=single-ended&tube=W01:A&b_plus=250&load=10k").get_data(as_text=True)
