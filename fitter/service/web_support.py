@@ -581,6 +581,20 @@ def stage_fields(kind) -> list:
     return out
 
 
+def required_fields(kind) -> tuple:
+    """The fields a kind of stage (small-signal or output) cannot do without: those with no
+    default (the form marks them; the others take their default when left empty)."""
+    from dataclasses import MISSING, fields
+
+    from ..stage.output import PushPullOutput, SingleEndedOutput
+    from .stages import KINDS
+
+    cls = {**KINDS, "single-ended": SingleEndedOutput, "push-pull": PushPullOutput}.get(kind)
+    if cls is None:
+        raise InputError(f"must be a kind of stage, got {shown(str(kind))!r}", field="kind")
+    return tuple(f.name for f in fields(cls) if f.default is MISSING and f.default_factory is MISSING)
+
+
 def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False) -> dict:
     """A stage solved with tubes from the ledger: ``{"result": to_dict(), "report": text,
     "plot_svg": load-line plot (SVG bytes)}``, with ``thd``: also ``"thd_svg"`` and
