@@ -136,6 +136,35 @@ def test_spread_of_a_type_is_the_command_lines_spread_over_its_cards(signed_in, 
     assert g["median"] == pytest.approx(-mu * 100e3 / (100e3 + rp), rel=0.02)
 
 
+def _spread_table(page) -> dict:
+    """figure -> the cells after its unit in the spread table (numbers, or one note)."""
+    body = page[page.index('class="grid spread"'):]
+    body = body[:body.index("</table>")]
+    rows = re.findall(r"<tr><td>([^<]*)</td><td>[^<]*</td>(.*?)</tr>", body)
+    out = {}
+    for fig, cells in rows:
+        assert fig not in out, f"{fig} appears twice in the spread table"
+        out[fig] = [htmllib.unescape(c) for c in re.findall(r"<td[^>]*>([^<]*)</td>", cells)]
+    return out
+
+
+def test_spread_table_shows_each_figure_once_and_no_input_capacitance_it_does_not_know(signed_in):
+    c = signed_in("viewer")
+    table = _spread_table(c.get("/stage?kind=common-cathode&type=DT&b_plus=300&ra=100k&rk=1.5k&ck=22u")
+                          .get_data(as_text=True))
+    assert "mid-band gain" in table  # once (the dB row was the same gain again)
+    # the cards carry no capacitances and the circuit gives none: not a spread of zeros
+    assert table["input capacitance"] == ["not given (give the tube capacitances Cgk and Cga)"]
+    table = _spread_table(c.get("/stage?kind=common-cathode&type=DT&b_plus=300&ra=100k&rk=1.5k&ck=22u"
+                                "&cgk=1.6p&cga=1.5p").get_data(as_text=True))
+    lo, med, hi, n = table["input capacitance"]
+    gain = float(table["mid-band gain"][1])
+    # Miller effect (textbook, e.g. Radiotron Designer's Handbook, from memory): Cgk + (1 - A) Cga
+    # with a bypassed cathode; the median unit's gain from the same table
+    assert float(med) == pytest.approx(1.6 + (1 - gain) * 1.5, rel=0.02) and n == "6"
+    assert float(lo) <= float(med) <= float(hi)
+
+
 def test_spread_of_stacks_pairs_each_bottles_sections_and_leaves_out_what_is_not_in_stock(fresh_signed_in, fresh,
                                                                                           synth, tube_types,
                                                                                           write_long, tmp_path):
