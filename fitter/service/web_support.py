@@ -25,7 +25,7 @@ from .stock import _ledger
 
 __all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "fit_result", "validate_uploads", "import_uploads",
            "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES", "tube_page", "match_table",
-           "type_nominal", "compare_nominal", "compare_plot"]
+           "type_nominal", "compare_nominal", "compare_plot", "compare_page"]
 
 #: largest single upload [bytes] (the reader's own row limit applies as well)
 MAX_UPLOAD_BYTES = 20 * 1024 * 1024
@@ -644,6 +644,12 @@ def _compared_units(db, units, most):
 def compare_plot(db, units) -> bytes:
     """One SVG with the model curves of several stored units (label:section or unit id, at
     most :data:`MAX_COMPARE`), each its own colour (:func:`fitter.plotting_compare.plot_compare`)."""
+    return compare_page(db, units)["svg"]
+
+
+def compare_page(db, units) -> dict:
+    """:func:`compare_plot` with the grid voltages drawn: ``{"svg", "grids"}``, ``grids`` from
+    :func:`fitter.plotting_compare.grid_choice` with its sentence in ``grids["note"]``."""
     from ..card import load_card
     from ..plotting_compare import save_compare_plot
 
@@ -653,7 +659,14 @@ def compare_plot(db, units) -> bytes:
     with _card_files(db, ids) as cards:
         triodes = [load_card(c) for c in cards]
     with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
-        return save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes()
+        return {"svg": save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes(), "grids": _grids(triodes)}
+
+
+def _grids(triodes) -> dict:
+    from ..plotting_compare import grid_choice, grid_note
+
+    choice = grid_choice(triodes)
+    return {**choice, "note": grid_note(choice)}
 
 
 def type_nominal(db, tube_type, model=None) -> dict:
@@ -748,4 +761,4 @@ def compare_nominal(db, units) -> dict:
                                  title=f"{', '.join(t.label for t in triodes)} against the {types[0]} nominal "
                                        f"({nom['basis']})")
         return {"svg": path.read_bytes(), "basis": nom["basis"], "kind": nom["kind"], "type": types[0],
-                "n": nom["n"]}
+                "n": nom["n"], "grids": _grids(triodes + [nom["triode"]])}
