@@ -338,7 +338,10 @@ def import_uploads(db, user, files, tube_type, model="koren", instrument="", not
                 units.append(_unit_dict(f, sec, tube))
     for fd, (name, _) in zip(d["files"], files):
         fd["file"] = shown(str(name))
-    return {"files": d["files"], "units": units, "failed": res.failed, "lines": list(res.lines)}
+    # stored all the same, but said: the same measured points under another tube's label
+    warnings = [f"{fd['file']}: {w}" for fd in d["files"] for w in fd.get("warnings", [])]
+    return {"files": d["files"], "units": units, "failed": res.failed, "lines": list(res.lines),
+            "warnings": warnings}
 
 
 def _safe_name(name: str, fallback: str) -> str:
