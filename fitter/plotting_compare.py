@@ -10,7 +10,7 @@ import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
 
-#: at most this many grid curves are drawn (spread evenly over the first unit's grid voltages)
+#: at most this many grid curves are drawn (every k-th of the first unit's grid voltages)
 MAX_GRIDS = 7
 STYLES = ("-", "--", "-.", ":")
 
@@ -28,17 +28,48 @@ def _range_of(t):
     return None
 
 
+def grid_choice(triodes) -> dict:
+    """Which grid voltages the plot draws: ``{"drawn": [...], "measured": [...] or None,
+    "left_out": [...], "step": k, "unit": label}``.  The first unit with a measured range
+    gives them: all its measured grid voltages when there are at most :data:`MAX_GRIDS`, else
+    every k-th from the highest (evenly spaced, k as small as keeps at most MAX_GRIDS), the
+    others left out for legibility.  A unit without an envelope has no list of measured grid
+    voltages (``measured`` None): MAX_GRIDS spread over its fitted range are drawn."""
+    for t in triodes:
+        r = _range_of(t)
+        if r is None:
+            continue
+        g = [float(x) for x in r[1]]
+        if t.envelope is None:
+            return {"drawn": g, "measured": None, "left_out": [], "step": 1, "unit": t.label}
+        step = max(1, -(-len(g) // MAX_GRIDS))
+        drawn = g[::step]
+        return {"drawn": drawn, "measured": g, "left_out": [x for x in g if x not in drawn], "step": step,
+                "unit": t.label}
+    return {"drawn": [0.0, -2.0, -4.0], "measured": None, "left_out": [], "step": 1, "unit": None}
+
+
+def grid_note(choice) -> str:
+    """One sentence on the grid voltages drawn, and those left out (for a page or the plot)."""
+    drawn = ", ".join(f"{g:g}" for g in choice["drawn"]) + " V"
+    if choice["measured"] is None:
+        return f"Drawn at grid voltages {drawn}" + (
+            f", spread over {choice['unit']}'s fitted range." if choice["unit"] else ".")
+    n = len(choice["measured"])
+    if not choice["left_out"]:
+        return f"Drawn at every grid voltage {choice['unit']} was measured at: {drawn}."
+    nth = {2: "second", 3: "third", 4: "fourth"}.get(choice["step"], f"{choice['step']}th")
+    return (f"Drawn at every {nth} of the {n} grid voltages {choice['unit']} was measured at: {drawn}; "
+            f"{', '.join(f'{g:g}' for g in choice['left_out'])} V left out for legibility.")
+
+
 def compare_grid(triodes) -> tuple[np.ndarray, list]:
     """(plate voltages [V], grid voltages [V]) to draw: 0 to the highest plate voltage any unit
-    was measured at, and up to :data:`MAX_GRIDS` of the first unit's measured grid voltages
-    (its fitted range when it carries no envelope).  A unit with neither (a nominal model)
-    takes the others' range."""
+    was measured at, and the grid voltages of :func:`grid_choice`.  A unit with no range (a
+    nominal model) takes the others' range."""
     known = [r for r in (_range_of(t) for t in triodes) if r is not None]
     va_max = max(r[0] for r in known) if known else 400.0
-    g = known[0][1] if known else [0.0, -2.0, -4.0]
-    if len(g) > MAX_GRIDS:
-        g = [g[i] for i in np.linspace(0, len(g) - 1, MAX_GRIDS).round().astype(int)]
-    return np.linspace(0.0, va_max, 300), [float(x) for x in g]
+    return np.linspace(0.0, va_max, 300), grid_choice(triodes)["drawn"]
 
 
 def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
@@ -105,6 +136,14 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, title="unit (model curves)",
               title_fontsize=9, frameon=False)
     grid_text = "grid voltages " + ", ".join(f"{g:g}" for g in grids) + " V"
+    choice = grid_choice(triodes)
+    if choice["left_out"]:  # under the legend, beside the plot: which were left out
+        import textwrap
+
+        left = ", ".join(f"{g:g}" for g in choice["left_out"])
+        ax.figure.text(0.775, 0.13, textwrap.fill(f"Not drawn, for legibility: {left} V "
+                                                  f"(of the {len(choice['measured'])} measured)", 30),
+                       fontsize=8.5, color="0.3", va="bottom", ha="left")
     if title is None:
         title = f"{len(triodes)} units compared at {grid_text}"
     else:

@@ -85,17 +85,15 @@ def plot_output(run, axes=None):
     # for push-pull: drawn for equal currents)
     if r_dc > 0:
         i_dc = np.linspace(0, ia_top / 1e3, 50)
-        ax.plot(st.b_plus - r_dc * i_dc, 1e3 * i_dc, color="0.35", lw=1.2, ls="--",
-                label=f"DC load line ({r_dc:.4g} ohm{'' if se else ' per side'})")
+        ax.plot(st.b_plus - r_dc * i_dc, 1e3 * i_dc, color="0.35", lw=1.2, ls="--", label=dc_load_label(st))
     else:
         ax.axvline(st.b_plus, color="0.35", lw=1.2, ls="--", label="DC load line (no resistance)")
     if se:
         # plate-cathode voltage against current: an unbypassed cathode resistor adds its slope
-        r_ac = st.r_primary + st.reflected_load + (rk if not st.bypassed else 0.0)
+        r_ac = _ac_parts(st)[0]
         i = np.linspace(0, ia_top / 1e3, 50)
         i0, v0 = res.op["tube.ia"], res.op["tube.va"]
-        ax.plot(v0 - r_ac * (i - i0), 1e3 * i, color="tab:red", lw=1.2,
-                label=f"AC load line ({r_ac:.4g} ohm)")
+        ax.plot(v0 - r_ac * (i - i0), 1e3 * i, color="tab:red", lw=1.2, label=ac_load_label(st))
         ax.plot(w["tube.va"], 1e3 * w["tube.ia"], color="tab:red", lw=4.5, alpha=0.35,
                 label=f"swing at {f['p_max']:.3g} W")
     else:
@@ -194,6 +192,47 @@ def plot_output(run, axes=None):
         log_ticks(axes[1], "x")
         log_ticks(axes[1], "y")
     return axes  # given axes: their figures' layout is the caller's (plotting_web.output_panels)
+
+
+def _sum_label(what: str, parts: list) -> str:
+    """``what`` with its resistance and the parts it adds up (one line per two parts)."""
+    total = sum(v for _, v in parts)
+    if len(parts) == 1:
+        return f"{what}: {parts[0][0]}, {total:.4g} ohm"
+    terms = [f"{name} {v:.4g}" for name, v in parts]
+    rows = [" + ".join(terms[k:k + 2]) for k in range(0, len(terms), 2)]
+    return f"{what} {total:.4g} ohm =\n" + "\n+ ".join(rows)
+
+
+def _ac_parts(st):
+    """The single-ended AC load line's slope [ohm] and its parts: the plate sees the
+    reflected load, the primary's DC resistance in series and an unbypassed cathode resistor
+    (:mod:`fitter.stage.output`)."""
+    parts = [("reflected load", st.reflected_load)]
+    if st.r_primary:
+        parts.append(("primary DC resistance", st.r_primary))
+    if st.rk and not st.bypassed:
+        parts.append(("unbypassed Rk", st.rk))
+    return sum(v for _, v in parts), parts
+
+
+def ac_load_label(st) -> str:
+    """The legend of a single-ended stage's AC load line: its slope and what it adds up."""
+    return _sum_label("AC load line", _ac_parts(st)[1])
+
+
+def dc_load_label(st) -> str:
+    """The legend of the DC load line: its resistance and what it adds up (a push-pull's per
+    side, drawn for equal currents: half the primary and the shared cathode resistor
+    carrying both tubes' current)."""
+    se = st.kind == "single-ended"
+    parts = []
+    if st.r_primary:
+        parts.append(("primary DC resistance" if se else "half primary DC resistance",
+                      st.r_primary if se else st.r_primary / 2))
+    if st.rk:
+        parts.append(("Rk" if se else "2 x shared Rk", st.rk if se else 2 * st.rk))
+    return _sum_label("DC load line" + ("" if se else " per side"), parts)
 
 
 #: the legend's top under the axes [inch]: below the tick labels and the x label

@@ -125,3 +125,31 @@ def test_service_names_unknown_fields_and_kinds():
     with pytest.raises(SpecError) as e:
         run_output(OutputSpec("push-pull", {"b_plus": 400.0, "load": 5000.0, "grid_bias": -84.0}, tube_a="x.json"))
     assert e.value.field == "tube_b"
+
+
+def test_a_push_pull_refuses_the_same_tube_twice_naming_tube_b(cards):
+    # common practice: a push-pull pair is two tubes; one card given twice is no pair
+    pp = ["--bplus", "400", "--load", "5k", "--bias", "-84"]
+    res = CliRunner().invoke(main, ["output", "push-pull", "--tube-a", str(cards["a"]), "--tube-b",
+                                    str(cards["a"]), *pp])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    assert res.output.strip() == "error: --tube-b: the same tube as tube A (PA); a push-pull pair is two different tubes"
+    # a second card of the same tube (another fit of it, another file) is still one tube
+    again = save_card(cards["tmp"] / "PA-again.json", FittedTriode("koren", dict(P300B, kg1=1500.0), tube="PA"))
+    spec = OutputSpec("push-pull", {"b_plus": 400.0, "load": 5000.0, "grid_bias": -84.0}, tube_a=str(cards["a"]),
+                      tube_b=str(again))
+    with pytest.raises(SpecError) as e:
+        run_output(spec)
+    assert e.value.field == "tube_b"
+    # ... and so is the design sweep of a push-pull (the same service check)
+    from fitter.service.design import SweepSpec, stage_sweep
+
+    with pytest.raises(SpecError) as e:
+        stage_sweep(SweepSpec("push-pull", "load", 4000.0, 6000.0, 3, circuit={"b_plus": 400.0, "grid_bias": -84.0},
+                              tube_a=str(cards["a"]), tube_b=str(cards["a"])))
+    assert e.value.field == "tube_b"
+    # two sections of one bottle are two tubes: accepted
+    sa = save_card(cards["tmp"] / "D-A.json", FittedTriode("koren", P300B, tube="D", section="A"))
+    sb = save_card(cards["tmp"] / "D-B.json", FittedTriode("koren", dict(P300B, kg1=1600.0), tube="D", section="B"))
+    res = CliRunner().invoke(main, ["output", "push-pull", "--tube-a", str(sa), "--tube-b", str(sb), *pp])
+    assert res.exit_code == 0, res.output

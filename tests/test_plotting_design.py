@@ -252,3 +252,43 @@ def test_stage_page_plots_overlap_nothing(ledger, monkeypatch, kind, circuit, tu
     monkeypatch.setattr(PS, "_save", save)
     out = web_support.stage_report(ledger, kind, circuit, thd=True, **tubes)
     assert len(seen) == 2 and out["plot_svg"] and out["thd_svg"]
+
+
+def test_output_load_line_legends_say_what_their_slopes_add_up(ledger):
+    """The single-ended AC load line's slope is the reflected load plus the primary's DC
+    resistance (plus an unbypassed cathode resistor): the legend says so, with the total the
+    line is drawn with (Ohm's law on an ideal transformer's primary, common practice)."""
+    from fitter.plotting_output import plot_output
+    from fitter.service import web_design
+
+    run = web_design.output_run(ledger, "single-ended", {"b_plus": "380", "load": "3200", "r_primary": "150",
+                                                         "rk": "700", "bypassed": "no"}, {"tube": "PT-03"})
+    axes = plot_output(run)
+    try:
+        assert_no_overlap(axes[0].figure, "single-ended, unbypassed")
+        lines = {ln.get_label(): ln for ln in axes[0].get_lines()}
+        ac = [k for k in lines if k.startswith("AC load line")]
+        assert ac == ["AC load line 4050 ohm =\nreflected load 3200 + primary DC resistance 150\n+ unbypassed Rk 700"]
+        x, y = lines[ac[0]].get_data()
+        assert np.allclose(np.diff(x) / np.diff(y / 1e3), -(3200 + 150 + 700), rtol=1e-9)  # the slope drawn
+        assert "DC load line 850 ohm =\nprimary DC resistance 150 + Rk 700" in lines
+    finally:
+        plt.close(axes[0].figure)
+    run = web_design.output_run(ledger, "single-ended", {"b_plus": "300", "load": "3k", "grid_bias": "-61"},
+                                {"tube": "PT-03"})
+    axes = plot_output(run)
+    try:
+        labels = [ln.get_label() for ln in axes[0].get_lines()]
+        assert "AC load line: reflected load, 3000 ohm" in labels  # no primary resistance given
+    finally:
+        plt.close(axes[0].figure)
+    run = web_design.output_run(ledger, "push-pull", {"b_plus": "400", "load": "5k", "r_primary": "200",
+                                                      "rk": "500"}, {"tube_a": "PT-02", "tube_b": "PT-03"})
+    axes = plot_output(run)
+    try:
+        assert_no_overlap(axes[0].figure, "push-pull, shared cathode")
+        labels = [ln.get_label() for ln in axes[0].get_lines()]
+        # per side, for equal currents: half the primary and the shared resistor carrying both
+        assert "DC load line per side 1100 ohm =\nhalf primary DC resistance 100 + 2 x shared Rk 1000" in labels
+    finally:
+        plt.close(axes[0].figure)

@@ -45,7 +45,7 @@ def measurements():
                                      request.form.get("model", "koren"),
                                      instrument=request.form.get("instrument", "")[:200],
                                      notes=request.form.get("notes", "")[:2000])
-    return {"units": res["units"], "files": res["files"]}, 201
+    return {"units": res["units"], "files": res["files"], "warnings": res["warnings"]}, 201
 
 
 @bp.route("/units/<unit_id>", methods=["GET"])
@@ -235,7 +235,10 @@ OPENAPI = {
                     "instrument": {"type": "string"}, "notes": {"type": "string"}}}}}},
             "responses": {"201": {"description": "stored and fitted", "content": {"application/json": {"schema": {
                 "type": "object", "properties": {"units": {"type": "array",
-                                                           "items": {"$ref": "#/components/schemas/Unit"}}}}}}},
+                                                           "items": {"$ref": "#/components/schemas/Unit"}},
+                                                 "warnings": {"type": "array", "items": {"type": "string"},
+                                                              "description": "stored all the same: e.g. the "
+                                                              "same measured points as a tube already stored"}}}}}},
                           "400": _ERR, "401": _ERR, "403": _ERR}}},
         "/units/{id}": {"get": {"summary": "A unit and its fit", "parameters": [_UNIT_ID], "responses": {
             "200": {"description": "the unit", "content": {"application/json": {

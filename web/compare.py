@@ -21,17 +21,18 @@ def index():
     text = request.args.get("units", "")
     nominal = request.args.get("nominal") == "1"
     units = [u.strip() for u in text.replace(",", " ").split() if u.strip()]
-    uri = error = basis = None
+    uri = error = basis = grids = None
     if units or nominal:
         try:
             if nominal:
                 d = web_support.compare_nominal(ledger(), units)
-                svg, basis = d["svg"], d
+                basis = d
             else:
-                svg = web_support.compare_plot(ledger(), units)
+                d = web_support.compare_page(ledger(), units)
+            svg, grids = d["svg"], d["grids"]
             uri = "data:image/svg+xml;base64," + base64.b64encode(svg).decode()
         except InputError as e:
             error = f"{e.field}: {e.message}" if e.field else str(e)
     return render_template("compare.html", title="Compare", text=text, uri=uri, error=error, nominal=nominal,
-                           basis=basis, max_units=web_support.MAX_COMPARE,
+                           basis=basis, grids=grids, max_units=web_support.MAX_COMPARE,
                            min_sections=web_support.MIN_MEDIAN_SECTIONS)

@@ -12,8 +12,8 @@ from fitter.errors import InputError
 from fitter.service import web_design, web_support
 
 from .auth import ledger, need
-from .fields import LABELS, label
-from .stages import data_uri, error_text, tube_types
+from .fields import LABELS, form_hints, label
+from .stages import data_uri, error_text, split_fields, tube_types
 
 bp = Blueprint("design", __name__)
 
@@ -61,11 +61,10 @@ def output():
             out["response_uri"] = data_uri(out.pop("response_svg"))
         except (InputError, RuntimeError) as e:
             error = error_text(e)
-    main = [(n, d) for n, d in fields if n in OUTPUT_MAIN]
-    more = [(n, d) for n, d in fields if n not in OUTPUT_MAIN]
+    main, more = split_fields(fields, OUTPUT_MAIN)
     return render_template("output.html", title="Output stage", kind=kind, kinds=web_design.OUTPUT_KINDS,
                            main=main, more=more, values=values, extra=extra, tubes=tubes, out=out, error=error,
-                           labels=LABELS)
+                           labels=LABELS, hints=form_hints(kind, fields, web_support.required_fields(kind)))
 
 
 @bp.route("/sweep")
@@ -92,9 +91,9 @@ def sweep():
         except (InputError, RuntimeError) as e:
             error = error_text(e)
     main_names = OUTPUT_MAIN if output else SMALL_MAIN
-    main = [(n, d) for n, d in fields if n in main_names]
-    more = [(n, d) for n, d in fields if n not in main_names]
+    main, more = split_fields(fields, main_names)
     return render_template("sweep.html", title="Design sweep", kind=kind, kinds=web_design.SWEEP_KINDS,
                            output=output, sweepable=web_design.sweep_fields(kind), main=main, more=more,
                            values=values, rng=rng, log=log, tubes=tubes, types=tube_types(), tube_type=tube_type,
-                           out=out, error=error, labels=LABELS)
+                           out=out, error=error, labels=LABELS,
+                           hints=form_hints(kind, fields, web_support.required_fields(kind)))

@@ -32,6 +32,50 @@ LABELS: dict[str, str] = {
 }
 
 
+#: what an empty field means where the stage has no number for it (None), by kind of stage
+#: ("*": every kind, unless the kind says otherwise); the stages' docstrings say the same
+EMPTY: dict[str, dict[str, str]] = {
+    "*": {"c_in": "direct coupling", "rl": "no load", "c_out": "an ideal coupling", "pa_max": "not checked",
+          "r_upper": "no divider", "r_lower": "no divider",
+          "c_top": "an ideal coupling"},
+    "common-cathode": {"ck": "Rk unbypassed", "vbias": "bias from Rk"},
+    "stack": {"ck": "Rk unbypassed", "vbias": "bias from Rk"},
+    "single-ended": {"load": "from the turns ratio", "turns_ratio": "give it or the load",
+                     "grid_bias": "cathode bias by Rk", "rk": "give it or the fixed bias",
+                     "rg": "none", "ck": "an ideal bypass", "l_primary": "an ideal transformer"},
+}
+EMPTY["push-pull"] = EMPTY["single-ended"]
+
+
+def field_hint(kind: str, field: str, default, required=()) -> str:
+    """The words under a form's field: ``required``, ``default 1M`` (engineering notation, the
+    unit is in the label), or what leaving it empty means (``empty: Rk unbypassed``)."""
+    if field in required:
+        return "required"
+    if default is None:
+        meaning = EMPTY.get(kind, {}).get(field) or EMPTY["*"].get(field)
+        return f"empty: {meaning}" if meaning else "empty: none"
+    return "default " + shown_default(default)
+
+
+def shown_default(default) -> str:
+    """A field's default as its input's placeholder: engineering notation, empty for None."""
+    from fitter.units import format_value
+
+    if default is None:
+        return ""
+    if isinstance(default, bool):
+        return "yes" if default else "no"
+    if isinstance(default, (int, float)):
+        return format_value(float(default))
+    return str(default)
+
+
+def form_hints(kind: str, fields, required=()) -> dict:
+    """``{field: (placeholder, hint)}`` for a form of ``(field, default)`` pairs."""
+    return {n: (shown_default(d), field_hint(kind, n, d, required)) for n, d in fields}
+
+
 def label(field: str | None) -> str:
     """The form's name for ``field`` (the field's own name where the table has none)."""
     if field is None:

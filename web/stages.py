@@ -13,7 +13,7 @@ from fitter.errors import InputError
 from fitter.service import stock, web_design, web_support
 
 from .auth import ledger, need
-from .fields import LABELS, label
+from .fields import LABELS, form_hints, label
 
 bp = Blueprint("stages", __name__)
 
@@ -66,8 +66,15 @@ def index():
                     out[key + "_uri"] = data_uri(out[key + "_svg"])
     except (InputError, RuntimeError) as e:
         error = error_text(e)
-    main = [(n, d) for n, d in fields if n in MAIN]
-    more = [(n, d) for n, d in fields if n not in MAIN]
+    main, more = split_fields(fields, MAIN)
     return render_template("stage.html", title="Stage", kind=kind, kinds=KINDS, main=main, more=more,
                            values=values, tubes=tubes, out=out, spread=spread, error=error, labels=LABELS,
+                           hints=form_hints(kind, fields, web_support.required_fields(kind)),
                            types=tube_types(), tube_type=tube_type)
+
+
+def split_fields(fields, first) -> tuple:
+    """The form's fields shown first, in the order of ``first`` (supply, plate, cathode ...,
+    not the stage's own order, which starts with the shared fields), and the rest."""
+    main = sorted((f for f in fields if f[0] in first), key=lambda f: first.index(f[0]))
+    return main, [f for f in fields if f[0] not in first]

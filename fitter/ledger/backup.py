@@ -37,13 +37,17 @@ from ..errors import InputError
 from ..outfiles import OutputError, prepare_folder, unit_stems, write_atomic
 from ..text import shown
 from .db import Ledger
-from .schema import HEAD, TABLES, Base
+from .schema import HEAD, TABLES, Base, data_hash
 
 BACKUP_FORMAT = "platebook.ledger-backup"
 BACKUP_VERSION = 1
 #: largest CSV cell read back [characters] (a measurement of 100,000 points is ~5 MB of base64)
 csv.field_size_limit(64 * 1024 * 1024)
 
+
+#: back-ups of an earlier schema that a restore still reads: per table, the columns that
+#: schema lacks, which the restore computes (a measurement's data hash from its points)
+_OLDER = {"0004_plot_images": {"measurements": ("data_sha256",)}}
 
 #: tables whose ``content`` is written as a file named by its ``sha256``, in this sub-folder
 _FILES = {"source_files": "sources", "plot_images": "plots"}
@@ -158,9 +162,12 @@ def restore(ledger: Ledger, folder) -> dict:
     if not isinstance(manifest, dict) or manifest.get("format") != BACKUP_FORMAT:
         raise InputError(f"not a Platebook ledger back-up (format {BACKUP_FORMAT!r} expected)", file=shown(mpath),
                          field="format")
-    if manifest.get("version") != BACKUP_VERSION or manifest.get("schema") != HEAD:
-        raise InputError(f"back-up version {manifest.get('version')!r}, schema {shown(manifest.get('schema'))!r}; "
-                         f"this Platebook restores version {BACKUP_VERSION}, schema {HEAD}", file=shown(mpath))
+    schema = manifest.get("schema")
+    if manifest.get("version") != BACKUP_VERSION or (schema != HEAD and schema not in _OLDER):
+        raise InputError(f"back-up version {manifest.get('version')!r}, schema {shown(schema)!r}; "
+                         f"this Platebook restores version {BACKUP_VERSION}, schema {HEAD} "
+                         f"(or {', '.join(_OLDER)})", file=shown(mpath))
+    missing = _OLDER.get(schema, {})
     tables = manifest.get("tables")
     if not isinstance(tables, dict) or set(tables) != set(TABLES):
         raise InputError("must list exactly the ledger's tables", file=shown(mpath), field="tables")
@@ -177,7 +184,7 @@ def restore(ledger: Ledger, folder) -> dict:
         t = _table(name)
         reader = csv.reader(io.StringIO(data.decode("utf-8")))
         header = next(reader, None)
-        cols = {c.name: c for c in t.columns}
+        cols = {c.name: c for c in t.columns if c.name not in missing.get(name, ())}
         if header is None or set(header) != set(cols):
             raise InputError(f"header must name the columns {', '.join(cols)}", file=shown(p), line=1)
         rows = []
@@ -196,6 +203,10 @@ def restore(ledger: Ledger, folder) -> dict:
                 if hashlib.sha256(content).hexdigest() != row["sha256"]:
                     raise InputError("the stored file's SHA-256 differs from its name", file=shown(src))
                 row["content"] = content
+            if "data_sha256" in missing.get(name, ()):
+                pts, n = row.get("points"), row.get("n_points")
+                ok = isinstance(pts, (bytes, bytearray)) and isinstance(n, int) and not isinstance(n, bool)
+                row["data_sha256"] = data_hash(bytes(pts), n) if ok else None
             rows.append(row)
         if len(rows) != tables[name].get("rows"):
             raise InputError(f"{len(rows)} rows, the manifest says {tables[name].get('rows')}", file=shown(p))

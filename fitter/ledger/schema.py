@@ -29,7 +29,8 @@ from sqlalchemy import (JSON, Boolean, Float, ForeignKey, Index, Integer, LargeB
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 __all__ = ["Base", "TubeType", "Tube", "Section", "SourceFile", "Measurement", "Fit", "Grade", "Group",
-           "GroupMember", "Event", "PlotImageRow", "STATUSES", "DATASHEET_MARK", "pack_points", "unpack_points", "now", "HEAD"]
+           "GroupMember", "Event", "PlotImageRow", "STATUSES", "DATASHEET_MARK", "pack_points", "unpack_points", "data_hash",
+           "now", "HEAD"]
 
 #: a tube's life: in stock -> reserved (in a group for an order) -> sold; or retired.  A
 #: "reference" is no tube on the shelf: curves read off a datasheet plot, kept as the type's
@@ -38,7 +39,7 @@ STATUSES = ("in-stock", "reserved", "sold", "retired", "reference")
 #: what a measurement's instrument says when its points were read off a datasheet plot
 DATASHEET_MARK = "datasheet plot"
 #: the Alembic revision this code expects
-HEAD = "0004_plot_images"
+HEAD = "0005_measurement_data_hash"
 
 _NAMING = {"ix": "ix_%(column_0_label)s", "uq": "uq_%(table_name)s_%(column_0_name)s",
            "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s", "pk": "pk_%(table_name)s"}
@@ -125,6 +126,9 @@ class Measurement(Base):
     instrument: Mapped[str] = mapped_column(Text, default="")
     notes: Mapped[str] = mapped_column(Text, default="")
     superseded: Mapped[bool] = mapped_column(Boolean, default=False)
+    #: SHA-256 of the measured data alone (:func:`data_hash`): the same points stored under
+    #: another tube's label are found by it (an import warns, and stores them all the same)
+    data_sha256: Mapped[str | None] = mapped_column(String(64), index=True, nullable=True)
 
 
 class Fit(Base):
@@ -239,6 +243,15 @@ def pack_points(va, vg, ia, ig, lines) -> bytes:
     ig = np.full(n, np.nan) if ig is None else ig
     lines = np.full(n, np.nan) if lines is None else np.asarray(lines, float)
     return np.concatenate([np.asarray(x, "<f8").reshape(n) for x in (va, vg, ia, ig, lines)]).tobytes()
+
+
+def data_hash(blob: bytes, n: int) -> str:
+    """SHA-256 (hex) of a stored measurement's data: its first four arrays (va, vg, ia, ig) in
+    the stored layout, not the file lines; so the same points read from another file (the
+    tube's label changed, the rows elsewhere in the file) have the same hash."""
+    import hashlib
+
+    return hashlib.sha256(blob[:4 * 8 * n]).hexdigest()
 
 
 def unpack_points(blob: bytes, n: int) -> dict:

@@ -25,7 +25,7 @@ from ..errors import InputError, NotFound
 from ..text import plain_text, shown
 from .db import Ledger
 from .schema import (DATASHEET_MARK, STATUSES, Event, Fit, Grade, Group, GroupMember, Measurement, Section, SourceFile, Tube,
-                     TubeType, now, pack_points, unpack_points)
+                     TubeType, data_hash, now, pack_points, unpack_points)
 
 #: what a fit row stores of a card (and gives back to :func:`fitter.card.unit_from_fields`)
 CARD_FIELDS = ("params", "stderr", "free", "covariance", "valid_range", "envelope")
@@ -131,6 +131,9 @@ class ImportOutcome:
     points: int = 0
     failed: list = field(default_factory=list)  # {"unit", "reason"}
     notes: list = field(default_factory=list)
+    #: units whose measured data are already stored under another tube (or come twice in the
+    #: file under two labels): {"unit", "same_as": [label:section, ...]}; stored all the same
+    same_data: list = field(default_factory=list)
 
 
 def fit_fields(result, test_va, test_vg) -> dict:
@@ -337,18 +340,25 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
         meas = []
         for mid, u in zip(mids, units):
             sec = secs[(tube_ids[u.tube], u.section or "")]
+            blob = pack_points(u.va, u.vg, u.ia, u.ig, u.lines)
             meas.append(dict(id=mid, section_id=sec.id, source_id=src.id, n_points=u.n_points,
-                             points=pack_points(u.va, u.vg, u.ia, u.ig, u.lines), has_grid_current=u.ig is not None,
+                             points=blob, has_grid_current=u.ig is not None,
                              retest=sec.id in measured, measured_at=at, measured_by=who, instrument=instrument or "",
-                             notes=notes or "", superseded=False))
+                             notes=notes or "", superseded=False, data_sha256=data_hash(blob, u.n_points)))
+        out.same_data = _same_data(s, units, [mm["data_sha256"] for mm in meas])
         s.execute(insert(Measurement), meas)
         fids = allocate_ids(s, Fit, len(rows))
         s.execute(insert(Fit), [_fit_row(f, who, mid, fid) for f, mid, fid in zip(rows, mids, fids)])
         retested = sorted({u.tube for u, mm in zip(units, meas) if mm["retest"]})
+        copies = {}
+        for d in out.same_data:
+            copies.setdefault(d["tube"], []).extend(d["same_as"])
         for label in sorted(set(labels)):
             kind = "retest" if label in retested else "import"
+            same = sorted(set(copies.get(label, [])))
             _event(s, who, kind, f"{'re-tested' if kind == 'retest' else 'measured'} from {shown(path.name)} "
-                   f"(sha256 {sha[:12]})", tube_ids[label])
+                   f"(sha256 {sha[:12]})" + (f"; the same measured points as {', '.join(same)}" if same else ""),
+                   tube_ids[label])
         out.tubes_new = new
         out.retested = retested
         out.sections = len(units)
@@ -360,6 +370,33 @@ def import_file(ledger: Ledger, path, type_designation: str, who: str, instrumen
     if len(units) >= BULK_ROWS:
         ledger.analyze()
     return done
+
+
+def _same_data(s, units, hashes) -> list:
+    """The units whose measured data (:func:`~fitter.ledger.schema.data_hash`) are stored
+    already under another tube, or come twice in this import under two tubes' labels:
+    ``[{"unit", "tube", "same_as": [label:section, ...]}]`` in the units' order.  The same tube
+    measured with the same data again is left alone (a re-test that changed nothing)."""
+    def name(tube, section):
+        return shown(f"{tube}:{section}" if section else str(tube))
+
+    stored = {}
+    wanted = sorted(set(hashes))
+    for k in range(0, len(wanted), 500):
+        for h, label, sec in s.execute(select(Measurement.data_sha256, Tube.label, Section.name)
+                                       .join(Section, Section.id == Measurement.section_id)
+                                       .join(Tube, Tube.id == Section.tube_id)
+                                       .where(Measurement.data_sha256.in_(wanted[k:k + 500]))):
+            stored.setdefault(h, []).append((label, sec))
+    here = {}
+    for u, h in zip(units, hashes):
+        here.setdefault(h, []).append((u.tube, u.section or ""))
+    out = []
+    for u, h in zip(units, hashes):
+        others = sorted({name(t, sec) for t, sec in stored.get(h, []) + here[h] if t != u.tube})
+        if others:
+            out.append({"unit": name(u.tube, u.section), "tube": u.tube, "same_as": others})
+    return out
 
 
 # -- reading a tube back -----------------------------------------------------------

@@ -241,12 +241,39 @@ def _axes_dict(axes, marks) -> dict | None:
     d["residuals"] = _floats(axes.residuals)
     d["rms_px"] = float(axes.rms_px)
     d["worst"] = None if axes.worst is None else int(axes.worst)
+    # two marks on an axis fix its scale exactly: their residuals are zero by construction and
+    # check nothing; only a third mark can disagree with the others
+    counts = _counts(marks)
+    d["checked"] = {a: counts[a] > 2 for a in ("va", "ia")}
+    d["exact"] = [not d["checked"][m["axis"]] for m in marks]
+    d["rms_px_axis"] = {a: (float(math.sqrt(sum(r * r for r, m in zip(axes.residuals, marks) if m["axis"] == a)
+                                           / counts[a])) if d["checked"][a] else None) for a in ("va", "ia")}
+    d["summary"] = _axes_summary(d, counts)
     if axes.worst is not None:
         m = marks[axes.worst]
         d["worst_message"] = (f"mark {axes.worst + 1} ({'plate voltage' if m['axis'] == 'va' else 'current'} "
                               f"{m['value']:g}) is {axes.residuals[axes.worst]:.1f} px from where the other marks "
                               "put that value: check its position and value")
     return d
+
+
+_AXIS_NAMES = {"va": "plate voltage", "ia": "current"}
+
+
+def _axes_summary(d, counts) -> str:
+    """One sentence on how far the marks can be trusted: the rms distance of the marks from
+    the fitted axes where an axis has three or more marks; where it has two, that they fix
+    the scale exactly and a third mark gives a check (a 0 px residual there checks nothing)."""
+    exact = [a for a in ("va", "ia") if not d["checked"][a]]
+    checked = [a for a in ("va", "ia") if d["checked"][a]]
+    if not checked:
+        return ("Axes set. Two marks on each axis fix the scale exactly, so nothing checks them yet: "
+                "a third mark on an axis gives a check.")
+    if not exact:
+        return f"Axes set. The marks lie {d['rms_px']:.2f} px (rms) off the fitted axes."
+    a, e = checked[0], exact[0]
+    return (f"Axes set. The {counts[a]} {_AXIS_NAMES[a]} marks lie {d['rms_px_axis'][a]:.2f} px (rms) off their "
+            f"fitted scale; the two {_AXIS_NAMES[e]} marks fix theirs exactly: a third mark on that axis gives a check.")
 
 
 def _counts(marks) -> dict:
@@ -326,8 +353,10 @@ def _state_of(ledger, pid):
 def set_axes(db, plot_id, marks, box=None) -> dict:
     """Store the axis marks (and the plot area ``box`` = [x0, y0, x1, y1] pixels, or None) and
     fit the axis map once each axis has two marks: ``{"marks", "box", "axes" (coefficients,
-    ``residuals`` per mark [px], ``rms_px``, ``worst`` and ``worst_message``, or None),
-    "counts"}``.  Marks the engine refuses (two at one pixel, equal values) are an error
+    ``residuals`` per mark [px], ``rms_px``, ``worst`` and ``worst_message``; ``checked`` per
+    axis (more than two marks: two fix an axis exactly and check nothing), ``exact`` per mark,
+    ``rms_px_axis`` (None for an exact axis) and ``summary``, the sentence a page shows; or
+    None), "counts"}``.  Marks the engine refuses (two at one pixel, equal values) are an error
     naming the mark, and nothing is stored."""
     from ..ledger import plots
 

@@ -117,24 +117,25 @@ def run_next(db) -> int | None:
             return None
         job_id, user, tube_type, model, instrument, notes, payload = got
         files = _unpack(payload)
-        units, per_file, failed = [], [], False
+        units, per_file, warnings, failed = [], [], [], False
         try:
             for k, f in enumerate(files):
                 r = web_support.import_uploads(db, user, [f], tube_type, model, instrument, notes)
                 units += r["units"]
                 per_file += r["files"]
+                warnings += r["warnings"]
                 failed = failed or r["failed"]
                 _set(ledger, job_id, files_done=k + 1)
         except InputError as e:
             _set(ledger, job_id, state="failed", payload=None, message=str(e),
-                 result={"units": units, "files": per_file})
+                 result={"units": units, "files": per_file, "warnings": warnings})
             return job_id
         except Exception:
             _set(ledger, job_id, state="failed", message="an internal error stopped the job; the files stored "
-                 "before it stay", result={"units": units, "files": per_file})
+                 "before it stay", result={"units": units, "files": per_file, "warnings": warnings})
             raise
         _set(ledger, job_id, state="done", payload=None, message="some fits failed (measurements stored)" if failed
-             else "", result={"units": units, "files": per_file})
+             else "", result={"units": units, "files": per_file, "warnings": warnings})
         return job_id
 
 

@@ -158,7 +158,29 @@ def _tubes(spec: OutputSpec):
     for name in ("tube_a", "tube_b"):
         if getattr(spec, name) is None:
             raise SpecError("give the model cards of both tubes", field=name)
-    return load_unit(spec.tube_a, "tube_a"), load_unit(spec.tube_b, "tube_b")
+    a, b = load_unit(spec.tube_a, "tube_a"), load_unit(spec.tube_b, "tube_b")
+    if _same_tube(spec.tube_a, spec.tube_b, a, b):
+        raise SpecError(same_tube_message(a.label if a.tube else None), field="tube_b")
+    return a, b
+
+
+def same_tube_message(label: str | None = None) -> str:
+    """The one wording of a push-pull given the same tube twice (the web's check by unit id
+    uses it too)."""
+    return f"the same tube as tube A{f' ({label})' if label else ''}; a push-pull pair is two different tubes"
+
+
+def _same_tube(path_a, path_b, a, b) -> bool:
+    """Whether the two cards are one tube: the same file, or the same tube and section named
+    (two fits of one section are still one tube).  Two sections of one bottle are two tubes."""
+    import os
+
+    try:
+        if os.path.samefile(path_a, path_b):
+            return True
+    except (OSError, TypeError, ValueError):
+        pass
+    return bool(a.tube) and (a.tube, a.section) == (b.tube, b.section)
 
 
 def run_output(spec: OutputSpec) -> OutputRun:

@@ -147,6 +147,13 @@ def types(db=None) -> Result:
 # -- import ---------------------------------------------------------------------
 
 
+def same_data_warning(d) -> str:
+    """The warning for a unit whose measured points are stored under another tube already
+    (``ImportOutcome.same_data`` entry): it is stored all the same, a label may change on purpose."""
+    return (f"{d['unit']}: the same measured points as {', '.join(d['same_as'])}; stored all the same "
+            "(a re-labelled copy of the same curves?)")
+
+
 def import_files(db=None, user="", paths=(), tube_type="", instrument="", notes="", model="koren",
                  jobs=None) -> Result:
     """Import curve files, each all or nothing; a re-test of a known tube shows its drift."""
@@ -161,7 +168,8 @@ def import_files(db=None, user="", paths=(), tube_type="", instrument="", notes=
             o = store.import_file(ledger, p, tube_type, who, instrument, notes, model, jobs)
             d = {"file": o.file, "sha256": o.sha256, "duplicate": o.duplicate, "new_tubes": o.tubes_new,
                  "retested": o.retested, "sections": o.sections, "points": o.points, "failed": o.failed,
-                 "notes": o.notes, "drift": {}}
+                 "notes": o.notes, "drift": {}, "same_data": o.same_data,
+                 "warnings": [same_data_warning(x) for x in o.same_data]}
             if o.duplicate:
                 lines.append(f"{o.file}: already in the ledger (same SHA-256 {o.sha256[:12]}...); not stored again")
                 files.append(d)
@@ -181,6 +189,8 @@ def import_files(db=None, user="", paths=(), tube_type="", instrument="", notes=
             for f in o.failed:
                 failed = True
                 lines.append(f"  fit failed: {shown(f['unit'])}: {shown(f['reason'])} (measurement stored)")
+            for w in d["warnings"]:
+                lines.append(f"  warning: {w}")
             for n in o.notes:
                 lines.append(f"  note: {shown(n)}")
             files.append(d)

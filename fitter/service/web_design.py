@@ -150,6 +150,10 @@ def _resolve_tubes(db, kind, given: dict) -> dict:
         ids[name] = _unit_id(v) if isinstance(v, int) else resolve_unit(db, v, name)
     names = _tubes_of(kind)
     if len(names) == 2 and ids[names[0]] == ids[names[1]]:
+        if kind == "push-pull":
+            from .output import same_tube_message
+
+            raise InputError(same_tube_message(), field=names[1])
         raise InputError("the two tubes must be two different sections", field=names[1])
     extra = sorted(k for k, v in given.items() if k not in names and v not in (None, ""))
     if extra:
@@ -186,8 +190,11 @@ def stock_cards(db, tube_type, field="type"):
 
 
 def _spread_rows(res) -> list:
-    """The spread's table: one row per figure (those the text report shows), with min,
-    median, max in display units and the count of units where it exists."""
+    """The spread's table: one row per figure (those the text report shows, less the gain in
+    dB, the gain's own row again), with min, median, max in display units and the count of
+    units where it exists.  The input capacitance comes from the tube capacitances of the
+    circuit (Cgk, Cga; the cards have none): without them its row says "not given" (``note``,
+    no numbers) instead of a spread of zeros."""
     import numpy as np
 
     from ..stage.circuits import output_node
@@ -196,13 +203,18 @@ def _spread_rows(res) -> list:
     out_node = output_node(res.stage)
     rows = []
     for key, v in res.values.items():
-        if key in ("slew_vpeak", "zin", "c_out_node", "gain.grid", "gain." + out_node, "zout." + out_node):
+        if key in ("slew_vpeak", "zin", "c_out_node", "gain.grid", "gain." + out_node, "zout." + out_node,
+                   "gain_db"):
             continue
         v = np.asarray(v, float)
         ok = np.isfinite(v)
         if not ok.any():
             continue
         _, scale, unit, label = _describe(key)
+        if key == "cin" and not (getattr(res.stage, "cgk", 0) or getattr(res.stage, "cga", 0)):
+            rows.append({"key": key, "figure": label, "unit": unit, "min": None, "median": None, "max": None,
+                         "count": 0, "note": "not given (give the tube capacitances Cgk and Cga)"})
+            continue
         rows.append({"key": key, "figure": label, "unit": unit, "min": float(np.min(v[ok]) * scale),
                      "median": float(np.median(v[ok]) * scale), "max": float(np.max(v[ok]) * scale),
                      "count": int(ok.sum())})

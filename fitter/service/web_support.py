@@ -25,7 +25,7 @@ from .stock import _ledger
 
 __all__ = ["unit", "unit_card", "unit_export", "figures_at", "fit_plot", "fit_result", "validate_uploads", "import_uploads",
            "match_by_id", "stage_by_id", "UploadError", "MAX_UPLOAD_BYTES", "tube_page", "match_table",
-           "type_nominal", "compare_nominal", "compare_plot"]
+           "type_nominal", "compare_nominal", "compare_plot", "compare_page"]
 
 #: largest single upload [bytes] (the reader's own row limit applies as well)
 MAX_UPLOAD_BYTES = 20 * 1024 * 1024
@@ -338,7 +338,10 @@ def import_uploads(db, user, files, tube_type, model="koren", instrument="", not
                 units.append(_unit_dict(f, sec, tube))
     for fd, (name, _) in zip(d["files"], files):
         fd["file"] = shown(str(name))
-    return {"files": d["files"], "units": units, "failed": res.failed, "lines": list(res.lines)}
+    # stored all the same, but said: the same measured points under another tube's label
+    warnings = [f"{fd['file']}: {w}" for fd in d["files"] for w in fd.get("warnings", [])]
+    return {"files": d["files"], "units": units, "failed": res.failed, "lines": list(res.lines),
+            "warnings": warnings}
 
 
 def _safe_name(name: str, fallback: str) -> str:
@@ -581,6 +584,20 @@ def stage_fields(kind) -> list:
     return out
 
 
+def required_fields(kind) -> tuple:
+    """The fields a kind of stage (small-signal or output) cannot do without: those with no
+    default (the form marks them; the others take their default when left empty)."""
+    from dataclasses import MISSING, fields
+
+    from ..stage.output import PushPullOutput, SingleEndedOutput
+    from .stages import KINDS
+
+    cls = {**KINDS, "single-ended": SingleEndedOutput, "push-pull": PushPullOutput}.get(kind)
+    if cls is None:
+        raise InputError(f"must be a kind of stage, got {shown(str(kind))!r}", field="kind")
+    return tuple(f.name for f in fields(cls) if f.default is MISSING and f.default_factory is MISSING)
+
+
 def stage_report(db, kind, circuit, tube=None, bottom=None, top=None, thd=False) -> dict:
     """A stage solved with tubes from the ledger: ``{"result": to_dict(), "report": text,
     "plot_svg": load-line plot (SVG bytes)}``, with ``thd``: also ``"thd_svg"`` and
@@ -630,6 +647,12 @@ def _compared_units(db, units, most):
 def compare_plot(db, units) -> bytes:
     """One SVG with the model curves of several stored units (label:section or unit id, at
     most :data:`MAX_COMPARE`), each its own colour (:func:`fitter.plotting_compare.plot_compare`)."""
+    return compare_page(db, units)["svg"]
+
+
+def compare_page(db, units) -> dict:
+    """:func:`compare_plot` with the grid voltages drawn: ``{"svg", "grids"}``, ``grids`` from
+    :func:`fitter.plotting_compare.grid_choice` with its sentence in ``grids["note"]``."""
     from ..card import load_card
     from ..plotting_compare import save_compare_plot
 
@@ -639,7 +662,14 @@ def compare_plot(db, units) -> bytes:
     with _card_files(db, ids) as cards:
         triodes = [load_card(c) for c in cards]
     with tempfile.TemporaryDirectory(prefix="platebook-compare-") as tmp:
-        return save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes()
+        return {"svg": save_compare_plot(triodes, Path(tmp, "compare.svg")).read_bytes(), "grids": _grids(triodes)}
+
+
+def _grids(triodes) -> dict:
+    from ..plotting_compare import grid_choice, grid_note
+
+    choice = grid_choice(triodes)
+    return {**choice, "note": grid_note(choice)}
 
 
 def type_nominal(db, tube_type, model=None) -> dict:
@@ -734,4 +764,4 @@ def compare_nominal(db, units) -> dict:
                                  title=f"{', '.join(t.label for t in triodes)} against the {types[0]} nominal "
                                        f"({nom['basis']})")
         return {"svg": path.read_bytes(), "basis": nom["basis"], "kind": nom["kind"], "type": types[0],
-                "n": nom["n"]}
+                "n": nom["n"], "grids": _grids(triodes + [nom["triode"]])}

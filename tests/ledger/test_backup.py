@@ -85,3 +85,40 @@ def test_sqlite_to_postgresql_and_back_loses_nothing(busy_db, pg_cluster, tmp_pa
     finally:
         for x in (a, b, c):
             x.close()
+
+
+def test_a_backup_of_the_schema_before_the_data_hash_restores_with_the_hashes_computed(busy_db, tmp_path):
+    """A back-up written before measurements had their data hash (schema 0004) still restores:
+    the hashes come from the stored points, the same as an import computes."""
+    import csv
+    import hashlib
+    import io
+
+    folder = tmp_path / "backup"
+    svc.backup(busy_db, str(folder))
+    led = open_ledger(busy_db)
+    rows = dump(led)
+    led.close()
+    assert all(m["data_sha256"] for m in rows["measurements"])
+    # the folder as the earlier schema wrote it: no data_sha256 column, its manifest
+    p = folder / "tables" / "measurements.csv"
+    table = list(csv.reader(io.StringIO(p.read_text("utf-8"))))
+    k = table[0].index("data_sha256")
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerows([r[:k] + r[k + 1:] for r in table])
+    p.write_bytes(buf.getvalue().encode("utf-8"))
+    mpath = folder / "manifest.json"
+    manifest = json.loads(mpath.read_text())
+    manifest["schema"] = "0004_plot_images"
+    manifest["tables"]["measurements"]["sha256"] = hashlib.sha256(p.read_bytes()).hexdigest()
+    mpath.write_text(json.dumps(manifest))
+    target = str(tmp_path / "restored.sqlite")
+    svc.restore(target, str(folder))
+    back = open_ledger(target)
+    assert dump(back) == rows
+    back.close()
+    # a schema this Platebook does not know is still refused
+    manifest["schema"] = "0003_upload_jobs"
+    mpath.write_text(json.dumps(manifest))
+    with pytest.raises(InputError, match="schema"):
+        svc.restore(str(tmp_path / "again.sqlite"), str(folder))

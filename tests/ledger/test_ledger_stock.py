@@ -296,3 +296,58 @@ def test_curves_from_a_datasheet_plot_are_a_reference_never_stock(db, stock_file
     other, _ = stock_file("other.csv", n_tubes=1, seed=6, prefix="T")
     with pytest.raises(InputError, match="tube in the stock"):
         svc.import_files(db, "ann", [other], "DT", instrument="datasheet plot", jobs=1)
+
+
+def test_the_same_curves_under_a_new_label_are_stored_with_a_warning(db, stock_file, tmp_path):
+    """A dealer may re-label on purpose, so the copy is stored; but the import says which tube's
+    measured points it repeats (the hash of the data alone, not of the file)."""
+    _setup(db)
+    path, _ = stock_file(n_tubes=2)
+    svc.import_files(db, "ann", [path], "DT", jobs=1)
+    # the same rows, T002 re-labelled NEW9 and a comment line added: other bytes, the same data
+    copy = tmp_path / "relabelled.csv"
+    copy.write_text("# re-labelled lot\n" + path.read_text().replace("T002", "NEW9"))
+    r = svc.import_files(db, "bob", [copy], "DT", jobs=1)
+    f = r.data["files"][0]
+    assert f["duplicate"] is False and f["new_tubes"] == ["NEW9"]  # stored: not refused
+    assert [(d["unit"], d["same_as"]) for d in f["same_data"]] == [("NEW9:A", ["T002:A"]), ("NEW9:B", ["T002:B"])]
+    assert "warning: NEW9:A: the same measured points as T002:A; stored all the same" in r.text()
+    assert svc.show_tube(db, "NEW9").data["sections"][0]["fit_id"]
+    # the tube's history says so too
+    h = svc.history(db, "NEW9").data["events"]
+    assert any("the same measured points as T002:A, T002:B" in e["detail"] for e in h)
+    # T001 came again under its own label: a re-test with the same data, no warning about it
+    assert not any(d["unit"].startswith("T001") for d in f["same_data"])
+    # other data under a new label: no warning
+    other, _ = stock_file("other.csv", n_tubes=1, seed=9, prefix="X")
+    r = svc.import_files(db, "bob", [other], "DT", jobs=1)
+    assert r.data["files"][0]["same_data"] == [] and "warning" not in r.text()
+
+
+def test_the_data_hash_is_filled_in_for_measurements_stored_before_it_existed(db, stock_file):
+    """Migration 0005 computes each stored measurement's hash; going down and up again
+    gives the hashes the import stored (SHA-256 of the va, vg, ia, ig arrays, hashlib)."""
+    import hashlib
+
+    from alembic import command
+
+    from fitter.ledger.migrate import alembic_config
+    from fitter.ledger.schema import pack_points
+
+    _setup(db)
+    path, _ = stock_file(n_tubes=2)
+    svc.import_files(db, "ann", [path], "DT", jobs=1)
+    led = open_ledger(db)
+    try:
+        stored = {m["id"]: m["data_sha256"] for m in dump(led)["measurements"]}
+        units = read_curves([path]).units
+        want = [hashlib.sha256(pack_points(u.va, u.vg, u.ia, u.ig, None)[:32 * u.n_points]).hexdigest()
+                for u in units]
+        assert [stored[k] for k in sorted(stored)] == want
+        with led.engine.begin() as c:
+            command.downgrade(alembic_config(c), "0004_plot_images")
+        with led.engine.begin() as c:
+            command.upgrade(alembic_config(c), "head")
+        assert {m["id"]: m["data_sha256"] for m in dump(led)["measurements"]} == stored
+    finally:
+        led.close()

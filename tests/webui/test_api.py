@@ -196,3 +196,23 @@ def test_the_same_file_twice_is_stored_once_and_the_second_answer_says_so(api):
     assert again.status_code == 201
     assert again.get_json()["units"] == [] and again.get_json()["files"][0]["duplicate"] is True
     assert len(first["units"]) == 4 and _count(db) == 2
+
+
+def test_the_same_curves_under_another_label_are_stored_with_a_warning(api):
+    """A re-labelled copy (other bytes, the same measured points) is stored: a dealer may
+    re-label on purpose; the answer warns which tube's points it repeats."""
+    client, db, good = api
+    tok = token_for(db, "editor")
+    first = _upload(client, tok, [("good.csv", good)]).get_json()
+    assert first["warnings"] == []
+    copy = good.decode().replace("API02", "RELABEL").encode()
+    r = _upload(client, tok, [("copy.csv", copy)])
+    assert r.status_code == 201
+    d = r.get_json()
+    assert sorted(u["tube"] for u in d["units"]) == ["API01", "API01", "RELABEL", "RELABEL"]  # all stored
+    assert d["warnings"] == [
+        "copy.csv: RELABEL:A: the same measured points as API02:A; stored all the same (a re-labelled copy of the "
+        "same curves?)",
+        "copy.csv: RELABEL:B: the same measured points as API02:B; stored all the same (a re-labelled copy of the "
+        "same curves?)"]
+    assert _count(db) == 3

@@ -237,3 +237,63 @@ def test_digitise_a_datasheet_plot_in_the_browser(server, fresh, shots, tmp_path
             browser.close()
     assert dialogs == [] and errors == [], (dialogs, errors)
     assert refused == [(400, "api/v1/plots/1/axes")]  # only the value typed twice on purpose (laptop, plot 1)
+
+
+@pytest.mark.browser
+def test_two_marks_per_axis_are_called_exact_and_the_prompt_follows_the_typing(server, fresh, shots,  # noqa: F811
+                                                                                tmp_path):
+    """Two marks fix an axis exactly, so the page claims no "0.00 px" check for them, and says
+    a third mark gives one; the status line's "type its value" is answered once it is typed."""
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    sheet = make_page("coloured")  # PNG, not rotated
+    image = tmp_path / "sheet.png"
+    image.write_bytes(sheet.data)
+    ticks = {a: [t for t in sheet.ticks if t[2] == a] for a in ("va", "ia")}
+    errors = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+        try:
+            page = browser.new_page(viewport={"width": 1366, "height": 768})
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(server + "/digitise")
+            page.fill("input[name=name]", "editor1")
+            page.fill("input[name=password]", PASSWORD)
+            page.click("button[type=submit]")
+            page.wait_for_url("**/digitise")
+            page.set_input_files("input[type=file]", str(image))
+            page.click("#upload-form button[type=submit]")
+            page.wait_for_url("**/digitise/*")
+            page.wait_for_selector("#digi[data-loaded='1']")
+            page.wait_for_function("() => Number(document.getElementById('digi-canvas').dataset.scale) < 1")
+            marks = [ticks["va"][1], ticks["va"][-2], ticks["ia"][1], ticks["ia"][-2]]
+            for k, (px, py, axis, value) in enumerate(marks, 1):
+                page.check(f"input[name=next-axis][value={axis}]")
+                _click_image(page, px, py, zoom=False)
+                assert page.inner_text("#digi-status") == f"Mark {k} placed: type its value."
+                page.keyboard.type(f"{value:g}")
+                unit = "V" if axis == "va" else "mA"
+                # typed: the prompt is answered, not left standing
+                assert page.inner_text("#digi-status") == f"Mark {k}: {value:g} {unit}. Click the next mark, or go on."
+                page.keyboard.press("Enter")
+            page.wait_for_function("() => document.getElementById('axes-summary').textContent.startsWith('Axes set')")
+            summary = page.inner_text("#axes-summary")
+            assert "px (rms)" not in summary and "fix the scale exactly" in summary, summary
+            offs = page.locator("#marks tbody tr td:nth-child(4)").all_inner_texts()
+            assert offs == ["exact"] * 4, offs
+            page.screenshot(path=str(shots / "digitise-two-marks.png"), full_page=True)
+            # a third current mark: that axis is checked, in px, the other still exact
+            px, py, _, value = ticks["ia"][len(ticks["ia"]) // 2]
+            page.check("input[name=next-axis][value=ia]")
+            _click_image(page, px, py, zoom=False)
+            page.keyboard.type(f"{value:g}")
+            page.keyboard.press("Enter")
+            page.wait_for_function("() => document.getElementById('axes-summary').textContent.includes('3 current')")
+            offs = page.locator("#marks tbody tr td:nth-child(4)").all_inner_texts()
+            assert offs[:2] == ["exact", "exact"] and all(o.endswith(" px") for o in offs[2:]), offs
+            assert "the two plate voltage marks fix theirs exactly" in page.inner_text("#axes-summary")
+            page.screenshot(path=str(shots / "digitise-three-current-marks.png"), full_page=True)
+        finally:
+            browser.close()
+    assert errors == [], errors

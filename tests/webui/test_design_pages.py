@@ -82,6 +82,32 @@ def _errors(html):
     return [htmllib.unescape(e) for e in re.findall(r'class="error">([^<]*)<', html)]
 
 
+def test_two_fits_of_one_tube_are_no_push_pull_pair(fresh, fresh_signed_in, fresh_app, synth, tube_types,
+                                                      write_long, tmp_path):
+    """Two unit ids of one section (its first fit and a re-fit) are one tube: the output service
+    refuses them for tube B on the page and in the API (common practice: a pair is two tubes)."""
+    from .webtools import make_stock
+
+    stock.import_files(fresh, "setup", [str(make_stock(synth, tube_types, write_long, tmp_path / "s.csv",
+                                                       n_tubes=1))], "DT")
+    first = stock.show_tube(fresh, "W01").data["sections"][0]["fit_id"]
+    r = stock.refit(fresh, "setup", "DT", jobs=1)
+    assert not r.data["failed"], r.data
+    again = web_support.resolve_unit(fresh, "W01:A")
+    assert again != first
+    page = fresh_signed_in("viewer").get(f"/output?kind=push-pull&tube_a={first}&tube_b={again}&b_plus=250"
+                                         "&load=20k&grid_bias=-8.5").get_data(as_text=True)
+    assert _errors(page) == ["tube B: the same tube as tube A (W01:A); a push-pull pair is two different tubes"]
+    r = fresh_app.test_client().post("/api/v1/output", headers=_auth(token_for(fresh, "viewer")), json={
+        "kind": "push-pull", "circuit": {"b_plus": 250, "load": "20k", "grid_bias": -8.5}, "tube_a": first,
+        "tube_b": again})
+    assert r.status_code == 400 and r.get_json()["errors"][0]["field"] == "tube_b"
+    # the other section of the same bottle is another tube: a pair
+    page = fresh_signed_in("viewer").get(f"/output?kind=push-pull&tube_a={first}&tube_b=W01:B&b_plus=250"
+                                         "&load=20k&grid_bias=-8.5").get_data(as_text=True)
+    assert _errors(page) == [] and "DC imbalance" in page
+
+
 # -- the stage page's spread ---------------------------------------------------------------
 
 
@@ -108,6 +134,35 @@ def test_spread_of_a_type_is_the_command_lines_spread_over_its_cards(signed_in, 
     mu = cli["figures"]["tube.mu"]["median"]
     rp = cli["figures"]["tube.rp_ohm"]["median"]
     assert g["median"] == pytest.approx(-mu * 100e3 / (100e3 + rp), rel=0.02)
+
+
+def _spread_table(page) -> dict:
+    """figure -> the cells after its unit in the spread table (numbers, or one note)."""
+    body = page[page.index('class="grid spread"'):]
+    body = body[:body.index("</table>")]
+    rows = re.findall(r"<tr><td>([^<]*)</td><td>[^<]*</td>(.*?)</tr>", body)
+    out = {}
+    for fig, cells in rows:
+        assert fig not in out, f"{fig} appears twice in the spread table"
+        out[fig] = [htmllib.unescape(c) for c in re.findall(r"<td[^>]*>([^<]*)</td>", cells)]
+    return out
+
+
+def test_spread_table_shows_each_figure_once_and_no_input_capacitance_it_does_not_know(signed_in):
+    c = signed_in("viewer")
+    table = _spread_table(c.get("/stage?kind=common-cathode&type=DT&b_plus=300&ra=100k&rk=1.5k&ck=22u")
+                          .get_data(as_text=True))
+    assert "mid-band gain" in table  # once (the dB row was the same gain again)
+    # the cards carry no capacitances and the circuit gives none: not a spread of zeros
+    assert table["input capacitance"] == ["not given (give the tube capacitances Cgk and Cga)"]
+    table = _spread_table(c.get("/stage?kind=common-cathode&type=DT&b_plus=300&ra=100k&rk=1.5k&ck=22u"
+                                "&cgk=1.6p&cga=1.5p").get_data(as_text=True))
+    lo, med, hi, n = table["input capacitance"]
+    gain = float(table["mid-band gain"][1])
+    # Miller effect (textbook, e.g. Radiotron Designer's Handbook, from memory): Cgk + (1 - A) Cga
+    # with a bypassed cathode; the median unit's gain from the same table
+    assert float(med) == pytest.approx(1.6 + (1 - gain) * 1.5, rel=0.02) and n == "6"
+    assert float(lo) <= float(med) <= float(hi)
 
 
 def test_spread_of_stacks_pairs_each_bottles_sections_and_leaves_out_what_is_not_in_stock(fresh_signed_in, fresh,
@@ -197,7 +252,8 @@ def test_push_pull_page_with_two_tubes_and_its_api_match_the_command_line(signed
 def test_output_errors_name_the_field(signed_in, stocked, app):
     c = signed_in("viewer")
     page = c.get("/output?kind=push-pull&tube_a=W01:A&tube_b=W01:A&b_plus=250&load=20k&grid_bias=-8.5")
-    assert _errors(page.get_data(as_text=True)) == ["tube B: the two tubes must be two different sections"]
+    assert _errors(page.get_data(as_text=True)) == [
+        "tube B: the same tube as tube A; a push-pull pair is two different tubes"]
     page = c.get("/output?kind=single-ended&tube=W01:A&b_plus=250&load=lots&grid_bias=-8.5").get_data(as_text=True)
     assert _errors(page)[0].startswith("reflected load [Ω]: cannot read 'lots'")
     page = c.get("/output?kind=single-ended&tube=W01:A&b_plus=250&load=10k").get_data(as_text=True)

@@ -166,6 +166,38 @@ def test_the_whole_flow_through_the_api_saves_a_fitted_measurement_of_the_plot(e
     assert INSTRUMENT in b.get("/tube/MC7-SHEET").get_data(as_text=True)
 
 
+def test_two_marks_on_an_axis_are_reported_as_exact_not_as_a_zero_residual(editor_api, page):
+    """Two marks fix an axis's scale exactly (two points, a straight line): their 0 px
+    residual checks nothing, so the answer says so; a third mark gives a check."""
+    c, h, _, pid = editor_api
+    base = f"/api/v1/plots/{pid}/axes"
+    two = _marks(page, per_axis=2)
+    axes = c.put(base, json={"marks": two}, headers=h).get_json()["axes"]
+    assert axes["residuals"] == [0.0] * 4  # exact by construction
+    assert axes["checked"] == {"va": False, "ia": False} and axes["exact"] == [True] * 4
+    assert axes["rms_px_axis"] == {"va": None, "ia": None}
+    assert "px (rms)" not in axes["summary"]
+    assert "Two marks on each axis fix the scale exactly" in axes["summary"]
+    assert "a third mark on an axis gives a check" in axes["summary"]
+    # a third plate-voltage mark 4 px off its tick (a slipped click): the va axis is checked
+    ticks = [t for t in page.ticks if t[2] == "va"]
+    t = ticks[-1]
+    third = {"px": t[0] + 4.0, "py": t[1], "axis": "va", "value": t[3]}
+    axes = c.put(base, json={"marks": two[:2] + [third] + two[2:]}, headers=h).get_json()["axes"]
+    assert axes["checked"] == {"va": True, "ia": False} and axes["exact"] == [False, False, False, True, True]
+    # the page is not rotated, so the three marks lie on one row: the straight line value(px)
+    # through them by least squares (numpy.linalg.lstsq, computed here) leaves their residuals
+    va = [m for m in two[:2] + [third] if m["axis"] == "va"]
+    x = np.array([m["px"] for m in va])
+    y = np.array([m["value"] for m in va])
+    (a, b), *_ = np.linalg.lstsq(np.column_stack([np.ones(3), x]), y, rcond=None)
+    rms = float(np.sqrt(np.mean(((a + b * x - y) / b) ** 2)))
+    assert rms > 0.5  # the slipped click shows
+    assert axes["rms_px_axis"]["va"] == pytest.approx(rms, rel=1e-6) and axes["rms_px_axis"]["ia"] is None
+    assert axes["summary"].startswith(f"Axes set. The 3 plate voltage marks lie {axes['rms_px_axis']['va']:.2f} px")
+    assert "the two current marks fix theirs exactly: a third mark on that axis gives a check" in axes["summary"]
+
+
 def test_bad_input_names_the_field(editor_api, page):
     c, h, db, pid = editor_api
     base = f"/api/v1/plots/{pid}"

@@ -83,3 +83,18 @@ def test_the_worker_thread_runs_queued_jobs(fresh, synth, tube_types, write_long
         w.stop()
     assert jobs.job(fresh, job_id)["state"] == "done"
     assert stock.list_tubes(fresh).data["total"] == 1
+
+
+def test_a_job_that_stores_relabelled_curves_shows_the_warning(fresh, synth, tube_types, write_long, tmp_path):
+    from web import create_app
+
+    files = _files(synth, tube_types, write_long, tmp_path)
+    copy = ("c.csv", files[0][1].replace(b"JA01", b"JC05"))  # a.csv's points under another label
+    job_id = jobs.submit(fresh, "ann", [files[0], copy], "DT")
+    assert jobs.run_next(fresh) == job_id
+    d = jobs.job(fresh, job_id)
+    assert d["state"] == "done" and stock.list_tubes(fresh).data["total"] == 2  # stored all the same
+    assert d["result"]["warnings"][0].startswith("c.csv: JC05:A: the same measured points as JA01:A")
+    c = create_app({"LEDGER": fresh, "SECRET_KEY": "k"}).test_client()
+    assert sign_in(c, "editor1").status_code == 302
+    assert "JC05:A: the same measured points as JA01:A" in c.get(f"/jobs/{job_id}").get_data(as_text=True)

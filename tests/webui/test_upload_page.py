@@ -55,3 +55,15 @@ def test_a_tube_named_like_a_script_shows_as_text(fresh_signed_in, fresh, synth,
     assert "<b>x</b>.csv" not in html
     page = c.get("/stock").get_data(as_text=True)
     assert "<script>alert" not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+
+
+def test_the_same_curves_under_a_new_label_are_stored_and_the_page_warns(fresh_signed_in, fresh, synth, tube_types,
+                                                                         write_long, tmp_path):
+    f = make_stock(synth, tube_types, write_long, tmp_path / "a.csv", n_tubes=1, seed=2, prefix="UA").read_bytes()
+    c = fresh_signed_in("editor")
+    assert 'class="warn"' not in _post(c, [("a.csv", f)]).get_data(as_text=True)
+    r = _post(c, [("b.csv", f.replace(b"UA01", b"UB07"))])
+    html = r.get_data(as_text=True)
+    assert r.status_code == 200 and "Stored 2 unit(s)" in html  # stored, not refused
+    assert "b.csv: UB07:A: the same measured points as UA01:A; stored all the same" in html
+    assert stock.list_tubes(fresh).data["total"] == 2

@@ -52,7 +52,13 @@
     errorEl.textContent = text.charAt(0).toUpperCase() + text.slice(1);
   }
   function clearProblem() { errorEl.textContent = ""; }
-  function say(text) { statusEl.textContent = text; }
+  // the mark or curve whose "type its value" prompt the status line shows ({kind, i} or null):
+  // typing the value answers it, and the line then says what was typed
+  var asking = null;
+  function say(text, ask) { statusEl.textContent = text; asking = ask || null; }
+  function answered(kind, i, text) {
+    if (asking && asking.kind === kind && asking.i === i) { say(text, asking); }
+  }
 
   // every change goes out one at a time, in order, each with the state as it is when sent, so a
   // slow answer can never put older work back over newer
@@ -89,7 +95,9 @@
       st.axes = d.axes;
       st.residuals = {};
       if (d.axes) {
-        c.idx.forEach(function (li, k) { st.residuals[li] = { off: d.axes.residuals[k], worst: d.axes.worst === k }; });
+        c.idx.forEach(function (li, k) {
+          st.residuals[li] = { off: d.axes.residuals[k], worst: d.axes.worst === k, exact: d.axes.exact[k] };
+        });
       }
       st.counts = d.counts;
       mergeData(d.curves);
@@ -295,12 +303,18 @@
       inp.size = 6;
       inp.value = m.value;
       inp.setAttribute("aria-label", "value of mark " + (i + 1));
-      inp.addEventListener("input", function () { m.value = inp.value.trim(); draw(); later("axes", saveAxes, 600); });
+      inp.addEventListener("input", function () {
+        m.value = inp.value.trim();
+        answered("mark", i, m.value === "" ? "Mark " + (i + 1) + " placed: type its value." :
+          "Mark " + (i + 1) + ": " + m.value + (m.axis === "va" ? " V" : " mA") + ". Click the next mark, or go on.");
+        draw();
+        later("axes", saveAxes, 600);
+      });
       inp.addEventListener("keydown", function (e) { if (e.key === "Enter") { later("axes", saveAxes, 0); } });
       cell(tr, inp);
       cell(tr, "").className = "num off";
       cell(tr, button("✕", "delete mark " + (i + 1), function () {
-        st.marks.splice(i, 1); st.residuals = {}; renderMarks(); draw(); saveAxes();
+        st.marks.splice(i, 1); st.residuals = {}; asking = null; renderMarks(); draw(); saveAxes();
       }));
       body.appendChild(tr);
     });
@@ -312,7 +326,10 @@
     document.querySelectorAll("#marks tbody tr").forEach(function (tr, i) {
       var res = st.residuals && st.residuals[i];
       tr.classList.toggle("worst", Boolean(res && res.worst));
-      tr.querySelector("td.off").textContent = res ? res.off.toFixed(1) + " px" : "—";
+      // two marks on an axis fit it exactly: no distance to show, so none is claimed
+      var off = tr.querySelector("td.off");
+      off.textContent = res ? (res.exact ? "exact" : res.off.toFixed(1) + " px") : "—";
+      off.title = res && res.exact ? "two marks fix this axis exactly; a third mark on it gives a check" : "";
     });
     var sum = document.getElementById("axes-summary");
     var counts = { va: 0, ia: 0 };
@@ -329,7 +346,7 @@
       st.marks.forEach(function (m, i) { if (st.residuals[i] && st.residuals[i].worst) { worst = i; } });
       var w = st.marks[worst];
       sum.className = w ? "warn" : "ok";
-      sum.textContent = "Axes set. The marks lie " + st.axes.rms_px.toFixed(2) + " px (rms) off the fitted axes." +
+      sum.textContent = st.axes.summary +
         (w ? " Mark " + (worst + 1) + " (" + (w.axis === "va" ? "plate voltage " : "current ") + w.value + ") is " +
           st.residuals[worst].off.toFixed(1) + " px from where the other marks put that value: check its position and value." : "");
       document.getElementById("state-1").textContent = w ? "check mark " + (worst + 1) : "✓";
@@ -351,11 +368,17 @@
       inp.value = c.grid_v === null || c.grid_v === undefined ? "" : c.grid_v;
       inp.placeholder = "e.g. -2";
       inp.setAttribute("aria-label", "grid voltage of curve " + (i + 1));
-      inp.addEventListener("input", function () { c.grid_v = inp.value.trim(); draw(); later("curves", saveCurves, 600); });
+      inp.addEventListener("input", function () {
+        c.grid_v = inp.value.trim();
+        answered("curve", i, c.grid_v === "" ? "Curve " + (i + 1) + ": " + c.points.length + " points. Type its grid voltage." :
+          "Curve " + (i + 1) + ": grid " + c.grid_v + " V, " + c.points.length + " points. Click the next curve, or go on.");
+        draw();
+        later("curves", saveCurves, 600);
+      });
       cell(tr, inp);
       cell(tr, "").className = "num count";
       cell(tr, button("✕", "delete curve " + (i + 1), function () {
-        st.curves.splice(i, 1); selected = Math.min(selected, Math.max(0, st.curves.length - 1));
+        st.curves.splice(i, 1); asking = null; selected = Math.min(selected, Math.max(0, st.curves.length - 1));
         renderCurves(); draw(); saveCurves();
       }));
       body.appendChild(tr);
@@ -435,7 +458,7 @@
       draw();
       var inputs = document.querySelectorAll("#marks input.value");
       inputs[inputs.length - 1].focus();
-      say("Mark " + st.marks.length + " placed: type its value.");
+      say("Mark " + st.marks.length + " placed: type its value.", { kind: "mark", i: st.marks.length - 1 });
     } else if (step === 2) {
       if (!boxCorner) { boxCorner = p; renderBox(); draw(); return; }
       st.box = [Math.min(boxCorner[0], p[0]), Math.min(boxCorner[1], p[1]), Math.max(boxCorner[0], p[0]), Math.max(boxCorner[1], p[1])];
@@ -452,7 +475,8 @@
         draw();
         var inputs = document.querySelectorAll("#curves input.grid-v");
         inputs[inputs.length - 1].focus();
-        say("Curve " + st.curves.length + ": " + d.points.length + " points. Type its grid voltage.");
+        say("Curve " + st.curves.length + ": " + d.points.length + " points. Type its grid voltage.",
+          { kind: "curve", i: st.curves.length - 1 });
         saveCurves();
       }, function (e) { say("No curve found there."); problem(e); });
     } else if (step === 4) {
@@ -589,7 +613,9 @@
     });
     st.axes = d.axes;
     st.residuals = {};
-    if (d.axes) { d.axes.residuals.forEach(function (off, k) { st.residuals[k] = { off: off, worst: d.axes.worst === k }; }); }
+    if (d.axes) {
+      d.axes.residuals.forEach(function (off, k) { st.residuals[k] = { off: off, worst: d.axes.worst === k, exact: d.axes.exact[k] }; });
+    }
     if (d.saved) {
       st.saved = d.saved;
       renderSaved({ failed: d.saved.failed, earlier: true, units: [{ tube: d.saved.tube, section: d.saved.section,
