@@ -245,7 +245,9 @@ class DataEnvelope:
         va, vg = va.ravel(), vg.ravel()
         bad = (vg < self.vg[0] - gm) | (vg > self.vg[-1] + gm)
         if bad.any():
-            return (f"grid voltages down to {vg.min():.4g} V and up to {vg.max():.4g} V reach outside the traced "
+            # (rounded to a microvolt: a crest solved to the onset reads 0 V, not 3e-13 V)
+            return (f"grid voltages down to {round(float(vg.min()), 6) + 0.0:.4g} V and up to "
+                    f"{round(float(vg.max()), 6) + 0.0:.4g} V reach outside the traced "
                     f"{self.vg[0]:.4g}..{self.vg[-1]:.4g} V")
         lo = np.interp(vg, self.vg, self.va_lo)
         hi = np.interp(vg, self.vg, self.va_hi)

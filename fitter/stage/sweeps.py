@@ -4,7 +4,7 @@
 (so the stage checks every value itself and names the field) and, for every case (a tuple
 of tubes, one per position), gives the figures a designer weighs against each other:
 
-* standing current, voltage across and dissipation of each tube, mid-band gain, output
+* standing current, plate-cathode voltage and dissipation of each tube, mid-band gain, output
   impedance, heater-cathode margin (the limit minus the largest |Vhk| of the tubes), the
   slew-limited frequency into the load capacitance (from the stage solver);
 * headroom: the output fundamental [V peak] where THD first reaches ``thd_limit``, or,
@@ -86,7 +86,7 @@ FIGURES = {
     "damping": ("damping factor", "", 1.0),
     "imbalance": ("DC imbalance (A - B)", "mA", 1e3),
 }
-_PER_TUBE = {"va": ("voltage across", "V", 1.0), "pa": ("dissipation", "W", 1.0),
+_PER_TUBE = {"va": ("plate-cathode voltage", "V", 1.0), "pa": ("dissipation", "W", 1.0),
              "ia": ("idle current", "mA", 1e3)}
 
 
@@ -170,7 +170,8 @@ class ComponentSweep:
     def units_text(self) -> str:
         if self.n_units == 1:
             return self.labels[0]
-        return f"{self.n_units} units" + (f" ({self.pairing})" if self.pairing else "")
+        noun = "pairs" if _kind(self.stage) == "push-pull" else "units"
+        return f"{self.n_units} {noun}" + (f" ({self.pairing})" if self.pairing else "")
 
     @property
     def display_unit(self) -> str:
