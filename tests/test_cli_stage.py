@@ -200,3 +200,15 @@ def test_a_capacitor_without_its_prefix_is_an_input_error(cards):
                "--rk", "1.5k", "--ck", "22"])
     assert res.exit_code == 1
     assert "--ck: '22' is 22 F, not a plausible capacitor" in res.output
+
+
+def test_spread_report_leaves_out_an_input_capacitance_nobody_gave(cards):
+    # without the tubes' capacitances the Miller input capacitance is 0 for every unit: no
+    # figure of these tubes, so the text leaves the row out; given them, it is there
+    args = ["--bplus", "300", "--rk", "820", "--r-top", "820", "--rl", "100k", "--spread", cards["lot"]]
+    res = run(["stage", "stack", *args])
+    assert res.exit_code == 0, res.output
+    assert "input capacitance" not in res.output and "mid-band gain" in res.output
+    res = run(["stage", "stack", *args, "--cgk", "1.6p", "--cga", "1.7p"])
+    assert res.exit_code == 0, res.output
+    assert "input capacitance [pF]" in res.output

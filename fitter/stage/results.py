@@ -346,6 +346,8 @@ class SpreadResult:
                 continue
             if not np.any(np.isfinite(self.values[key])):
                 continue
+            if key == "cin" and not np.any(np.asarray(self.values[key], float)):
+                continue  # no tube capacitances given: not a figure of these tubes
             name, scale, unit, label = _describe(key)
             lo, med, hi = self.stats(key)
             lab = f"{label} [{unit}]" if unit else label
