@@ -38,6 +38,9 @@ STAGES = [
     PushPullOutput(b_plus=400.0, load=4000.0, r_primary=200.0, grid_bias=-100.0),
     PushPullOutput(b_plus=450.0, load=5000.0, rk=650.0, pa_max=40.0),
     PushPullOutput(b_plus=450.0, load=5000.0, rk=650.0, bypassed=False),
+    # a shared bypassed cathode in class AB with a bias shift of tens of volts: the units'
+    # series need different node counts (retried unit by unit, padded to the largest)
+    PushPullOutput(b_plus=450.0, load=3000.0, r_primary=150.0, rk=1000.0),
 ]
 
 

@@ -337,6 +337,7 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
     pair = _pair_bank(banks, m, shape) if _FAST else None
     vga_ = state(vga)
     vgb_ = state(vgb)
+    prev = None
     for _ in range(_JOINT_MAXIT):
         if pair is not None:
             f, gv, gg = pair.current_and_gradient(
@@ -386,8 +387,14 @@ def _pp_joint(stage, banks, vga, vgb, vk=None, d0=None, x0=None, grads=None):
         # (a NaN or infinity anywhere makes the sum so)
         if not math.isfinite(np.add.reduce(ia, None) + np.add.reduce(ib, None)):
             return None
-        if (np.abs(dv).max(initial=0.0) <= tol and np.abs(dk).max(initial=0.0) <= tol
-                and (np.abs(dia) + np.abs(dib)).max() <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max()):
+        # the next step's size predicted from this one's and its ratio to the last (as in
+        # :func:`_rows_joint`): the step that would only confirm convergence is not taken
+        steps = np.array([np.abs(dv).max(initial=0.0), np.abs(dk).max(initial=0.0),
+                          (np.abs(dia) + np.abs(dib)).max(initial=0.0)])
+        ahead = steps * np.minimum(1.0, steps / prev) if prev is not None else steps
+        prev = np.maximum(steps, 1e-300)
+        if (ahead[0] <= tol and ahead[1] <= tol
+                and ahead[2] <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max(initial=0.0)):
             if grads is not None:
                 grads[:] = [gaa, gga, gab, ggb]
             return v, ia, ib, k
@@ -451,6 +458,7 @@ def _pp_dc(stage, banks):
     B, r, rk, vg = stage.b_plus, stage.r_primary / 2.0, stage._rk, stage._vg
     shared = stage.rk is not None
     ia = ib = k = 0.0
+    last = None
     for _ in range(_JOINT_MAXIT):
         f, gv, gg = (x.tolist() for x in pair.current_and_gradient(
             np.array([B - r * ia - k, B - r * ib - k]), np.array([vg - k, vg - k])))
@@ -467,7 +475,11 @@ def _pp_dc(stage, banks):
         ia, ib, k = ia + dia, ib + dib, k + dk
         if not (math.isfinite(ia) and math.isfinite(ib) and math.isfinite(k)):
             return None
-        if abs(dk) <= 1e-11 * B and abs(dia) + abs(dib) <= 1e-13 + 1e-11 * (abs(ia) + abs(ib)):
+        # the next steps predicted from these and their ratio to the last (as in _rows_joint)
+        sk, si = abs(dk), abs(dia) + abs(dib)
+        ak, ai = (sk, si) if last is None else (sk * min(1.0, sk / last[0]), si * min(1.0, si / last[1]))
+        last = (max(sk, 1e-300), max(si, 1e-300))
+        if ak <= 1e-11 * B and ai <= 1e-13 + 1e-11 * (abs(ia) + abs(ib)):
             return ia, ib, k
     return None
 
@@ -649,6 +661,7 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
     pair = _pair_bank(banks, m, (rows, S))
     tol_v = 1e-11 * B
     tol_k = 1e-10 * B
+    prev = None
     for _ in range(_JOINT_MAXIT):
         k = vk[:, None]
         if follow is not None:
@@ -691,8 +704,14 @@ def _rows_joint(stage, banks, op, vin, weight, guide=None, vk0=None, follow=None
         # (a NaN or infinity anywhere makes the sum so)
         if not math.isfinite(np.add.reduce(ia, None) + np.add.reduce(ib, None) + np.add.reduce(vk, None)):
             return None
-        if (np.abs(dk).max() <= tol_k and np.abs(dv).max() <= tol_v
-                and (np.abs(dia) + np.abs(dib)).max() <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max()):
+        # each step's size times its ratio to the step before: the next step's size where the
+        # iteration contracts (quadratically here), so the step that would only confirm
+        # convergence is not taken (the first step is judged by its own size)
+        steps = np.array([np.abs(dk).max(), np.abs(dv).max(), (np.abs(dia) + np.abs(dib)).max()])
+        ahead = steps * np.minimum(1.0, steps / prev) if prev is not None else steps
+        prev = np.maximum(steps, 1e-300)
+        if (ahead[0] <= tol_k and ahead[1] <= tol_v
+                and ahead[2] <= 1e-13 + 1e-11 * (np.abs(ia) + np.abs(ib)).max()):
             if follow is not None:
                 vin = (follow + vk)[:, None] * sines
             k = vk[:, None]
@@ -1751,15 +1770,20 @@ class _ShiftSeries:
         rk = self.stage._rk
         scale = 2.0 / (self.hi - self.lo)
         vk = np.array(vk, float)
+        last = None
         for _ in range(30):
             T, D = _cheb_values(self._t(vk), self.J)
             g = vk - rk * np.sum(d * T, axis=-1)
             dg = 1.0 - rk * scale * np.sum(d * D, axis=-1)
             step = g / dg
             vk = vk - step
-            if not np.all(np.isfinite(vk)) or np.any(vk < self.lo) or np.any(vk > self.hi):
+            if not (vk.min() >= self.lo and vk.max() <= self.hi):  # (False for a NaN)
                 raise StageSolveError("the cathode voltage left the range of its series")
-            if np.max(np.abs(step)) <= 1e-12 * self.stage.b_plus:
+            size = float(np.max(np.abs(step)))
+            # (the next step predicted from this one and its ratio to the last, as in _rows_joint)
+            ahead = size * min(1.0, size / last) if last else size
+            last = max(size, 1e-300)
+            if ahead <= 1e-12 * self.stage.b_plus:
                 return vk
         raise StageSolveError("the cathode voltage did not converge in its series")
 
@@ -2316,49 +2340,74 @@ def _shift_series_many(stage, banks, op, grid, vk_top, thd, level, levels):
     gab, ggb = (g[:, None, None] for g in banks[1].gradient(op["B.va"], op["B.vgk"]))
     ca, cb = 1.0 + r * gaa, 1.0 + r * gab
     sa, sb = gaa + gga, gab + ggb
+    # each unit's nodes as its own series asks (a retry solves only the units not yet
+    # resolved); the coefficients are then padded with zeros to the largest counts (the same
+    # polynomials), so the rest runs on common arrays
     J, Ks = _vk_nodes(np.max(np.abs(vk_top - vk0))), list(_CHEB)
+    todo = np.arange(n)
+    got_units = {}  # unit -> {key: (J, K) coefficients}
     for _ in range(6):
         K = Ks[0]
+        m = todo.size
         tj = np.cos(np.pi * (np.arange(J) + 0.5) / J)
-        vkn = mid[:, None] + half[:, None] * tj[None, :]  # (n, J)
-        vin = np.broadcast_to(grid[:, None, None] * np.cos(np.pi * (np.arange(K) + 0.5) / K)[None, None, :],
-                              (n, J, K))
-        dk = (vkn - vk0[:, None])[..., None]
-        dv = q * ((sb / cb - sa / ca) * dk + (gga / ca + ggb / cb) * vin) / (1.0 + q * (gaa / ca + gab / cb))
-        x0 = tuple(np.reshape(np.broadcast_to(x, (n, J, K)), (n * J, K)) for x in (
-            np.maximum(op["A.ia"][:, None, None] + (-gaa * dv - sa * dk + gga * vin) / ca, 0.0),
-            np.maximum(op["B.ia"][:, None, None] + (gab * dv - sb * dk - ggb * vin) / cb, 0.0),
+        vkn = mid[todo, None] + half[todo, None] * tj[None, :]  # (m, J)
+        vin = np.broadcast_to(grid[todo, None, None] * np.cos(np.pi * (np.arange(K) + 0.5) / K)[None, None, :],
+                              (m, J, K))
+        dk = (vkn - vk0[todo, None])[..., None]
+        g_ = [g[todo] for g in (gaa, gga, gab, ggb, ca, cb, sa, sb)]
+        gaa_, gga_, gab_, ggb_, ca_, cb_, sa_, sb_ = g_
+        dv = q * ((sb_ / cb_ - sa_ / ca_) * dk + (gga_ / ca_ + ggb_ / cb_) * vin) / (
+            1.0 + q * (gaa_ / ca_ + gab_ / cb_))
+        x0 = tuple(np.reshape(np.broadcast_to(x, (m, J, K)), (m * J, K)) for x in (
+            np.maximum(op["A.ia"][todo, None, None] + (-gaa_ * dv - sa_ * dk + gga_ * vin) / ca_, 0.0),
+            np.maximum(op["B.ia"][todo, None, None] + (gab_ * dv - sb_ * dk - ggb_ * vin) / cb_, 0.0),
             dv, vkn[..., None]))
-        bk = [_rows_bank(b, J) for b in banks]
-        ok = {key: np.repeat(np.asarray(v, float), J)[:, None] for key, v in op.items()}
-        w = _waveforms(stage, bk, ok, vin.reshape(n * J, K), vk=vkn.reshape(n * J, 1), x0=x0)
+        sub = [_Bank(b.model, {k: (v[todo] if isinstance(v, np.ndarray) else v) for k, v in b.params.items()})
+               for b in banks]
+        bk = [_rows_bank(b, J) for b in sub]
+        ok = {key: np.repeat(np.asarray(v, float)[todo], J)[:, None] for key, v in op.items()}
+        w = _waveforms(stage, bk, ok, vin.reshape(m * J, K), vk=vkn.reshape(m * J, 1), x0=x0)
         keys = list(w)
-        W = np.stack([np.broadcast_to(w[k], (n * J, K)).reshape(n, J, K) for k in keys])
+        W = np.stack([np.broadcast_to(w[k], (m * J, K)).reshape(m, J, K) for k in keys])
         CJ, _, _ = _cheb_matrices(J, levels, N_SAMPLES)
         CK, _, _ = _cheb_matrices(K, levels, N_SAMPLES)
         # (stacked small products: measured faster than one large product after moving axes)
-        got = (CJ @ W) @ CK.T  # (keys, n, J, K)
-        coef = dict(zip(keys, got))
-        c, s_ = coef["v_load"], coef["A.ia"] + coef["B.ia"]
+        got = (CJ @ W) @ CK.T  # (keys, m, J, K)
+        cf = dict(zip(keys, got))
+        c, s_ = cf["v_load"], cf["A.ia"] + cf["B.ia"]
         big = np.max(np.abs(c), axis=(1, 2))
         vin_ok = np.max(np.abs(c[:, :, -4:]), axis=(1, 2)) <= _CHEB_TAIL * big
         vk_ok = ((np.max(np.abs(c[:, -2:, :]), axis=(1, 2)) <= _CHEB_TAIL * big)
                  & (np.max(np.abs(s_[:, -2:, :]), axis=(1, 2)) <= _CHEB_TAIL * np.max(np.abs(s_), axis=(1, 2))))
-        if vin_ok.all() and vk_ok.all():
+        done = vin_ok & vk_ok
+        for j in np.nonzero(done)[0]:
+            got_units[int(todo[j])] = {k: cf[k][j] for k in keys}
+        if done.all():
             break
-        if not vin_ok.all():
+        if not vin_ok[~done].all():
             Ks.pop(0)
             if not Ks:
                 return None
-        if not vk_ok.all():
-            rows = np.max(np.abs(c[~vk_ok]), axis=2) / big[~vk_ok, None]  # (bad, J)
+        if not vk_ok[~done].all():
+            bad = ~vk_ok
+            rows = np.max(np.abs(c[bad]), axis=2) / big[bad, None]  # (bad, J)
             with np.errstate(divide="ignore", invalid="ignore"):
                 rate = np.max((rows[:, -1] / rows[:, -5]) ** 0.25)
             if not 0.0 < rate < 1.0 or J >= 48:
                 return None
             J = int(min(48, max(J + 4, math.ceil(math.log(1e-10) / math.log(rate)) + 2)))
+        todo = todo[~done]
     else:
         return None
+    J = max(next(iter(u.values())).shape[0] for u in got_units.values())
+    K = max(next(iter(u.values())).shape[1] for u in got_units.values())
+    coef = {}
+    for key in keys:
+        a = np.zeros((n, J, K))
+        for u, cu in got_units.items():
+            a[u, :cu[key].shape[0], :cu[key].shape[1]] = cu[key]
+        coef[key] = a
+    s_ = coef["A.ia"] + coef["B.ia"]
     scale = (2.0 / (hi - lo))[:, None]
 
     def cathode(mu, start):
