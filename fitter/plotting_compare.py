@@ -156,6 +156,6 @@ def plot_compare(triodes, ax=None, labels=None, dashed=(), title=None):
 def save_compare_plot(triodes, path, **kw):
     """Write :func:`plot_compare` (keyword arguments passed on) to ``path`` (SVG or PNG by
     suffix), atomically; returns the path."""
-    from .plotting_stage import _save
+    from .plotting_layout import save_figure as _save
 
     return _save(plot_compare(triodes, **kw).figure, path)

@@ -16,8 +16,8 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
-from .plotting_design import log_ticks, margins  # noqa: E402
-from .plotting_stage import _save  # noqa: E402
+from .plotting_layout import LEGEND_GAP, legend_height, log_ticks, margins  # noqa: E402,F401
+from .plotting_layout import save_figure as _save  # noqa: E402
 from .stage.output import composite_characteristic, waveforms  # noqa: E402
 
 __all__ = ["plot_output", "save_output_plot"]
@@ -233,22 +233,6 @@ def dc_load_label(st) -> str:
     if st.rk:
         parts.append(("Rk" if se else "2 x shared Rk", st.rk if se else 2 * st.rk))
     return _sum_label("DC load line" + ("" if se else " per side"), parts)
-
-
-#: the legend's top under the axes [inch]: below the tick labels and the x label
-LEGEND_GAP = 0.5
-
-
-def legend_height(ax) -> float:
-    """The height [inch] of the legend :func:`_legend_below` put under ``ax``, from its
-    entries' lines (two columns, filled column by column), without drawing it."""
-    leg = ax.get_legend()
-    if leg is None:
-        return 0.0
-    lines = [t.get_text().count("\n") + 1 for t in leg.get_texts()]
-    rows = (len(lines) + 1) // 2
-    tall = [max(lines[r], lines[r + rows] if r + rows < len(lines) else 1) for r in range(rows)]
-    return 0.165 * rows + 0.135 * (sum(tall) - rows) + 0.1
 
 
 def _legend_below(ax, handles=None, labels=None):

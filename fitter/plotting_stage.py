@@ -16,7 +16,8 @@ from .stage import (CAUTION, CommonCathode, StageResult, Stack,  # noqa: E402
 from .stage.distortion import Distortion, DistortionSweep  # noqa: E402
 from .stage.loadlines import load_lines  # noqa: E402
 from .stage.results import _eng as _eng_unit  # noqa: E402
-from .outfiles import plot_path, write_atomic  # noqa: E402
+from .plotting_layout import LEGEND_GAP, legend_height, log_ticks, margins  # noqa: E402
+from .plotting_layout import save_figure as _save  # noqa: E402
 from .units import format_value  # noqa: E402
 from matplotlib.transforms import ScaledTranslation  # noqa: E402
 
@@ -108,8 +109,6 @@ def plot_load_lines(result: StageResult, axes=None):
     -------
     list of Axes
     """
-    from .plotting_design import margins
-    from .plotting_output import LEGEND_GAP, legend_height
 
     st = result.stage
     triodes = result.triodes
@@ -180,18 +179,6 @@ def _stack_dc_label(st: Stack, pos: str) -> str:
     return f"DC load: Q as the bottom grid bias varies\n(load = {load})"
 
 
-def _save(fig, path) -> Path:
-    """Write ``fig`` atomically (:func:`fitter.outfiles.write_atomic`) to the file
-    :func:`fitter.outfiles.plot_path` gives for ``path`` (``.png`` added when there is no
-    suffix) and return that file's path."""
-    try:
-        path, fmt = plot_path(path)
-        write_atomic(path, lambda fh: fig.savefig(fh, format=fmt, dpi=120))
-    finally:
-        plt.close(fig)
-    return path
-
-
 def save_load_line_plot(result: StageResult, path) -> Path:
     """Save :func:`plot_load_lines` to a PNG file."""
     axes = plot_load_lines(result)
@@ -201,7 +188,6 @@ def save_load_line_plot(result: StageResult, path) -> Path:
 def plot_thd_sweep(sw: DistortionSweep, ax=None):
     """THD and the low harmonics [%] against output level [V peak], log-log, with the
     THD threshold, the headroom and the end of the sweep marked."""
-    from .plotting_design import log_ticks, margins
 
     own = ax is None
     if own:

@@ -15,8 +15,8 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from . import CAUTION  # noqa: E402
-from .plotting_design import margins  # noqa: E402
-from .plotting_stage import _save  # noqa: E402
+from .plotting_layout import margins  # noqa: E402
+from .plotting_layout import save_figure as _save  # noqa: E402
 from .stage.circuits import stage_title  # noqa: E402
 from .stage.results import _describe  # noqa: E402
 
@@ -128,8 +128,8 @@ def output_panels(run, fmt: str = "svg") -> list:
     of the figures' bytes (``svg`` or ``png``, :func:`figure_bytes`), each with the caution.
     Each figure is laid out with fixed margins (its legend's height counted from its
     entries) and drawn once, by the save."""
-    from .plotting_design import log_ticks, margins
-    from .plotting_output import LEGEND_GAP, legend_height, plot_output
+    from .plotting_layout import LEGEND_GAP, legend_height, log_ticks
+    from .plotting_output import plot_output
 
     push_pull = run.result.stage.kind != "single-ended"
     n = 2 + (run.sweep is not None) + push_pull
