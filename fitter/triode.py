@@ -243,24 +243,32 @@ class DataEnvelope:
             return "; ".join(why) or None
         va, vg = np.broadcast_arrays(np.asarray(va, float), np.asarray(vg, float))
         va, vg = va.ravel(), vg.ravel()
+        # every way the points are out (a swing far out is usually out in several: grid,
+        # plate, current and dissipation), each named once
+        why = []
         bad = (vg < self.vg[0] - gm) | (vg > self.vg[-1] + gm)
         if bad.any():
             # (rounded to a microvolt: a crest solved to the onset reads 0 V, not 3e-13 V)
-            return (f"grid voltages down to {round(float(vg.min()), 6) + 0.0:.4g} V and up to "
-                    f"{round(float(vg.max()), 6) + 0.0:.4g} V reach outside the traced "
-                    f"{self.vg[0]:.4g}..{self.vg[-1]:.4g} V")
+            why.append(f"grid voltages down to {round(float(vg.min()), 6) + 0.0:.4g} V and up to "
+                       f"{round(float(vg.max()), 6) + 0.0:.4g} V reach outside the traced "
+                       f"{self.vg[0]:.4g}..{self.vg[-1]:.4g} V")
         lo = np.interp(vg, self.vg, self.va_lo)
         hi = np.interp(vg, self.vg, self.va_hi)
         bad = (va < lo - vm) | (va > hi + vm)
         if bad.any():
-            k = int(np.argmax(bad))
-            return (f"va {va[k]:.4g} V at vg {vg[k]:.4g} V is outside the plate voltages traced there "
-                    f"({lo[k]:.4g}..{hi[k]:.4g} V)")
-        i = np.broadcast_to(np.asarray(ia(va, vg) if callable(ia) else ia, float), va.shape)
-        k = int(np.argmax(np.where(np.isfinite(i), i, -np.inf)))
-        kp = int(np.argmax(np.where(np.isfinite(i), va * i, -np.inf)))
-        return (self._limits(float(i[k]), float(va[k] * i[k]), ia_lim, pa_lim, current_only=True)
-                or self._limits(float(i[kp]), float(va[kp] * i[kp]), ia_lim, pa_lim))
+            k = int(np.argmax(np.where(bad, np.maximum(lo - va, va - hi), -np.inf)))
+            where = "there" if self.vg[0] - gm <= vg[k] <= self.vg[-1] + gm else "at the nearest traced grid voltage"
+            why.append(f"va {va[k]:.4g} V at vg {vg[k]:.4g} V is outside the plate voltages traced {where} "
+                       f"({lo[k]:.4g}..{hi[k]:.4g} V)")
+        with np.errstate(all="ignore"):
+            i = np.broadcast_to(np.asarray(ia(va, vg) if callable(ia) else ia, float), va.shape)
+        if np.isfinite(i).any():
+            k = int(np.argmax(np.where(np.isfinite(i), i, -np.inf)))
+            kp = int(np.argmax(np.where(np.isfinite(i), va * i, -np.inf)))
+            why += self._limits(float(i[k]), 0.0, ia_lim, pa_lim, current_only=True, every=True)
+            why += [w for w in self._limits(float(i[kp]), float(va[kp] * i[kp]), ia_lim, pa_lim, every=True)
+                    if "dissipation" in w]
+        return "; ".join(why) or None
 
     def covers(self, va, vg, ia, margin: float = 0.1) -> np.ndarray:
         """Per point: True where (va, vg) and the model's current ``ia`` [A] there lie within

@@ -88,6 +88,20 @@ def test_a_point_out_in_several_ways_is_told_every_way():
     assert "320 W dissipation is above the highest measured 2.75 W" in why
 
 
+def test_a_swing_out_in_several_ways_is_told_every_way():
+    # the array path (an output stage's swing) names the grid range, the plate range, the
+    # current and the dissipation, not only the first found: the same unit as above, a
+    # swing from -60 V to 0 V on the grid at 2 kV, carrying 160 mA at its worst
+    e = DataEnvelope((-4.0, 0.0), (10.0, 10.0), (400.0, 400.0), 25e-3, 2.75)
+    why = e.outside(np.array([2000.0, 1900.0]), np.array([-60.0, 0.0]), np.array([160e-3, 100e-3]))
+    assert "grid voltages down to -60 V and up to 0 V reach outside the traced -4..0 V" in why
+    assert "va 2000 V at vg -60 V is outside the plate voltages traced at the nearest traced grid voltage" in why
+    assert "160 mA is above the highest measured current 25 mA" in why
+    assert "320 W dissipation is above the highest measured 2.75 W" in why
+    # inside on every count: nothing to say
+    assert e.outside(np.array([200.0, 300.0]), np.array([-2.0, -1.0]), np.array([5e-3, 4e-3])) is None
+
+
 def test_covers_marks_each_point_as_outside_does():
     # the per-point mask the compare plot draws by says what outside() says of each point alone
     t = FittedTriode("koren", AU7, envelope=DataEnvelope((-24.0, -12.0, 0.0), (10.0, 10.0, 10.0),

@@ -1350,9 +1350,10 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
     warn = []
     for p, t in zip(stage.positions, triodes):
         why = t.outside_reason(np.concatenate([[op[f"{p}.va"]], w[f"{p}.va"][-1]]),
-                               np.concatenate([[op[f"{p}.vgk"]], w[f"{p}.vgk"][-1]]))
+                               np.concatenate([[op[f"{p}.vgk"]], w[f"{p}.vgk"][-1]]),
+                               ia=np.concatenate([[op[f"{p}.ia"]], w[f"{p}.ia"][-1]]))
         if why:
-            warn.append(why + " (over the full-output swing)")
+            warn.append(f"over the idle point and the full-output swing, {why}")
         if stage.pa_max is not None and op[f"{p}.pa"] > stage.pa_max:
             warn.append(f"{t.label} dissipates {op[f'{p}.pa']:.3g} W at idle, above the "
                         f"{stage.pa_max:g} W limit")
