@@ -560,5 +560,28 @@ def test_series_figures_agree_with_sampling_every_level(key, monkeypatch):
         elif "thd" in k:
             # a ratio of the harmonics: their tolerance, 0.001 dB = 1.2e-4 relative
             assert series[k] == pytest.approx(v, rel=1.2e-4), k
+        elif "least_current" in k:
+            # a tube's least current in percent of idle: the series resolves currents to about
+            # 1e-9 of the largest, so deep in cut-off (class AB: 4e-7 %) absolutely, 1e-6 %
+            assert series[k] == pytest.approx(v, rel=1e-6, abs=1e-6), k
         else:
             assert series[k] == pytest.approx(v, rel=1e-6, abs=1e-12), k
+
+
+def test_class_a_report_gives_each_tubes_least_current_over_the_swing():
+    # the least plate current at full output, a fraction of idle, from the series' full-level
+    # period, against the public waveforms at the same drive (every sample solved directly)
+    st = PushPullOutput(b_plus=400.0, load=5000.0, r_primary=200.0, grid_bias=-84.0)
+    r = solve_output(st, TA, TB)
+    f = r.figures
+    assert f["class"] == "A"
+    theta = 2 * np.pi * np.arange(512) / 512
+    w = waveforms(st, TA, TB, vin=f["vin_max"] * np.sin(theta))
+    for p in ("A", "B"):
+        want = np.min(w[f"{p}.ia"]) / r.op[f"{p}.ia"]
+        assert f["ia_least"][p] == pytest.approx(want, rel=1e-6)
+        assert f["ia_least"][p] > 0.01
+    assert "least plate current is A" in r.report()
+    d = r.to_dict()["class_a"]
+    assert d["least_current_pct_of_idle"]["A"] == pytest.approx(100 * f["ia_least"]["A"])
+    assert d["cutoff_pct_of_idle"] == 1.0

@@ -1153,7 +1153,9 @@ class OutputResult:
         else:
             out["imbalance_ma"] = 1e3 * f["imbalance"]
             out["class_a"] = {"vin_peak_v": f["vin_cut"], "power_w": f["p_class_a"],
-                              "class": f["class"], "crossover_gm_ratio": f["gm_dip"]}
+                              "class": f["class"], "crossover_gm_ratio": f["gm_dip"],
+                              "least_current_pct_of_idle": {p: 100.0 * f["ia_least"][p] for p in st.positions},
+                              "cutoff_pct_of_idle": 100.0 * CUTOFF_FRACTION}
             if "vk_full" in f:
                 out["cathode_full_v"] = f["vk_full"]
                 out["bias_shift_v"] = f["bias_shift"]
@@ -1188,12 +1190,15 @@ class OutputResult:
             L.append(f"  output at {100 * f['thd_target']:g} % THD: {f['p_thd']:.3g} W, grid drive "
                      f"{f['vin_thd']:.3g} V peak")
         if st.kind == "push-pull":
+            least = ", ".join(f"{p} {100 * f['ia_least'][p]:.2g} %" for p in st.positions)
             if f["class"] == "A":
-                L.append("  class A over the whole swing (neither tube cuts off)")
+                L.append(f"  class A over the whole swing: at full output the least plate current is {least} "
+                         f"of idle (a tube counts as cut off below {100 * CUTOFF_FRACTION:g} %)")
             else:
-                L.append(f"  class AB: class A up to {f['p_class_a']:.3g} W (grid drive {f['vin_cut']:.3g} V)")
-            L.append(f"  crossover: the composite transconductance at idle is {100 * f['gm_dip']:.0f} % of its "
-                     f"largest over the swing")
+                L.append(f"  class AB: class A up to {f['p_class_a']:.3g} W (grid drive {f['vin_cut']:.3g} V), where a "
+                         f"tube falls below {100 * CUTOFF_FRACTION:g} % of its idle current")
+            L.append(f"  crossover: the pair's gain (output voltage per grid volt) at idle is {100 * f['gm_dip']:.0f} % "
+                     f"of its largest over the swing (below 100 %: a dip where the tubes hand over)")
             if "vk_full" in f:
                 L.append(f"  shared cathode: {self.op['vk']:.2f} V at idle, {f['vk_full']:.2f} V "
                          f"{'(the bypass capacitor) ' if st.bypassed else '(mean) '}at full output: the bias "
@@ -1319,11 +1324,14 @@ def solve_output(stage, *triodes, thd: float = 0.05, levels: int = N_LEVELS, err
         p_thd = None
     pa_full = {p: float(np.mean(w[f"{p}.va"][-1] * w[f"{p}.ia"][-1])) for p in stage.positions}
     ia_full = {p: float(np.mean(w[f"{p}.ia"][-1])) for p in stage.positions}
+    # each tube's least current over the full-output swing, a fraction of its idle current
+    # (class A holds it above CUTOFF_FRACTION; a designer may want more margin than that)
+    ia_least = {p: float(np.min(w[f"{p}.ia"][-1]) / op[f"{p}.ia"]) for p in stage.positions}
     p_max = float(sweep.power[-1])
     figures = {
         "vin_max": float(vin_max), "limit": limit, "p_max": p_max, "thd_max": float(sweep.thd[-1]),
         "vsec_max": math.sqrt(p_max * stage.speaker), "thd_target": float(thd),
-        "p_thd": p_thd, "vin_thd": vin_thd, "pa_full": pa_full, "ia_full": ia_full,
+        "p_thd": p_thd, "vin_thd": vin_thd, "pa_full": pa_full, "ia_full": ia_full, "ia_least": ia_least,
         "vin_cut": lim["cutoff"], "z_out": _z_out(stage, banks, op),
     }
     figures["damping"] = stage.speaker / figures["z_out"]
