@@ -153,3 +153,24 @@ def test_match_command_with_the_push_pull_position(stock, tmp_path):
     assert sorted(tuple(sorted(g["units"])) for g in groups) == [("S1", "S3"), ("S2", "S4")]
     r = CliRunner().invoke(main, ["match", str(tmp_path), "--push-pull", "b_plus=400,load=5k"])
     assert r.exit_code == 1 and "--push-pull" in r.output and "Traceback" not in r.output
+
+
+def test_match_push_pull_takes_the_output_commands_option_names(stock, tmp_path):
+    # bplus, bias, rdc as 'platebook output push-pull' spells them give the same groups as the
+    # field names; an unknown name is refused with the fields listed
+    from click.testing import CliRunner
+
+    from fitter.card import save_card
+    from fitter.cli import main
+
+    for u in stock:
+        save_card(tmp_path / f"{u.label}.koren.json", u)
+    run = CliRunner().invoke
+    a = run(main, ["match", str(tmp_path), "--push-pull", "b_plus=400,load=5k,grid_bias=-84,r_primary=150",
+                   "--reference", "S1", "--json"])
+    b = run(main, ["match", str(tmp_path), "--push-pull", "bplus=400,load=5k,bias=-84,rdc=150",
+                   "--reference", "S1", "--json"])
+    assert a.exit_code == 0 and b.exit_code == 0, (a.output, b.output)
+    assert a.output == b.output
+    bad = run(main, ["match", str(tmp_path), "--push-pull", "bplus=400,load=5k,bais=-84"])
+    assert bad.exit_code == 1 and "bais: not a field" in bad.output and "grid_bias" in bad.output

@@ -49,15 +49,26 @@ def _mapping(text, option, percent=True):
     return out
 
 
+#: ``platebook output``'s option names, taken as the stage's fields they set
+_OPTION_FIELDS = {"bplus": "b_plus", "bias": "grid_bias", "rdc": "r_primary", "turns": "turns_ratio",
+                  "pa-max": "pa_max", "grid-onset": "grid_onset"}
+
+
 def _stage_fields(text):
-    """``b_plus=400,load=5k,grid_bias=-84`` -> {field: number} (engineering notation)."""
+    """``b_plus=400,load=5k,grid_bias=-84`` (or as ``platebook output``'s options:
+    ``bplus=400,load=5k,bias=-84``; ``unbypassed`` alone) -> {field: number} (engineering
+    notation)."""
     if not text:
         return None
     out = {}
     for part in str(text).split(","):
+        if part.strip() == "unbypassed":
+            out["bypassed"] = False
+            continue
         if "=" not in part:
-            _fail(f"--push-pull: cannot read {part!r}; use field=value, e.g. b_plus=400,load=5k,grid_bias=-84")
+            _fail(f"--push-pull: cannot read {part!r}; use field=value, e.g. bplus=400,load=5k,bias=-84")
         k, v = (x.strip() for x in part.split("=", 1))
+        k = _OPTION_FIELDS.get(k, k.replace("-", "_"))
         out[k] = (v.lower() in ("true", "yes")) if k == "bypassed" else _num(v, f"--push-pull {k}")
     return out
 
@@ -99,8 +110,8 @@ def _grades(text):
               help="Match units for one slot of the stack, with --partner in the other slot.")
 @click.option("--partner", default=None, help="Label of the unit in the other slot (with --slot).")
 @click.option("--push-pull", "push_pull", default=None,
-              help="Push-pull position: the output stage's fields, e.g. b_plus=400,load=5k,grid_bias=-84 "
-                   "(see 'platebook output push-pull'); compares each unit's idle current and H2 current "
+              help="Push-pull position: the output stage as 'platebook output push-pull' takes it, its options "
+                   "as name=value, e.g. bplus=400,load=5k,bias=-84 (or rk=650,unbypassed); compares each unit's idle current and H2 current "
                    "(figures ia,h2: a pair's DC imbalance and H2).")
 @click.option("--reference", default=None,
               help="Push-pull position: unit on the other side (default: the one of median current).")

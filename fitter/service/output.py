@@ -146,7 +146,8 @@ def build_output(kind: str, circuit: Mapping):
     names = {f.name for f in fields(cls)}
     for k in circuit:
         if k not in names:
-            raise SpecError(f"not a field of a {kind} output stage", field=str(k))
+            raise SpecError(f"not a field of a {kind} output stage; its fields are "
+                            f"{', '.join(f.name for f in fields(cls))}", field=str(k))
     return cls(**{k: v for k, v in circuit.items() if v is not None})
 
 
