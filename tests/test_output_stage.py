@@ -585,3 +585,15 @@ def test_class_a_report_gives_each_tubes_least_current_over_the_swing():
     d = r.to_dict()["class_a"]
     assert d["least_current_pct_of_idle"]["A"] == pytest.approx(100 * f["ia_least"]["A"])
     assert d["cutoff_pct_of_idle"] == 1.0
+
+
+def test_a_very_large_reflected_load_is_solved_not_refused():
+    # 50 Mohm: the current hardly moves, the tube equation's residual is the difference of two
+    # large terms (its slope 1 + RL/rp is about 6e4), so convergence is judged against that
+    # slope.  The output then follows RDH's linear formula (from memory),
+    # P = (mu Eg)^2 RL / (2 (rp + RL)^2), within 1 % at the full drive Eg = 61 V.
+    st = SingleEndedOutput(b_plus=330.0, load=5e7, grid_bias=-61.0)
+    r = solve_output(st, TA)
+    ss = TA.small_signal(330.0, -61.0, check=False)
+    want = (ss.mu * 61.0) ** 2 * 5e7 / (2 * (ss.rp + 5e7) ** 2)
+    assert r.figures["p_max"] == pytest.approx(want, rel=0.01)
