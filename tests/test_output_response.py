@@ -229,3 +229,17 @@ def test_leakage_inductance_sets_the_high_corner():
     rp = fr.small_signal["tube"]["rp"]
     assert fr.f_high == pytest.approx((rp + st.r_primary + st.reflected_load) / (2 * math.pi * st.l_leak), rel=1e-6)
     assert fr.f_low is None
+
+
+def test_phase_reads_within_a_half_turn_at_mid_band_with_several_low_corners():
+    # a coupling capacitor, a bypass capacitor and the primary inductance: three high-pass
+    # corners below the band, whose phase (unwrapped from 1 Hz) used to carry a whole turn
+    # into it (-360 deg); at mid-band the phase of the gain itself (np.angle) is what it reads
+    st = SingleEndedOutput(b_plus=360.0, load=3000.0, rk=900.0, ck=100e-6, c_in=220e-9, rg=100e3,
+                           l_primary=15.0)
+    fr = response(st, TA)
+    k = int(np.argmax(np.abs(fr.gain)))
+    assert -180.0 < fr.phase_deg[k] <= 180.0
+    assert fr.phase_deg[k] == pytest.approx(np.degrees(np.angle(fr.gain[k])), abs=1e-9)
+    # and it is still continuous along the band (no jump of a turn)
+    assert np.max(np.abs(np.diff(fr.phase_deg))) < 90.0

@@ -78,8 +78,16 @@ class FrequencyResponse:
 
     @property
     def phase_deg(self) -> np.ndarray:
-        """Phase [deg] of the output against the source, unwrapped from the first point."""
-        return np.degrees(np.unwrap(np.angle(self.gain)))
+        """Phase [deg] of the output against the source, unwrapped along the band and placed
+        so that at mid-band (the largest gain) it reads within -180..180 (0 for a follower,
+        -180 or 180 for an inverting stage): several high-pass corners below the band would
+        otherwise carry a whole turn into it."""
+        g = np.asarray(self.gain)
+        ph = np.unwrap(np.angle(g))
+        if ph.size:
+            k = int(np.argmax(np.abs(g)))
+            ph = ph + (np.angle(g[k]) - ph[k])
+        return np.degrees(ph)
 
     def to_dict(self) -> dict:
         from .. import CAUTION
