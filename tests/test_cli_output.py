@@ -65,8 +65,10 @@ def test_load_sweep_in_json(cards):
 
 
 @pytest.mark.parametrize("args,text", [
-    (["--bplus", "330", "--load", "3k", "--turns", "20", "--bias", "-61"], "--load: give the reflected load or the turns ratio"),
-    (["--bplus", "330", "--load", "3k"], "--bias: give a fixed grid bias or a cathode resistor"),
+    (["--bplus", "330", "--load", "3k", "--turns", "20", "--bias", "-61"], "--load: give the reflected load or the turns ratio, not both"),
+    (["--bplus", "330", "--load", "3k"], "--bias: give a fixed grid bias or a cathode resistor (neither was given)"),
+    (["--bplus", "330", "--load", "3k", "--bias", "-61", "--rk", "900"],
+     "--bias: give a fixed grid bias or a cathode resistor, not both"),
     (["--bplus", "abc", "--load", "3k", "--bias", "-61"], "--bplus"),
     (["--bplus", "330", "--load", "3k", "--bias", "-61", "--thd", "200%"], "--thd"),
     (["--bplus", "330", "--load", "3k", "--bias", "-61", "--load-sweep", "2k,,3k"], "--load-sweep"),

@@ -178,10 +178,12 @@ class _OutputCommon:
                 raise StageInputError(f"{v!r} is not a plausible value here ({lo:g} to {hi:g} {unit} "
                                       f"in magnitude)", field=name, owner=owner)
         if (self.load is None) == (self.turns_ratio is None):
-            raise StageInputError("give the reflected load or the turns ratio (one of them)",
+            raise StageInputError("give the reflected load or the turns ratio, not both" if self.load is not None
+                                  else "give the reflected load or the turns ratio (neither was given)",
                                   field="load", owner=owner, label="load/turns_ratio")
         if (self.grid_bias is None) == (self.rk is None):
-            raise StageInputError("give a fixed grid bias or a cathode resistor (one of them)",
+            raise StageInputError("give a fixed grid bias or a cathode resistor, not both" if self.rk is not None
+                                  else "give a fixed grid bias or a cathode resistor (neither was given)",
                                   field="grid_bias", owner=owner, label="grid_bias/rk")
         if not (1.0 <= self.reflected_load <= 1e8):
             raise StageInputError(f"the reflected load {self.reflected_load:.4g} ohm is not a plausible "
