@@ -245,7 +245,13 @@ def read_json(path, max_bytes: int = MAX_CARD_BYTES, what: str = "model card"):
     try:
         d = json.loads(text, parse_int=_parse_int)
     except json.JSONDecodeError as e:
-        raise CardError(f"not valid JSON: {e.msg}", file=name, line=e.lineno, column=e.colno) from None
+        first = text.lstrip().split("\n", 1)[0]
+        hint = ""
+        if (str(name).lower().endswith((".csv", ".tsv", ".txt")) or first.count(",") + first.count(";")
+                + first.count("\t") >= 2) and not first.startswith(("{", "[")):
+            hint = ("; this looks like measured curves (a table), not a model card: fit it first "
+                    "and give the card the fit saves")
+        raise CardError(f"not valid JSON: {e.msg}{hint}", file=name, line=e.lineno, column=e.colno) from None
     except RecursionError:
         raise _err(f"not valid JSON: nested too deep (a {what} nests at most {MAX_DEPTH} levels)",
                    name) from None

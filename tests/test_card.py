@@ -196,3 +196,18 @@ def test_no_warning_inside_the_fitted_range(tmp_path, fitted):
     assert not t.outside_range(va, vg)
     t.small_signal(250.0, -2.0)
     t.check_range(va, vg)
+
+
+def test_a_curve_table_given_as_a_card_is_told_to_be_fitted_first(tmp_path):
+    # the likeliest wrong file: the measured curves themselves
+    from fitter.card import CardError, load_card
+
+    p = tmp_path / "lot.csv"
+    p.write_text("tube,section,va,vg,ia_ma\nX1,A,100,-2,1.5\n")
+    with pytest.raises(CardError, match="not valid JSON.*looks like measured curves.*fit it first"):
+        load_card(p)
+    q = tmp_path / "broken.json"
+    q.write_text('{"model": "koren", ')
+    with pytest.raises(CardError) as e:
+        load_card(q)
+    assert "measured curves" not in str(e.value)

@@ -221,7 +221,8 @@ class MatchResult:
                 lines.append(f"  {'':<16}({g.kind})")
         lines.append("")
         o = self.optimality
-        lines.append(f"{len(self.groups)} {name}, total mismatch {100 * self.total_mismatch:.3f} %; "
+        one = name[:-1] if len(self.groups) == 1 else name
+        lines.append(f"{len(self.groups)} {one}, total mismatch {100 * self.total_mismatch:.3f} %; "
                      f"{'optimal' if o.exact else 'not proven optimal'} ({o.note})")
         if not o.exact:
             lines.append(f"  bound: at most {o.groups_bound} {name}; total mismatch at least "
