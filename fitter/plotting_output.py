@@ -32,21 +32,34 @@ def _nice_step(x):
     return 10 * e
 
 
-def _curves(ax, tube, vgk0, va_max, ia_top):
+def _curves(ax, tube, vgk0, va_max, ia_top) -> bool:
+    """The tube's model curves; solid where it was measured, dotted beyond (the model
+    extrapolates there).  True when some part is dotted."""
     step = _nice_step(abs(vgk0) / 6 if vgk0 < 0 else 5.0)
     vgs = np.arange(0.0, 2.0 * min(vgk0, -step) - 1e-9, -step)
     va = np.linspace(0.0, va_max, 300)
     cmap = plt.get_cmap("viridis")
+    env = getattr(tube, "envelope", None)
+    dotted = False
     for i, vg in enumerate(vgs):
         ia = 1e3 * tube.current(va, vg)
         c = cmap(0.1 + 0.75 * i / max(len(vgs) - 1, 1))
-        ax.plot(va, ia, "-", lw=0.9, color=c, alpha=0.85)
+        ok = env.covers(va, vg, ia / 1e3) if env is not None else np.ones(va.shape, bool)
+        if ok.all():
+            ax.plot(va, ia, "-", lw=0.9, color=c, alpha=0.85)
+        else:
+            dotted = True
+            # (each run of measured points drawn solid; the points around a change join both)
+            edge = ok | np.r_[ok[1:], False] | np.r_[False, ok[:-1]]
+            ax.plot(va, np.where(edge, ia, np.nan), "-", lw=0.9, color=c, alpha=0.85)
+            ax.plot(va, np.where(ok, np.nan, ia), ":", lw=0.9, color=c, alpha=0.7)
         j = np.flatnonzero(ia <= 0.97 * ia_top)
         if j.size and ia[j[-1]] > 0.02 * ia_top:
             k = j[-1]
             ax.annotate(f"{vg:g} V", (va[k], ia[k]), xytext=(-2, 1), textcoords="offset points",
                         ha="right", va="bottom", fontsize=7, color=c,
                         bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.7))
+    return dotted
 
 
 def plot_output(run, axes=None):
@@ -74,7 +87,7 @@ def plot_output(run, axes=None):
     va_max = 1.15 * max(float(np.max(w[f"{p}.va"])) for p in st.positions)
     ia_top = 1.15e3 * max(float(np.max(w[f"{p}.ia"])) for p in st.positions)
     pos0 = st.positions[0]
-    _curves(ax, tubes[0], res.op[f"{pos0}.vgk"], va_max, ia_top)
+    dotted = _curves(ax, tubes[0], res.op[f"{pos0}.vgk"], va_max, ia_top)
     va = np.linspace(0.0, va_max, 300)
     if st.pa_max:
         ax.plot(va[1:], 1e3 * st.pa_max / va[1:], color="crimson", lw=1.0, ls="-.",
@@ -105,6 +118,8 @@ def plot_output(run, axes=None):
     for p in st.positions:
         ax.plot(res.op[f"{p}.va"], 1e3 * res.op[f"{p}.ia"], "o", color="k", ms=5, zorder=5)
     ax.plot([], [], "o", color="k", ms=5, label="operating point")
+    if dotted:
+        ax.plot([], [], ":", color="0.4", lw=0.9, label="curves beyond the measured data (extrapolated)")
     ax.set_xlim(0, va_max)
     ax.set_ylim(0, ia_top)
     ax.set_xlabel("plate-cathode voltage Va [V]")
