@@ -119,7 +119,7 @@ def plot_output(run, axes=None):
         ax.plot(res.op[f"{p}.va"], 1e3 * res.op[f"{p}.ia"], "o", color="k", ms=5, zorder=5)
     ax.plot([], [], "o", color="k", ms=5, label="operating point")
     if dotted:
-        ax.plot([], [], ":", color="0.4", lw=0.9, label="curves beyond the measured data (extrapolated)")
+        ax.plot([], [], ":", color="0.4", lw=0.9, label="curves beyond the measured\ndata (extrapolated)")
     ax.set_xlim(0, va_max)
     ax.set_ylim(0, ia_top)
     ax.set_xlabel("plate-cathode voltage Va [V]")
