@@ -80,6 +80,7 @@ def plot_sweep(sw, figures=None):
     rows = (n + 1) // 2
     fig, axes = plt.subplots(rows, cols, figsize=(9.0, 2.3 * rows + 0.8), sharex=True, squeeze=False)
     x = sw.values * sw.display_scale
+    gaps = False
     for ax, name in zip(axes.ravel(), names):
         lo, med, hi = sw.stats(name)
         unit, scale = sw.figure_unit(name)
@@ -99,6 +100,17 @@ def plot_sweep(sw, figures=None):
             ax.plot(x, med * scale, "-o", ms=3, color="tab:blue")
         if sw.n_units > 1:
             ax.fill_between(x, lo * scale, hi * scale, color="tab:blue", alpha=0.2, lw=0)
+        missing = ~np.isfinite(a).any(axis=1)
+        if missing.any() and not missing.all():
+            # values where no unit has the figure (the stage not solved there, or the figure
+            # not reached): a grey x on the axis, not a silent gap
+            ax.plot(x[missing], np.full(missing.sum(), 0.03), "x", ms=4, color="0.45",
+                    transform=ax.get_xaxis_transform(), clip_on=False)
+            gaps = True
+        if name == "pa_ratio" and np.any(np.isfinite(a)):
+            ax.axhline(100.0, color="crimson", ls=":", lw=1.0)
+            ax.text(0.01, 100.0, " the limit", color="crimson", fontsize=7, va="bottom",
+                    transform=ax.get_yaxis_transform())
         ax.set_title(sw.figure_label(name) + (f" [{unit}]" if unit else ""), fontsize=9, y=1.0)
         ax.grid(True, which="both", alpha=0.3)
         if not np.any(np.isfinite(np.asarray(med, float))):
@@ -122,12 +134,13 @@ def plot_sweep(sw, figures=None):
             ax.set_xlabel(f"{sw.field} [{sw.display_unit}]")
     who = sw.units_text
     fig.suptitle(f"{sw.title}: sweep of {sw.field} with {who}"
-                 + (" (line: median, band: min..max)" if sw.n_units > 1 else ""), fontsize=10)
+                 + (" (line: median, band: min..max)" if sw.n_units > 1 else "")
+                 + ("\nx on an axis: no unit has that figure at that value" if gaps else ""), fontsize=10)
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     # fixed margins (a layout engine would draw the figure once more): room for the y tick
     # labels left of each column, the panel titles between the rows (the upper rows share
     # the x axis and carry no labels) and the x labels over the caution at the bottom
-    margins(fig, left=0.8, right=0.2, top=0.65, bottom=0.75, wspace=0.85, hspace=0.45)
+    margins(fig, left=0.8, right=0.2, top=0.85 if gaps else 0.65, bottom=0.75, wspace=0.85, hspace=0.45)
     if sw.log:
         for ax in axes.ravel()[:n]:
             log_ticks(ax, "x")
