@@ -57,6 +57,12 @@ def plot_response(fr, axes=None):
         ax.grid(True, which="both", alpha=0.3)
     # beside the gain panel, outside it: inside, some response would always run under it
     ag.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    if fr.notes:
+        # e.g. why the response is flat: said on the figure, not only in the report
+        import textwrap
+
+        ap.text(1.02, 1.0, "\n".join(textwrap.fill(n, 34) for n in fr.notes), transform=ap.transAxes,
+                fontsize=7, color="0.3", va="top", ha="left")
     fig = ag.figure
     fig.text(0.01, 0.005, CAUTION, fontsize=7, color="0.3")
     if not own:

@@ -438,8 +438,9 @@ def response(stage, *triodes: FittedTriode, freq=None, points_per_decade: int = 
     f_low, f_high = _corners(elements, out, abs(midband))
     notes = []
     if not any(e[0] in ("C", "L") for e in elements):
-        notes.append("no capacitance given: the response is flat (give the tube capacitances, the load capacitance "
-                     "and the coupling capacitors)" + (", the primary inductance" if out_stage else ""))
+        notes.append("no capacitance or inductance given: the response is flat (give the tube capacitances, "
+                     "the load capacitance, the coupling capacitors" + (", the primary and leakage inductances"
+                                                                        if out_stage else "") + ")")
     if out_stage:
         where = "secondary"
     else:
